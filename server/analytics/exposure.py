@@ -1,0 +1,168 @@
+"""Monitored time: where and when listening counts, and how it splits into weeks.
+
+A device's listening counts while it is installed in a home whose lifecycle state is monitored
+(installed, active, or paused while still listening), inside the trial and reporting window.
+`monitored_windows` builds those windows from the register; the database (see `load`) clips
+listening segments to them and sums per window and week; `spread_over_buckets` turns those sums
+into seconds per week. Pure functions; no database access.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Callable, Sequence
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from server.analytics import rates
+
+DEFAULT_MONITORED_STATES = ("installed", "active", "paused")
+WINDOW_COLUMNS = ["window_id", "installation_id", "device_id", "home_id", "room", "started_at", "ended_at"]
+
+
+def home_intervals(
+    changes: pd.DataFrame,
+    *,
+    until: dt.datetime,
+    monitored_states: Sequence[str] = DEFAULT_MONITORED_STATES,
+) -> pd.DataFrame:
+    """Stretches of time in which each home's devices may contribute monitored time.
+
+    Parameters
+    ----------
+    changes: home_id, at (aware UTC), to_state, listening (bool; False on a pause that stops
+        listening). Each row starts a state that lasts until the home's next change, or `until`.
+
+    Returns
+    -------
+    home_id, started_at, ended_at for the monitored states (adjacent stretches merged).
+    """
+    if changes.empty:
+        return pd.DataFrame({"home_id": pd.Series(dtype=np.int64),
+                             "started_at": pd.Series(dtype="datetime64[ns, UTC]"),
+                             "ended_at": pd.Series(dtype="datetime64[ns, UTC]")})
+    c = changes.sort_values(["home_id", "at"], kind="mergesort").reset_index(drop=True)
+    nxt = c.groupby("home_id")["at"].shift(-1)
+    c["ended_at"] = nxt.fillna(pd.Timestamp(until))
+    c["monitored"] = c["to_state"].isin(list(monitored_states)) & c["listening"].astype(bool)
+    # Merge consecutive monitored rows of a home (for example installed -> active) into one stretch.
+    c["run"] = (c["monitored"] != c.groupby("home_id")["monitored"].shift()).cumsum()
+    m = c[c["monitored"] & (c["ended_at"] > c["at"])]
+    out = m.groupby(["home_id", "run"], sort=True).agg(started_at=("at", "min"), ended_at=("ended_at", "max"))
+    return out.reset_index()[["home_id", "started_at", "ended_at"]]
+
+
+def monitored_windows(
+    installations: pd.DataFrame,
+    intervals: pd.DataFrame,
+    *,
+    start: dt.datetime,
+    end: dt.datetime,
+) -> pd.DataFrame:
+    """Windows in which a device's listening is monitored time.
+
+    Parameters
+    ----------
+    installations: installation_id, device_id, home_id, room, installed_at, removed_at (NaT while
+        installed); the register's current rows, so a corrected date applies everywhere.
+    intervals: from `home_intervals`.
+    start, end: the trial and reporting window, [start, end).
+
+    Returns
+    -------
+    window_id (0..n-1), installation_id, device_id, home_id, room, started_at, ended_at.
+    If two installations of one device overlap (a device moved before the first was closed), the
+    earlier one ends where the later one begins, so no second of listening counts twice.
+    """
+    start_ts, end_ts = pd.Timestamp(start), pd.Timestamp(end)
+    inst = installations.sort_values(["device_id", "installed_at", "installation_id"], kind="mergesort").copy()
+    nxt = inst.groupby("device_id")["installed_at"].shift(-1)
+    removed = inst["removed_at"].fillna(end_ts)
+    inst["until"] = removed.where(nxt.isna() | (removed <= nxt), nxt)
+    pairs = inst.merge(intervals, on="home_id")
+    lo = pairs[["installed_at", "started_at"]].max(axis=1).clip(lower=start_ts)
+    hi = pairs[["until", "ended_at"]].min(axis=1).clip(upper=end_ts)
+    out = pairs.assign(started_at=lo, ended_at=hi)[lo < hi]
+    out = out.sort_values(["device_id", "started_at"], kind="mergesort").reset_index(drop=True)
+    out.insert(0, "window_id", np.arange(len(out), dtype=np.int64))
+    return out[WINDOW_COLUMNS]
+
+
+def spread_over_buckets(
+    pieces: pd.DataFrame, bucket_start_s: Callable[[NDArray[np.int64]], NDArray[np.float64]]
+) -> pd.DataFrame:
+    """Seconds per window and bucket (week), from sums over clipped listening pieces.
+
+    Parameters
+    ----------
+    pieces: window_id, first_bucket, last_bucket, pieces (count), sum_start_s, sum_end_s: the
+        clipped pieces of listening grouped by window and by the buckets holding their start and
+        end, with their start and end times (UTC epoch seconds) summed.
+    bucket_start_s: UTC epoch second at which each bucket index begins.
+
+    Returns
+    -------
+    window_id, bucket, seconds. A piece inside one bucket adds end - start; a piece across
+    buckets adds (next bucket start - start) to its first bucket, (end - bucket start) to its
+    last, and whole buckets between, so the sums stay exact across daylight-saving changes.
+    """
+    p = pieces
+    same = p[p["first_bucket"] == p["last_bucket"]]
+    parts = [pd.DataFrame({"window_id": same["window_id"].to_numpy(), "bucket": same["first_bucket"].to_numpy(),
+                           "seconds": (same["sum_end_s"] - same["sum_start_s"]).to_numpy(dtype=np.float64)})]
+    span = p[p["first_bucket"] < p["last_bucket"]]
+    if len(span):
+        first = span["first_bucket"].to_numpy(dtype=np.int64)
+        last = span["last_bucket"].to_numpy(dtype=np.int64)
+        n = span["pieces"].to_numpy(dtype=np.float64)
+        wid = span["window_id"].to_numpy()
+        parts.append(pd.DataFrame({"window_id": wid, "bucket": first,
+                                   "seconds": n * bucket_start_s(first + 1) - span["sum_start_s"].to_numpy()}))
+        parts.append(pd.DataFrame({"window_id": wid, "bucket": last,
+                                   "seconds": span["sum_end_s"].to_numpy() - n * bucket_start_s(last)}))
+        gaps = last - first - 1
+        if gaps.sum() > 0:
+            rep = np.repeat(np.arange(len(span)), gaps)
+            offs = np.concatenate([np.arange(1, g + 1) for g in gaps if g > 0])
+            mid = first[rep] + offs
+            parts.append(pd.DataFrame({"window_id": wid[rep], "bucket": mid,
+                                       "seconds": n[rep] * (bucket_start_s(mid + 1) - bucket_start_s(mid))}))
+    out = pd.concat(parts, ignore_index=True)
+    out = out.groupby(["window_id", "bucket"], as_index=False, sort=True)["seconds"].sum()
+    out["bucket"] = out["bucket"].astype(np.int64)
+    return out
+
+
+def monitored_time(
+    by_bucket: pd.DataFrame,
+    windows: pd.DataFrame,
+    *,
+    by: Sequence[str],
+    buckets: Sequence[int] | None = None,
+) -> pd.DataFrame:
+    """Monitored seconds and home-months summed over `by` (columns of the windows or 'bucket').
+
+    Parameters
+    ----------
+    by_bucket: from `spread_over_buckets`.
+    windows: from `monitored_windows`, possibly with more columns joined (hardware_model, ...).
+    buckets: keep only these bucket indices (for example the reporting week); None keeps all.
+
+    Returns
+    -------
+    <by...>, seconds, home_months. Groups of `windows` that had no listening at all are kept with
+    zero seconds (offline time is not monitored time) unless `by` includes 'bucket'.
+    """
+    data = by_bucket if buckets is None else by_bucket[by_bucket["bucket"].isin(list(buckets))]
+    merged = data.merge(windows, on="window_id")
+    keys = list(by)
+    out = merged.groupby(keys, as_index=False, dropna=False)["seconds"].sum() if keys else \
+        pd.DataFrame({"seconds": [float(merged["seconds"].sum())]})
+    if keys and "bucket" not in keys:
+        every = windows[keys].drop_duplicates()
+        out = every.merge(out, on=keys, how="left").fillna({"seconds": 0.0})
+    out["seconds"] = out["seconds"].astype(np.float64)
+    out["home_months"] = out["seconds"] / rates.HOME_MONTH_S
+    return out.reset_index(drop=True)

@@ -1,0 +1,98 @@
+"""Threshold what-if: what raising the score threshold would do to false alarms and detection.
+
+Devices send only alerts scoring at or above their own threshold, so a threshold can be raised
+in simulation (drop the alerts below it) but never lowered. Pure functions; no database access.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pandas as pd
+from numpy.typing import ArrayLike, NDArray
+
+from server.analytics import rates
+
+
+def score_floor(min_score_by_firmware: ArrayLike) -> float:
+    """The lowest threshold that can be simulated for every device.
+
+    A firmware never sends an alert scoring below its own threshold, so the lowest score seen from
+    a firmware bounds that threshold from above; below the highest such bound some firmware would
+    have sent alerts we never saw. NaN when there are no alerts.
+    """
+    m = np.asarray(min_score_by_firmware, dtype=np.float64)
+    return float(m.max()) if m.size else math.nan
+
+
+def threshold_grid(floor: float, *, step: float = 0.02, top: float = 1.0) -> NDArray[np.float64]:
+    """Thresholds from `floor` up to `top` (both included) in steps of `step` above the floor."""
+    if math.isnan(floor):
+        return np.zeros(0)
+    if step <= 0:
+        raise ValueError("step must be positive")
+    first = math.ceil(round(floor / step, 9)) * step
+    grid = np.arange(first, top + step / 2, step)
+    grid = np.round(grid, 9)
+    return np.unique(np.concatenate([[floor], grid[(grid > floor) & (grid <= top)]]))
+
+
+def at_thresholds(
+    fa_scores: ArrayLike,
+    home_months: float,
+    event_best_scores: ArrayLike,
+    thresholds: ArrayLike,
+    *,
+    floor: float,
+    target: float,
+    fa_counts: ArrayLike | None = None,
+    confidence_level: float = 0.95,
+) -> pd.DataFrame:
+    """False alarms per home-month and staged detection at each threshold.
+
+    Parameters
+    ----------
+    fa_scores: score of each false alarm (or of each group of equal scores, with `fa_counts`).
+    home_months: monitored time (unchanged by the threshold).
+    event_best_scores: per staged event, the highest score among the alerts that detected it
+        (NaN for a missed event); an event stays detected at threshold t when this is >= t.
+    thresholds: each at or above `floor` (ValueError otherwise: it cannot be simulated).
+    target: false alarms per home-month; a threshold meets it when the exact upper limit does.
+
+    Returns
+    -------
+    threshold, false_alarms, rate, low, high (exact Garwood interval), events, detected,
+    detected_share, detected_low, detected_high (Wilson), miss_share, meets_target.
+    """
+    t = np.asarray(thresholds, dtype=np.float64)
+    if np.any(t < floor - 1e-12):
+        raise ValueError(f"thresholds below {floor:.3f} cannot be simulated: devices never sent those alerts")
+    s = np.asarray(fa_scores, dtype=np.float64)
+    w = np.ones_like(s) if fa_counts is None else np.asarray(fa_counts, dtype=np.float64)
+    order = np.argsort(s, kind="mergesort")
+    s, w = s[order], w[order]
+    # Alerts at or above t: total weight from the first score >= t onwards.
+    tail = np.concatenate([np.cumsum(w[::-1])[::-1], [0.0]])
+    fa = tail[np.searchsorted(s, t, side="left")].astype(np.int64)
+    r = rates.poisson_rates(fa, np.full(len(t), home_months), confidence_level=confidence_level)
+    best = np.asarray(event_best_scores, dtype=np.float64)
+    hit = np.sort(best[~np.isnan(best)])
+    detected = (len(hit) - np.searchsorted(hit, t, side="left")).astype(np.int64)
+    n = np.full(len(t), len(best), dtype=np.int64)
+    lim = rates.proportion_limits(detected, n, confidence_level=confidence_level, method="wilson")
+    share = np.divide(detected, n, out=np.full(len(t), np.nan), where=n > 0)
+    return pd.DataFrame({
+        "threshold": t,
+        "false_alarms": fa,
+        "rate": r["estimate"].to_numpy(),
+        "low": r["low"].to_numpy(),
+        "high": r["high"].to_numpy(),
+        "events": n,
+        "detected": detected,
+        "detected_share": share,
+        "detected_low": lim.low,
+        "detected_high": lim.high,
+        "miss_share": 1.0 - share,
+        "meets_target": r["high"].to_numpy() <= target,
+    })

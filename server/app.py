@@ -1,0 +1,98 @@
+"""create_app(settings) -> FastAPI: routers, error handlers, sessions, engine and clip store."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import AsyncIterator
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI, Request
+from starlette.middleware.sessions import SessionMiddleware
+from starlette.responses import Response
+
+from server import errors, health, migrate
+from server.db import utcnow, make_engine, make_session_factory, writer_engine
+from server.devices.clipstore import ClipStore
+from server.settings import Settings
+from server.web.templating import make_templates
+
+log = logging.getLogger(__name__)
+
+DESCRIPTION = """
+Trialhouse runs pilots of in-home acoustic event detectors. Devices authenticate with
+`Authorization: Bearer <token>` and post heartbeats and alert clips; staff sign in to review and report.
+
+Every error body is `{"error": {"code": "<machine_code>", "message": "<sentence>"}}`.
+The device-integration contract is written out in DEVELOPERS.md.
+
+A detector in trial is not a certified life-safety device and never replaces a home's certified
+smoke and CO alarms; clips can hold private speech, so access and retention follow the
+household's consent and data-protection law.
+"""
+
+
+def create_app(settings: Settings | None = None, *, check_schema: bool = True) -> FastAPI:
+    settings = settings or Settings()
+    settings.data_dir.mkdir(parents=True, exist_ok=True)
+    engine = make_engine(settings.resolved_database_url())
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        if check_schema:
+            migrate.check_schema(engine)
+        app.state.schema_revision = migrate.current_revision(engine)
+        app.state.background = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trialhouse-bg")
+        try:
+            yield
+        finally:
+            app.state.background.shutdown(wait=True, cancel_futures=True)
+            engine.dispose()
+
+    app = FastAPI(title="Trialhouse", version="1", description=DESCRIPTION, lifespan=lifespan,
+                  docs_url="/docs", redoc_url=None)
+    app.state.settings = settings
+    app.state.engine = engine
+    app.state.session_factory = make_session_factory(engine)
+    app.state.writer_session_factory = make_session_factory(writer_engine(engine))
+    app.state.clip_store = ClipStore(settings.clip_dir)
+    app.state.clip_store.ensure()
+    app.state.templates = make_templates()
+    app.state.ingest_hooks = []
+    # The server's clock for device time (monitored time, receipt). The demo replays weeks through it.
+    app.state.clock = utcnow
+    app.state.schema_revision = None
+    app.state.background = None
+
+    errors.install_handlers(app)
+    app.add_middleware(SessionMiddleware, secret_key=settings.resolved_secret_key(),
+                       session_cookie="trialhouse_session", max_age=settings.session_max_age_s,
+                       same_site="lax", https_only=settings.secure_cookies)
+
+    @app.middleware("http")
+    async def security_headers(request: Request, call_next):  # type: ignore[no-untyped-def]
+        response: Response = await call_next(request)
+        response.headers.setdefault("X-Content-Type-Options", "nosniff")
+        response.headers.setdefault("X-Frame-Options", "DENY")
+        response.headers.setdefault("Referrer-Policy", "same-origin")
+        return response
+
+    from server.analytics import api as analytics_api
+    from server.analytics import pages as analytics_pages
+    from server.auth import pages as auth_pages
+    from server.devices import api as devices_api
+    from server.devices import pages as devices_pages
+    from server.households import api as households_api
+    from server.households import pages as households_pages
+    from server.review import api as review_api
+    from server.review import pages as review_pages
+    from server.web import pages as web_pages
+
+    app.include_router(health.router)
+    for module in (auth_pages, web_pages, devices_api, devices_pages, households_api, households_pages,
+                   review_api, review_pages, analytics_api, analytics_pages):
+        app.include_router(module.router)
+        setup = getattr(module, "setup", None)
+        if setup is not None:
+            setup(app)  # e.g. register ingest hooks
+    return app

@@ -1,0 +1,139 @@
+"""Declarative base, the UTC datetime type, engine and session factories.
+
+Dialect-specific code lives here and nowhere else.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from sqlalchemy import JSON, DateTime, MetaData, create_engine, event
+from sqlalchemy.engine import Engine
+from sqlalchemy.orm import DeclarativeBase, Session, sessionmaker
+from sqlalchemy.types import TypeDecorator
+
+NAMING_CONVENTION = {
+    "ix": "ix_%(column_0_label)s",
+    "uq": "uq_%(table_name)s_%(column_0_N_name)s",
+    "ck": "ck_%(table_name)s_%(constraint_name)s",
+    "fk": "fk_%(table_name)s_%(column_0_name)s_%(referred_table_name)s",
+    "pk": "pk_%(table_name)s",
+}
+
+
+class Base(DeclarativeBase):
+    metadata = MetaData(naming_convention=NAMING_CONVENTION)
+    type_annotation_map = {dict[str, Any]: JSON, list[str]: JSON, list[dict[str, Any]]: JSON}
+
+
+def utcnow() -> dt.datetime:
+    return dt.datetime.now(dt.UTC)
+
+
+class UTCDateTime(TypeDecorator[dt.datetime]):
+    """Aware datetimes in, aware UTC datetimes out, on SQLite (which drops offsets) and PostgreSQL."""
+
+    impl = DateTime(timezone=True)
+    cache_ok = True
+
+    def process_bind_param(self, value: dt.datetime | None, dialect: Any) -> dt.datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            raise ValueError("naive datetime given to a UTCDateTime column")
+        value = value.astimezone(dt.UTC)
+        if dialect.name == "sqlite":
+            return value.replace(tzinfo=None)
+        return value
+
+    def process_result_value(self, value: dt.datetime | None, dialect: Any) -> dt.datetime | None:
+        if value is None:
+            return None
+        if value.tzinfo is None:
+            return value.replace(tzinfo=dt.UTC)
+        return value.astimezone(dt.UTC)
+
+
+def make_engine(url: str, **kw: Any) -> Engine:
+    if url.startswith("sqlite"):
+        engine = create_engine(url, connect_args={"timeout": 30, "check_same_thread": False}, **kw)
+        _configure_sqlite(engine)
+        return engine
+    if url.startswith("postgresql://"):
+        url = "postgresql+psycopg://" + url[len("postgresql://"):]
+    return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=40, **kw)
+
+
+def _configure_sqlite(engine: Engine) -> None:
+    # The documented pysqlite workaround: let SQLAlchemy emit BEGIN itself so that SAVEPOINT
+    # and transactional DDL behave. Writes begin IMMEDIATE (taking the write lock up front), so a
+    # read-then-write transaction never fails on a lock upgrade under concurrent ingest.
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_conn: Any, _record: Any) -> None:
+        dbapi_conn.isolation_level = None
+        cur = dbapi_conn.cursor()
+        cur.execute("PRAGMA foreign_keys=ON")
+        cur.execute("PRAGMA journal_mode=WAL")
+        # FULL: a commit that returned has survived a power cut (WAL is fsynced on commit).
+        cur.execute("PRAGMA synchronous=FULL")
+        cur.execute("PRAGMA busy_timeout=30000")
+        cur.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn: Any) -> None:
+        if conn.get_execution_options().get("sqlite_immediate"):
+            conn.exec_driver_sql("BEGIN IMMEDIATE")
+        else:
+            conn.exec_driver_sql("BEGIN")
+
+
+def writer_engine(engine: Engine) -> Engine:
+    """The same pool, with write transactions taking SQLite's lock at BEGIN (no-op elsewhere)."""
+    return engine.execution_options(sqlite_immediate=True)
+
+
+def make_session_factory(engine: Engine) -> sessionmaker[Session]:
+    return sessionmaker(bind=engine, expire_on_commit=False, autoflush=True)
+
+
+@contextmanager
+def session_scope(factory: sessionmaker[Session]) -> Iterator[Session]:
+    """A session that commits on success and rolls back on error (CLI and scripts)."""
+    session = factory()
+    try:
+        yield session
+        session.commit()
+    except BaseException:
+        session.rollback()
+        raise
+    finally:
+        session.close()
+
+
+def is_sqlite(session_or_engine: Session | Engine) -> bool:
+    bind = session_or_engine.get_bind() if isinstance(session_or_engine, Session) else session_or_engine
+    return bind.dialect.name == "sqlite"
+
+
+def seconds_between(dialect_name: str, later: Any, earlier: Any) -> Any:
+    """SQL expression: seconds from ``earlier`` to ``later`` (two datetime columns)."""
+    from sqlalchemy import func
+
+    if dialect_name == "sqlite":
+        return (func.julianday(later) - func.julianday(earlier)) * 86400.0
+    return func.extract("epoch", later - earlier)
+
+
+def sql_greatest(dialect_name: str, *args: Any) -> Any:
+    from sqlalchemy import func
+
+    return func.max(*args) if dialect_name == "sqlite" else func.greatest(*args)
+
+
+def sql_least(dialect_name: str, *args: Any) -> Any:
+    from sqlalchemy import func
+
+    return func.min(*args) if dialect_name == "sqlite" else func.least(*args)

@@ -1,0 +1,116 @@
+"""Device API bodies. JSON is strict: no type coercion, no NaN or Infinity; unknown fields ignored."""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, field_validator
+
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+_HEX64 = re.compile(r"^[0-9a-fA-F]{64}$")
+
+STRICT = ConfigDict(strict=True, extra="ignore", allow_inf_nan=False)
+
+
+class HeartbeatIn(BaseModel):
+    model_config = STRICT
+
+    sent_at: AwareDatetime
+    listening: bool
+    firmware: str = Field(min_length=1, max_length=64)
+
+
+class HeartbeatOut(BaseModel):
+    received_at: dt.datetime
+    next_heartbeat_s: int
+
+
+class EventIdOnly(BaseModel):
+    """The idempotency key alone, read before the rest so a resend is recognised whatever its meta."""
+
+    model_config = STRICT
+
+    event_id: str = Field(min_length=1, max_length=128)
+
+    @field_validator("event_id")
+    @classmethod
+    def _no_control(cls, v: str) -> str:
+        if _CONTROL.search(v):
+            raise ValueError("event_id must not contain control characters")
+        return v
+
+
+class AlertMeta(EventIdOnly):
+    sound_class: str = Field(min_length=1, max_length=64)
+    score: float = Field(ge=0.0, le=1.0)
+    detected_at: AwareDatetime
+    clip_offset_s: float = Field(ge=0.0)
+    firmware: str = Field(min_length=1, max_length=64)
+    clip_sha256: str | None = None
+
+    @field_validator("score", "clip_offset_s", mode="before")
+    @classmethod
+    def _number_not_bool(cls, v: object) -> object:
+        if isinstance(v, bool):
+            raise ValueError("must be a number, not true/false")
+        return v
+
+    @field_validator("clip_sha256")
+    @classmethod
+    def _hex(cls, v: str | None) -> str | None:
+        if v is not None and not _HEX64.match(v):
+            raise ValueError("clip_sha256 must be 64 hexadecimal characters")
+        return v.lower() if v else v
+
+
+class AlertReceipt(BaseModel):
+    alert_id: int
+    duplicate: bool
+
+
+class DeviceIn(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+    serial: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
+    hardware_model: str = Field(default="unknown", min_length=1, max_length=64)
+    trial: str | None = None
+
+
+class DeviceOut(BaseModel):
+    id: int
+    serial: str
+    trial: str
+    hardware_model: str
+    firmware: str | None
+    revoked: bool
+    last_seen_at: dt.datetime | None
+    clock_skew_s: float | None
+    clock_skewed: bool
+    home: str | None
+    room: str | None
+    listening_hours_7d: float
+
+
+class DeviceCreated(DeviceOut):
+    token: str
+
+
+class AlertOut(BaseModel):
+    id: int
+    device: str
+    trial: str
+    home: str | None
+    room: str | None
+    event_id: str
+    sound_class: str
+    score: float
+    detected_at: dt.datetime
+    received_at: dt.datetime
+    firmware: str
+    clip_sha256: str
+    clip_duration_s: float
+    clip_offset_s: float
+    state: str
+    final_label: str | None
+    clip_url: str

@@ -1,0 +1,332 @@
+"""Devices: registration, heartbeats into listening segments, alert ingest and attribution."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import logging
+import random
+from dataclasses import dataclass
+
+from pydantic import ValidationError
+from sqlalchemy import func, select, update
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from server import audit
+from server.db import utcnow
+from server.devices import audio
+from server.devices.clipstore import ClipStore, SpooledUpload
+from server.devices.models import Alert, Clip, Device, ListeningSegment
+from server.devices.schemas import AlertMeta, EventIdOnly, HeartbeatIn
+from server.errors import (
+    ClipDigestMismatch,
+    Conflict,
+    DeviceRevoked,
+    EventIdConflict,
+    InvalidMeta,
+    InvalidToken,
+    NotFound,
+    UnknownSoundClass,
+    ValidationFailed,
+)
+from server.households.models import Installation
+from server.settings import Settings
+from server.tokens import DEVICE_PREFIX, new_token, token_digest
+from server.trials.models import Trial
+
+log = logging.getLogger(__name__)
+
+
+# --- registration ---------------------------------------------------------------------------
+
+def register_device(session: Session, *, serial: str, trial: Trial, hardware_model: str = "unknown",
+                    actor: object = "cli", heartbeat_interval_s: int = 60) -> tuple[Device, str]:
+    """Create a device and its bearer token. The token is returned once and stored only hashed."""
+    serial = serial.strip()
+    if not serial or len(serial) > 64:
+        raise ValidationFailed("A serial is 1 to 64 characters.", {"serial": "1 to 64 characters."})
+    if session.scalar(select(Device.id).where(Device.serial == serial)) is not None:
+        raise Conflict(f"A device with serial {serial} is already registered.", code="device_exists")
+    token = new_token(DEVICE_PREFIX)
+    device = Device(serial=serial, trial_id=trial.id, hardware_model=hardware_model or "unknown",
+                    token_hash=token_digest(token), heartbeat_interval_s=heartbeat_interval_s)
+    session.add(device)
+    session.flush()
+    audit.record(session, actor, "device.register", "device", device.id,  # type: ignore[arg-type]
+                 {"serial": serial, "trial": trial.code})
+    return device, token
+
+
+def revoke_device(session: Session, serial: str, actor: object = "cli") -> Device:
+    device = get_device(session, serial)
+    if not device.revoked:
+        device.revoked = True
+        device.revoked_at = utcnow()
+        audit.record(session, actor, "device.revoke", "device", device.id,  # type: ignore[arg-type]
+                     {"serial": serial})
+    return device
+
+
+def get_device(session: Session, serial: str) -> Device:
+    device = session.scalar(select(Device).where(Device.serial == serial))
+    if device is None:
+        raise NotFound(f"No device has serial {serial}.", code="unknown_device")
+    return device
+
+
+def list_devices(session: Session) -> list[Device]:
+    return list(session.scalars(select(Device).order_by(Device.serial)))
+
+
+def authenticate_device(session: Session, token: str) -> Device:
+    device = session.scalar(select(Device).where(Device.token_hash == token_digest(token)))
+    if device is None:
+        raise InvalidToken()
+    if device.revoked:
+        raise DeviceRevoked(f"Device {device.serial} was revoked; it can no longer send data.")
+    return device
+
+
+# --- time checks ----------------------------------------------------------------------------
+
+def _check_time_window(value: dt.datetime, now: dt.datetime, settings: Settings, field: str,
+                       error: type[InvalidMeta] | type[ValidationFailed]) -> None:
+    earliest = now - dt.timedelta(days=settings.max_past_days)
+    latest = now + dt.timedelta(hours=settings.max_future_hours)
+    if not earliest <= value <= latest:
+        raise error(f"'{field}' is {value.isoformat()}, outside the accepted window of "
+                    f"{settings.max_past_days} days before to {settings.max_future_hours} hours after "
+                    f"the server's clock ({now.isoformat()}).", field=field)
+
+
+# --- heartbeats -----------------------------------------------------------------------------
+
+def _lock_device(session: Session, device: Device) -> None:
+    """Serialise concurrent writes of one device (a row lock on PostgreSQL; SQLite locks the file)."""
+    if session.get_bind().dialect.name != "sqlite":
+        session.execute(select(Device.id).where(Device.id == device.id).with_for_update())
+
+
+def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, settings: Settings,
+                     now: dt.datetime | None = None, rng: random.Random | None = None) -> tuple[dt.datetime, int]:
+    """Extend or close the device's open listening segment; return (received_at, next interval s).
+
+    Monitored time is server time: a beat within gap tolerance (``heartbeat_gap_factor`` x the
+    device's interval) of the open segment's end extends it to now; a longer gap starts a new
+    segment at now; ``listening: false`` closes the open segment at its last listening beat.
+    """
+    now = now or utcnow()
+    _check_time_window(beat.sent_at, now, settings, "sent_at", ValidationFailed)
+    _lock_device(session, device)
+    device.last_seen_at = now
+    device.firmware = beat.firmware
+    device.clock_skew_s = round((beat.sent_at - now).total_seconds(), 3)
+    seg = session.scalar(
+        select(ListeningSegment)
+        .where(ListeningSegment.device_id == device.id, ListeningSegment.is_open.is_(True))
+        .order_by(ListeningSegment.started_at.desc()).limit(1))
+    gap = dt.timedelta(seconds=device.heartbeat_interval_s * settings.heartbeat_gap_factor)
+    if beat.listening:
+        if seg is not None and dt.timedelta(0) <= now - seg.ended_at <= gap:
+            seg.ended_at = now
+            seg.heartbeats += 1
+        else:
+            if seg is not None:
+                seg.is_open = False
+            session.add(ListeningSegment(device_id=device.id, started_at=now, ended_at=now, is_open=True))
+    elif seg is not None:
+        seg.is_open = False
+    session.flush()
+    r = rng or random
+    jitter = settings.heartbeat_jitter
+    interval = device.heartbeat_interval_s * (1.0 + r.uniform(-jitter, jitter))
+    return now, max(1, round(interval))
+
+
+def listening_seconds(session: Session, device_ids: list[int], since: dt.datetime,
+                      until: dt.datetime) -> dict[int, float]:
+    """Seconds of listening per device inside [since, until], from stored segments."""
+    if not device_ids:
+        return {}
+    rows = session.execute(
+        select(ListeningSegment.device_id, ListeningSegment.started_at, ListeningSegment.ended_at)
+        .where(ListeningSegment.device_id.in_(device_ids), ListeningSegment.ended_at > since,
+               ListeningSegment.started_at < until))
+    out: dict[int, float] = dict.fromkeys(device_ids, 0.0)
+    for dev_id, start, end in rows:
+        s, e = max(start, since), min(end, until)
+        if e > s:
+            out[dev_id] += (e - s).total_seconds()
+    return out
+
+
+# --- attribution ----------------------------------------------------------------------------
+
+def installation_at(session: Session, device_id: int, at: dt.datetime) -> Installation | None:
+    """The installation of the device active at ``at`` (from inclusive, to exclusive)."""
+    return session.scalar(
+        select(Installation)
+        .where(Installation.device_id == device_id, Installation.installed_at <= at,
+               (Installation.removed_at.is_(None)) | (Installation.removed_at > at))
+        .order_by(Installation.installed_at.desc()).limit(1))
+
+
+def reattribute_alerts(session: Session, device_id: int) -> int:
+    """Re-resolve home and installation of every alert of a device; return how many changed."""
+    changed = 0
+    for alert in session.scalars(select(Alert).where(Alert.device_id == device_id)):
+        inst = installation_at(session, device_id, alert.effective_at)
+        new = (inst.id, inst.home_id) if inst else (None, None)
+        if (alert.installation_id, alert.home_id) != new:
+            alert.installation_id, alert.home_id = new
+            changed += 1
+    session.flush()
+    return changed
+
+
+# --- alerts ---------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class IngestResult:
+    alert: Alert
+    duplicate: bool
+
+
+def _parse_meta(raw: bytes) -> tuple[str, dict[str, object]]:
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InvalidMeta("The 'meta' part is not UTF-8 text.") from exc
+    try:
+        data = json.loads(text, parse_constant=_reject_constant)
+    except ValueError as exc:
+        raise InvalidMeta(f"The 'meta' part is not valid JSON: {exc}.") from exc
+    if not isinstance(data, dict):
+        raise InvalidMeta("The 'meta' part must be a JSON object.")
+    try:
+        ev = EventIdOnly.model_validate(data)
+    except ValidationError as exc:
+        raise InvalidMeta(_first_error(exc), field="event_id") from exc
+    return ev.event_id, data
+
+
+def _reject_constant(name: str) -> object:
+    raise ValueError(f"{name} is not a JSON number")
+
+
+def _first_error(exc: ValidationError) -> str:
+    err = exc.errors()[0]
+    loc = ".".join(str(p) for p in err.get("loc", ()))
+    return f"'meta' field '{loc}': {err.get('msg', 'invalid')}." if loc else f"'meta': {err.get('msg')}."
+
+
+def find_alert_by_event(session: Session, device_id: int, event_id: str) -> Alert | None:
+    return session.scalar(select(Alert).where(Alert.device_id == device_id, Alert.event_id == event_id))
+
+
+def _duplicate_or_conflict(existing: Alert, sha: str) -> IngestResult:
+    if existing.clip.sha256 == sha:
+        return IngestResult(existing, True)
+    raise EventIdConflict(
+        f"event_id '{existing.event_id}' was already used by this device for a different clip "
+        f"(alert {existing.id}); give each detection its own event_id.")
+
+
+def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, device: Device,
+                 meta_raw: bytes, upload: SpooledUpload, now: dt.datetime | None = None) -> IngestResult:
+    """Check and store one alert clip. Bytes are stored as received, before the row commits."""
+    now = now or utcnow()
+    event_id, data = _parse_meta(meta_raw)
+    sha = upload.sha256
+    existing = find_alert_by_event(session, device.id, event_id)
+    if existing is not None:
+        return _duplicate_or_conflict(existing, sha)
+    try:
+        meta = AlertMeta.model_validate_json(meta_raw)
+    except ValidationError as exc:
+        raise InvalidMeta(_first_error(exc)) from exc
+    trial = session.get(Trial, device.trial_id)
+    assert trial is not None
+    if meta.sound_class not in trial.sound_classes:
+        raise UnknownSoundClass(f"sound_class '{meta.sound_class}' is not one of this trial's classes: "
+                                f"{', '.join(trial.sound_classes)}.", field="sound_class")
+    _check_time_window(meta.detected_at, now, settings, "detected_at", InvalidMeta)
+    if meta.clip_sha256 is not None and meta.clip_sha256 != sha:
+        raise ClipDigestMismatch(f"clip_sha256 says {meta.clip_sha256} but the clip's SHA-256 is {sha}.")
+    upload.finish()
+    info = audio.probe(upload.path, min_rate_hz=settings.min_rate_hz, max_rate_hz=settings.max_rate_hz,
+                       min_duration_s=settings.min_clip_s, max_duration_s=settings.max_clip_s)
+    if meta.clip_offset_s > info.duration_s:
+        raise InvalidMeta(f"clip_offset_s is {meta.clip_offset_s} s but the clip lasts only "
+                          f"{info.duration_s:.3f} s.", field="clip_offset_s")
+    size = upload.size
+    key = store.put_file(upload.path, sha)  # durable before the row commits
+    clip = _get_or_create_clip(session, sha, key, info, size)
+    skew = device.clock_skew_s if device.clock_skew_s and abs(device.clock_skew_s) >= 1.0 else None
+    alert = Alert(device_id=device.id, trial_id=device.trial_id, event_id=event_id,
+                  sound_class=meta.sound_class, score=meta.score, detected_at=meta.detected_at,
+                  detected_at_text=str(data.get("detected_at"))[:64], clock_skew_s=skew,
+                  received_at=now, firmware=meta.firmware, clip_id=clip.id,
+                  clip_offset_s=meta.clip_offset_s)
+    inst = installation_at(session, device.id, alert.effective_at)
+    if inst is not None:
+        alert.installation_id, alert.home_id = inst.id, inst.home_id
+    try:
+        with session.begin_nested():
+            session.add(alert)
+            session.flush()
+    except IntegrityError:
+        # A simultaneous upload of the same event_id won the unique constraint.
+        existing = find_alert_by_event(session, device.id, event_id)
+        if existing is None:
+            raise
+        return _duplicate_or_conflict(existing, sha)
+    alert.clip = clip
+    return IngestResult(alert, False)
+
+
+def _get_or_create_clip(session: Session, sha: str, key: str, info: audio.ClipInfo, size: int) -> Clip:
+    clip = session.scalar(select(Clip).where(Clip.sha256 == sha))
+    if clip is not None:
+        if clip.erased_at is not None:
+            clip.erased_at, clip.erased_reason, clip.storage_key = None, None, key
+        return clip
+    clip = Clip(sha256=sha, storage_key=key, format=info.format, subtype=info.subtype,
+                sample_rate_hz=info.sample_rate_hz, channels=info.channels, frames=info.frames,
+                duration_s=info.duration_s, peak_dbfs=info.peak_dbfs, rms_dbfs=info.rms_dbfs,
+                clipped_fraction=info.clipped_fraction, size_bytes=size)
+    try:
+        with session.begin_nested():
+            session.add(clip)
+            session.flush()
+    except IntegrityError:
+        clip = session.scalar(select(Clip).where(Clip.sha256 == sha))
+        if clip is None:
+            raise
+    return clip
+
+
+def list_alerts(session: Session, *, limit: int = 200, offset: int = 0, device_id: int | None = None,
+                trial_id: int | None = None) -> list[Alert]:
+    q = select(Alert).order_by(Alert.received_at.desc(), Alert.id.desc())
+    if device_id is not None:
+        q = q.where(Alert.device_id == device_id)
+    if trial_id is not None:
+        q = q.where(Alert.trial_id == trial_id)
+    return list(session.scalars(q.limit(limit).offset(offset)))
+
+
+def get_alert(session: Session, alert_id: int) -> Alert:
+    alert = session.get(Alert, alert_id)
+    if alert is None:
+        raise NotFound(f"No alert has id {alert_id}.", code="unknown_alert")
+    return alert
+
+
+def count_alerts(session: Session) -> int:
+    return session.scalar(select(func.count(Alert.id))) or 0
+
+
+def mark_clip_erased(session: Session, clip: Clip, reason: str) -> None:
+    session.execute(update(Clip).where(Clip.id == clip.id).values(erased_at=utcnow(), erased_reason=reason))

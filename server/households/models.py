@@ -1,0 +1,152 @@
+"""Homes, their lifecycle, consent, personal data, attributes, quota, installations and staged events."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+from sqlalchemy import JSON, Float, ForeignKey, Index, String, Text, UniqueConstraint
+from sqlalchemy.orm import Mapped, mapped_column, relationship
+
+from server.db import Base, UTCDateTime, utcnow
+
+
+class HomeState:
+    candidate = "candidate"
+    screened = "screened"
+    consented = "consented"
+    installed = "installed"
+    active = "active"
+    paused = "paused"
+    withdrawn = "withdrawn"
+    declined = "declined"
+
+    all = (candidate, screened, consented, installed, active, paused, withdrawn, declined)
+    # States in which a home's installed devices contribute monitored time.
+    monitored = (installed, active, paused)
+
+
+ROOMS = ("kitchen", "hallway", "landing", "living_room", "nursery", "bedroom", "other")
+
+
+class Home(Base):
+    __tablename__ = "home"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id"), index=True)
+    code: Mapped[str] = mapped_column(String(16), unique=True)
+    state: Mapped[str] = mapped_column(String(20), default=HomeState.candidate)
+    state_changed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # Catalogue key -> value (bool, str or int), validated against AttributeDefinition.
+    attributes: Mapped[dict[str, Any]] = mapped_column(default=dict)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    erased_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+
+    def __repr__(self) -> str:
+        return f"<Home {self.code} {self.state}>"
+
+
+class HomeStateChange(Base):
+    __tablename__ = "home_state_change"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    home_id: Mapped[int] = mapped_column(ForeignKey("home.id", ondelete="CASCADE"), index=True)
+    from_state: Mapped[str | None] = mapped_column(String(20))
+    to_state: Mapped[str] = mapped_column(String(20))
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    by_id: Mapped[int | None] = mapped_column(ForeignKey("user_account.id", ondelete="SET NULL"))
+    note: Mapped[str | None] = mapped_column(Text)
+    # Paused homes may keep listening (monitored) or not; recorded on the pause transition.
+    listening: Mapped[bool] = mapped_column(default=True)
+
+
+class Consent(Base):
+    __tablename__ = "consent"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    home_id: Mapped[int] = mapped_column(ForeignKey("home.id", ondelete="CASCADE"), index=True)
+    form_version: Mapped[str] = mapped_column(String(40))
+    consented_on: Mapped[dt.date]
+    staff_may_listen: Mapped[bool] = mapped_column(default=True)
+    retention_days: Mapped[int] = mapped_column(default=90)
+    recorded_by_id: Mapped[int | None] = mapped_column(ForeignKey("user_account.id", ondelete="SET NULL"))
+    recorded_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class HomeContact(Base):
+    """Personal data: shown only to coordinators and admins; every view and export is audited."""
+
+    __tablename__ = "home_contact"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    home_id: Mapped[int] = mapped_column(ForeignKey("home.id", ondelete="CASCADE"), unique=True)
+    names: Mapped[str] = mapped_column(String(300), default="")
+    address: Mapped[str] = mapped_column(Text, default="")
+    phone: Mapped[str] = mapped_column(String(60), default="")
+    email: Mapped[str] = mapped_column(String(254), default="")
+    access_notes: Mapped[str] = mapped_column(Text, default="")
+    updated_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+class AttributeDefinition(Base):
+    __tablename__ = "attribute_definition"
+    __table_args__ = (UniqueConstraint("trial_id", "key", name="uq_attribute_definition_trial_key"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id", ondelete="CASCADE"))
+    key: Mapped[str] = mapped_column(String(60))
+    label: Mapped[str] = mapped_column(String(200))
+    # yes_no | one_of | whole_number
+    kind: Mapped[str] = mapped_column(String(20))
+    options: Mapped[list[str]] = mapped_column(default=list)
+    position: Mapped[int] = mapped_column(default=0)
+
+
+class QuotaTarget(Base):
+    """At least / at most N homes with attribute = value; attribute_key NULL means the total."""
+
+    __tablename__ = "quota_target"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id", ondelete="CASCADE"), index=True)
+    label: Mapped[str] = mapped_column(String(200))
+    attribute_key: Mapped[str | None] = mapped_column(String(60))
+    # JSON-encoded value to match (true, "flat", 2); NULL with a key means "any truthy value".
+    value: Mapped[Any] = mapped_column(JSON, nullable=True)
+    min_count: Mapped[int | None]
+    max_count: Mapped[int | None]
+    position: Mapped[int] = mapped_column(default=0)
+
+
+class Installation(Base):
+    """A device in a home and room from installed_at until removed_at (open-ended when NULL)."""
+
+    __tablename__ = "installation"
+    __table_args__ = (Index("ix_installation_device_from", "device_id", "installed_at"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    device_id: Mapped[int] = mapped_column(ForeignKey("device.id"))
+    home_id: Mapped[int] = mapped_column(ForeignKey("home.id"), index=True)
+    room: Mapped[str] = mapped_column(String(20))
+    installed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    removed_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    home: Mapped[Home] = relationship(lazy="joined")
+
+
+class StagedEvent(Base):
+    """A test sound played on purpose in a home, to measure detection."""
+
+    __tablename__ = "staged_event"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id"), index=True)
+    home_id: Mapped[int] = mapped_column(ForeignKey("home.id"), index=True)
+    sound_class: Mapped[str] = mapped_column(String(64))
+    started_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    ended_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    source: Mapped[str] = mapped_column(Text, default="")
+    level_db: Mapped[float | None] = mapped_column(Float)
+    created_by_id: Mapped[int | None] = mapped_column(ForeignKey("user_account.id", ondelete="SET NULL"))
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)

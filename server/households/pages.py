@@ -1,0 +1,7 @@
+"""households pages routes."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter
+
+router = APIRouter()

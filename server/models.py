@@ -1,0 +1,10 @@
+"""Imports every model module so that Base.metadata knows all tables (Alembic, tests)."""
+
+from server.auth import models as auth_models  # noqa: F401
+from server.devices import models as device_models  # noqa: F401
+from server.households import models as household_models  # noqa: F401
+from server.review import models as review_models  # noqa: F401
+from server.trials import models as trial_models  # noqa: F401
+from server.db import Base
+
+metadata = Base.metadata

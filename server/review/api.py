@@ -1,0 +1,7 @@
+"""review api routes."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter
+
+router = APIRouter()

@@ -1,0 +1,49 @@
+"""A trial: the pilot that devices, homes and alerts belong to."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+from sqlalchemy import Float, String
+from sqlalchemy.orm import Mapped, mapped_column
+
+from server.db import Base, UTCDateTime, utcnow
+
+DEFAULT_CAUSES: list[dict[str, Any]] = [
+    {"code": "speech", "label": "Speech or shouting"},
+    {"code": "tv_radio_music", "label": "TV, radio or music"},
+    {"code": "dog", "label": "Dog"},
+    {"code": "cat_other_pet", "label": "Cat or other pet"},
+    {"code": "other_child_sound", "label": "Another child sound"},
+    {"code": "kitchen_cooking", "label": "Kitchen and cooking"},
+    {"code": "appliance", "label": "Household appliance"},
+    {"code": "door_knock_impact", "label": "Door, knock or impact"},
+    {"code": "other_alarm_beep", "label": "Another alarm or beep"},
+    {"code": "traffic_aircraft", "label": "Traffic or aircraft outside"},
+    {"code": "tools_building", "label": "Tools or building work"},
+    {"code": "unknown", "label": "Unknown"},
+]
+
+
+class Trial(Base):
+    __tablename__ = "trial"
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    code: Mapped[str] = mapped_column(String(40), unique=True)
+    name: Mapped[str] = mapped_column(String(200))
+    starts_on: Mapped[dt.date]
+    ends_on: Mapped[dt.date | None]
+    sound_classes: Mapped[list[str]]
+    fa_target_per_home_month: Mapped[float] = mapped_column(Float, default=1.0)
+    # IANA zone name; local times on pages and reports are shown in it.
+    timezone: Mapped[str] = mapped_column(String(64), default="UTC")
+    causes: Mapped[list[dict[str, Any]]] = mapped_column(default=lambda: [dict(c) for c in DEFAULT_CAUSES])
+    second_review_share: Mapped[float] = mapped_column(Float, default=0.10)
+    # Lifecycle states whose homes count toward the recruitment quota.
+    quota_states: Mapped[list[str]] = mapped_column(
+        default=lambda: ["consented", "installed", "active"])
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+    def __repr__(self) -> str:
+        return f"<Trial {self.code}>"

@@ -1,0 +1,365 @@
+"""Agreement maths against published worked examples and reference libraries."""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+
+import krippendorff
+import numpy as np
+import pandas as pd
+import pytest
+from sklearn.metrics import cohen_kappa_score
+
+from server.review import agreement as ag
+
+# Tolerance rule from reference/checks.md: half a unit in the last printed digit.
+HALF_3DP = 0.0005
+HALF_2DP = 0.005
+
+
+def _expand(table: list[list[int]]) -> tuple[list[int], list[int]]:
+    a: list[int] = []
+    b: list[int] = []
+    for i, row in enumerate(table):
+        for j, c in enumerate(row):
+            a += [i] * c
+            b += [j] * c
+    return a, b
+
+
+# ---------------------------------------------------------------- Cohen's kappa, published tables
+
+# Cohen J (1960) Educ Psychol Meas 20:37-46, Table 2b, N = 200 (figures from memory; full
+# precision 0.491525 recomputed in checks.md section 5).
+COHEN_1960_2B = [[88, 14, 18], [10, 40, 10], [2, 6, 12]]
+# Altman DG (1991) Practical Statistics for Medical Research, section 14.3, Table 14.2.
+ALTMAN_14_2 = [[21, 12, 0, 0], [4, 17, 1, 0], [3, 9, 15, 2], [0, 0, 0, 1]]
+# Altman DG (1991), Table 14.4(a), the prevalence example.
+ALTMAN_14_4A = [[70, 10], [10, 10]]
+
+
+def test_cohen_1960_table_2b_published_figures() -> None:
+    k = ag.cohen_kappa_from_table(COHEN_1960_2B)
+    # Cohen (1960) Table 2b: p_o 0.70, p_c 0.41, kappa 0.492.
+    assert abs(k.observed - 0.70) <= HALF_2DP
+    assert abs(k.expected - 0.41) <= HALF_2DP
+    assert abs(k.estimate - 0.492) <= HALF_3DP
+    assert k.estimate == pytest.approx(0.491525, abs=5e-7)  # full precision, checks.md section 5
+    assert k.n == 200
+
+
+def test_altman_table_14_2_unweighted_and_linear() -> None:
+    # Altman (1991) Table 14.2: kappa 0.47, linearly weighted kappa 0.57.
+    k = ag.cohen_kappa_from_table(ALTMAN_14_2)
+    kw = ag.cohen_kappa_from_table(ALTMAN_14_2, weights="linear")
+    assert abs(k.estimate - 0.47) <= HALF_2DP
+    assert abs(kw.estimate - 0.57) <= HALF_2DP
+    assert k.estimate == pytest.approx(0.472789, abs=5e-7)
+    assert kw.estimate == pytest.approx(0.568399, abs=5e-7)
+    assert k.n == 85
+
+
+def test_altman_table_14_4a_prevalence_example() -> None:
+    # Altman (1991) Table 14.4(a): kappa 0.38, exactly 0.375.
+    k = ag.cohen_kappa_from_table(ALTMAN_14_4A)
+    assert k.estimate == pytest.approx(0.375, abs=1e-12)
+    assert k.observed == pytest.approx(0.80)
+
+
+def test_house_style_two_reviewer_example() -> None:
+    # STYLE.md reference table (Cohen 1960 definition, worked by hand): 40 both true,
+    # 45 both false, 5 + 10 split -> 0.70.
+    first = ["confirmed"] * 40 + ["false_alarm"] * 45 + ["confirmed"] * 5 + ["false_alarm"] * 10
+    second = ["confirmed"] * 40 + ["false_alarm"] * 45 + ["false_alarm"] * 5 + ["confirmed"] * 10
+    assert ag.cohen_kappa(first, second).estimate == pytest.approx(0.70, abs=1e-12)
+
+
+@pytest.mark.parametrize("table", [COHEN_1960_2B, ALTMAN_14_2, ALTMAN_14_4A])
+def test_kappa_from_labels_equals_kappa_from_table(table: list[list[int]]) -> None:
+    a, b = _expand(table)
+    labels = list(range(len(table)))
+    assert ag.cohen_kappa(a, b, labels=labels).estimate == pytest.approx(
+        ag.cohen_kappa_from_table(table).estimate, abs=1e-12)
+
+
+@pytest.mark.parametrize("seed", range(8))
+@pytest.mark.parametrize("weights", [None, "linear", "quadratic"])
+def test_kappa_matches_scikit_learn_on_random_labels(seed: int, weights: str | None) -> None:
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(20, 300))
+    k = int(rng.integers(2, 6))
+    a = rng.integers(0, k, n)
+    # Second reviewer copies the first most of the time, so kappa is far from 0.
+    b = np.where(rng.random(n) < 0.6, a, rng.integers(0, k, n))
+    ours = ag.cohen_kappa(a.tolist(), b.tolist(), labels=list(range(k)), weights=weights)  # type: ignore[arg-type]
+    ref = cohen_kappa_score(a, b, labels=list(range(k)), weights=weights)
+    assert ours.estimate == pytest.approx(ref, abs=1e-12)
+
+
+def test_kappa_undefined_when_both_use_one_label() -> None:
+    k = ag.cohen_kappa(["confirmed"] * 5, ["confirmed"] * 5)
+    assert math.isnan(k.estimate)
+    assert k.reason is not None and "single" in k.reason
+    assert k.observed == 1.0
+
+
+def test_kappa_of_empty_input_is_nan_with_reason() -> None:
+    k = ag.cohen_kappa([], [])
+    assert math.isnan(k.estimate) and k.n == 0 and k.reason
+
+
+def test_kappa_rejects_non_square_table_and_unequal_lengths() -> None:
+    with pytest.raises(ValueError):
+        ag.cohen_kappa_from_table([[1, 2, 3], [4, 5, 6]])
+    with pytest.raises(ValueError):
+        ag.cohen_kappa([1, 2], [1])
+
+
+# ---------------------------------------------------------------- percentage agreement, confusion
+
+
+def test_percent_agreement_counts_matches() -> None:
+    r = ag.percent_agreement(["a", "b", "a", "c"], ["a", "a", "a", "c"])
+    assert (r.agreed, r.n) == (3, 4)
+    assert r.estimate == 0.75
+
+
+def test_percent_agreement_matches_table_diagonal() -> None:
+    a, b = _expand(COHEN_1960_2B)
+    assert ag.percent_agreement(a, b).estimate == pytest.approx(140 / 200)
+
+
+def test_percent_agreement_empty_is_nan() -> None:
+    r = ag.percent_agreement([], [])
+    assert math.isnan(r.estimate) and r.reason
+
+
+def test_confusion_matrix_rebuilds_published_table() -> None:
+    a, b = _expand(ALTMAN_14_2)
+    cm = ag.confusion_matrix(a, b, labels=[0, 1, 2, 3])
+    assert cm.counts.tolist() == ALTMAN_14_2
+    assert cm.n == 85
+
+
+def test_confusion_matrix_keeps_given_order_and_unused_labels() -> None:
+    cm = ag.confusion_matrix(["false_alarm", "confirmed"], ["false_alarm", "unsure"],
+                             labels=["confirmed", "false_alarm", "unsure", "unusable"])
+    assert cm.labels == ("confirmed", "false_alarm", "unsure", "unusable")
+    assert cm.counts.tolist() == [[0, 0, 1, 0], [0, 1, 0, 0], [0, 0, 0, 0], [0, 0, 0, 0]]
+    with pytest.raises(ValueError):
+        ag.confusion_matrix(["x"], ["confirmed"], labels=["confirmed"])
+
+
+# ---------------------------------------------------------------- Krippendorff's alpha
+
+N = None
+
+
+def test_krippendorff_2011_section_a_binary_two_coders() -> None:
+    # Krippendorff (2011) "Computing Krippendorff's Alpha-Reliability", section A: alpha 0.095.
+    data = [[0, 1, 0, 0, 0, 0, 0, 0, 1, 0],
+            [1, 1, 1, 0, 0, 1, 0, 0, 0, 0]]
+    a = ag.krippendorff_alpha_nominal(data)
+    assert abs(a.estimate - 0.095) <= HALF_3DP
+    assert a.estimate == pytest.approx(1 - 19 * 4 / (14 * 6), abs=1e-12)  # derived form, checks.md
+
+
+def test_krippendorff_2011_section_c_nominal_missing_values() -> None:
+    # Krippendorff (2011), section C: four coders, twelve units, missing values; alpha 0.743.
+    data = [[1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
+            [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
+            [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
+            [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N]]
+    a = ag.krippendorff_alpha_nominal(data)
+    assert abs(a.estimate - 0.743) <= HALF_3DP
+    assert a.estimate == pytest.approx(0.743421, abs=5e-7)
+    # Unit 12 holds a single value: not pairable, so 11 units and 40 pairable values remain.
+    assert a.n_units == 11
+    assert a.n_pairable_values == 40
+
+
+def test_alpha_is_unchanged_when_lone_value_moves_coder() -> None:
+    # checks.md section 7: putting unit 12's single value under coder C gives the same alpha.
+    data_b = [[1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
+              [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
+              [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
+              [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N]]
+    data_c = [row[:] for row in data_b]
+    data_c[1][11], data_c[2][11] = N, 3
+    assert ag.krippendorff_alpha_nominal(data_b).estimate == pytest.approx(
+        ag.krippendorff_alpha_nominal(data_c).estimate, abs=1e-15)
+
+
+def test_alpha_accepts_string_labels_and_nan_missing() -> None:
+    words = {1: "confirmed", 2: "false_alarm", 3: "unsure", 4: "unusable", 5: "other"}
+    data = [[1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
+            [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
+            [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
+            [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N]]
+    as_words = [[words[v] if v is not None else math.nan for v in row] for row in data]
+    assert ag.krippendorff_alpha_nominal(as_words).estimate == pytest.approx(0.743421, abs=5e-7)
+
+
+@pytest.mark.parametrize("seed", range(10))
+def test_alpha_matches_krippendorff_package_on_random_data(seed: int) -> None:
+    rng = np.random.default_rng(1000 + seed)
+    coders = int(rng.integers(2, 6))
+    units = int(rng.integers(10, 80))
+    k = int(rng.integers(2, 5))
+    truth = rng.integers(0, k, units)
+    noise = rng.integers(0, k, (coders, units))
+    data = np.where(rng.random((coders, units)) < 0.7, truth, noise).astype(float)
+    data[rng.random((coders, units)) < 0.3] = np.nan
+    ours = ag.krippendorff_alpha_nominal(data.tolist())
+    ref = krippendorff.alpha(reliability_data=data, level_of_measurement="nominal")
+    assert ours.estimate == pytest.approx(ref, abs=1e-12)
+
+
+def test_alpha_for_two_coders_without_missing_is_close_to_cohen() -> None:
+    # Property (common practice): alpha and kappa differ only by the chance model and the
+    # n/(n-1) correction, so on 200 items they sit within a few thousandths.
+    a, b = _expand(COHEN_1960_2B)
+    alpha = ag.krippendorff_alpha_nominal([a, b]).estimate
+    kappa = ag.cohen_kappa(a, b).estimate
+    assert abs(alpha - kappa) < 0.02
+    assert alpha != kappa
+
+
+def test_alpha_undefined_cases_have_reasons() -> None:
+    no_pairs = ag.krippendorff_alpha_nominal([[1, N], [N, 2]])
+    assert math.isnan(no_pairs.estimate) and "two or more" in (no_pairs.reason or "")
+    same = ag.krippendorff_alpha_nominal([[1, 1, 1], [1, 1, 1]])
+    assert math.isnan(same.estimate) and same.reason
+    assert same.observed_disagreement == 0.0
+
+
+def test_perfect_agreement_gives_alpha_one() -> None:
+    assert ag.krippendorff_alpha_nominal([[1, 2, 3, N], [1, 2, 3, 3]]).estimate == pytest.approx(1.0)
+
+
+# ---------------------------------------------------------------- from a verdict frame
+
+
+def _frame(rows: list[tuple[int, int, str]]) -> pd.DataFrame:
+    return pd.DataFrame([{"alert_id": a, "reviewer_id": r, "label": lab, "order": i}
+                         for i, (a, r, lab) in enumerate(rows)])
+
+
+def test_paired_labels_takes_first_two_distinct_reviewers() -> None:
+    frame = _frame([(1, 10, "confirmed"), (1, 11, "false_alarm"), (1, 12, "confirmed"),
+                    (2, 10, "unsure"), (3, 11, "confirmed"), (3, 11, "false_alarm"), (3, 12, "confirmed")])
+    first, second = ag.paired_labels(frame)
+    # Alert 2 has one verdict; alert 3's repeat by reviewer 11 is not a second reviewer.
+    assert first == ["confirmed", "confirmed"]
+    assert second == ["false_alarm", "confirmed"]
+
+
+def test_pairwise_kappas_only_for_pairs_with_enough_shared_items() -> None:
+    rng = np.random.default_rng(7)
+    labels = ["confirmed", "false_alarm", "unsure"]
+    rows = []
+    for alert in range(30):  # reviewers 1 and 2 share 30 items
+        x = labels[int(rng.integers(0, 3))]
+        y = x if rng.random() < 0.7 else labels[int(rng.integers(0, 3))]
+        rows += [(alert, 1, x), (alert, 2, y)]
+    for alert in range(100, 110):  # reviewers 1 and 3 share only 10
+        rows += [(alert, 1, "confirmed"), (alert, 3, "confirmed")]
+    frame = _frame(rows)
+    pairs = ag.pairwise_kappas(frame, min_shared=20)
+    assert [(p.reviewer_a, p.reviewer_b, p.shared) for p in pairs] == [(1, 2, 30)]
+    a = [lab for (al, r, lab) in rows if r == 1 and al < 100]
+    b = [lab for (al, r, lab) in rows if r == 2]
+    assert pairs[0].kappa.estimate == pytest.approx(cohen_kappa_score(a, b), abs=1e-12)
+    assert len(ag.pairwise_kappas(frame, min_shared=10)) == 2
+
+
+def test_reliability_matrix_feeds_alpha() -> None:
+    frame = _frame([(1, 10, "confirmed"), (1, 11, "confirmed"), (2, 10, "false_alarm"),
+                    (2, 11, "unsure"), (3, 11, "unsure")])
+    m = ag.reliability_matrix(frame)
+    assert m == [["confirmed", "false_alarm", None], ["confirmed", "unsure", "unsure"]]
+    codes = {"confirmed": 0, "false_alarm": 1, "unsure": 2}
+    numeric = np.array([[codes[v] if v else np.nan for v in row] for row in m], dtype=float)
+    ref = krippendorff.alpha(reliability_data=numeric, level_of_measurement="nominal")
+    assert ag.krippendorff_alpha_nominal(m).estimate == pytest.approx(ref, abs=1e-12)
+
+
+# ---------------------------------------------------------------- gold accuracy (Wilson)
+
+
+def test_wilson_interval_newcombe_1998_table_1() -> None:
+    # Newcombe (1998) Stat Med 17:857-872, Table I, method 3 (Wilson): 81/263 -> 0.2553, 0.3662.
+    p = ag.wilson_interval(81, 263)
+    assert abs(p.low - 0.2553) <= 0.00005 and abs(p.high - 0.3662) <= 0.00005
+    assert p.low == pytest.approx(0.255289, abs=5e-7) and p.high == pytest.approx(0.366210, abs=5e-7)
+    # Same table: 0/20 -> 0.0000, 0.1611, with the lower limit exactly 0.
+    z = ag.wilson_interval(0, 20)
+    assert z.low == 0.0 and z.high == pytest.approx(0.161125, abs=5e-7)
+
+
+def test_wilson_interval_house_style_value_and_edges() -> None:
+    # STYLE.md reference table, recomputed from Wilson's 1927 formula: 7 of 50 -> 0.0695-0.2619.
+    p = ag.wilson_interval(7, 50)
+    assert abs(p.low - 0.0695) <= 0.00005 and abs(p.high - 0.2619) <= 0.00005
+    full = ag.wilson_interval(20, 20)
+    assert full.high == 1.0 and full.low < 1.0
+    none = ag.wilson_interval(0, 0)
+    assert math.isnan(none.estimate) and none.reason
+    assert ag.wilson_interval(7, 50, 0.99).low < p.low  # widens with the confidence level
+
+
+def test_gold_accuracy_per_reviewer() -> None:
+    answers = pd.DataFrame({
+        "reviewer_id": [1, 1, 1, 1, 2, 2],
+        "label": ["confirmed", "false_alarm", "confirmed", "unsure", "confirmed", "confirmed"],
+        "expected_label": ["confirmed", "false_alarm", "false_alarm", "confirmed", "confirmed", "confirmed"],
+    })
+    res = {g.reviewer_id: g.accuracy for g in ag.gold_accuracy(answers)}
+    assert (res[1].successes, res[1].n, res[1].estimate) == (2, 4, 0.5)
+    assert (res[2].successes, res[2].n) == (2, 2)
+    assert res[2].high == 1.0 and res[1].method == "wilson"
+    assert res[1].low <= 0.5 <= res[1].high
+    # A stored ``correct`` column (label and cause both judged) takes precedence.
+    answers["correct"] = [True, True, True, True, False, True]
+    res = {g.reviewer_id: g.accuracy for g in ag.gold_accuracy(answers)}
+    assert (res[1].successes, res[2].successes) == (4, 1)
+
+
+# ---------------------------------------------------------------- throughput and backlog
+
+T0 = dt.datetime(2031, 3, 3, 9, 0, tzinfo=dt.UTC)
+
+
+def test_throughput_counts_gaps_within_idle_limit() -> None:
+    times = [T0 + dt.timedelta(seconds=s) for s in (0, 30, 60, 90, 2000, 2040)]
+    frame = pd.DataFrame({"reviewer_id": [5] * 6, "decided_at": times})
+    t = ag.throughput(frame, idle_gap_s=300)[5]
+    # Gaps 30, 30, 30 and 40 s are work; the 1910 s gap is a break. The clip that opens
+    # each stretch is not counted, so 4 of the 6 verdicts count.
+    assert t.clips == 4 and t.verdicts == 6
+    assert t.active_s == pytest.approx(130.0)
+    assert t.clips_per_hour == pytest.approx(4 / (130 / 3600))
+
+
+def test_throughput_overall_pools_reviewers_and_handles_no_activity() -> None:
+    frame = pd.DataFrame({
+        "reviewer_id": [1, 1, 1, 2],
+        "decided_at": [T0, T0 + dt.timedelta(seconds=60), T0 + dt.timedelta(seconds=120), T0],
+    })
+    res = ag.throughput(frame)
+    assert res[None].clips == 2 and res[None].active_s == pytest.approx(120.0)
+    assert res[None].clips_per_hour == pytest.approx(60.0)
+    assert math.isnan(res[2].clips_per_hour) and res[2].reason
+    empty = ag.throughput(pd.DataFrame(columns=["reviewer_id", "decided_at"]))
+    assert list(empty) == [None] and math.isnan(empty[None].clips_per_hour)
+
+
+def test_backlog_count_and_age() -> None:
+    now = T0 + dt.timedelta(hours=10)
+    b = ag.backlog([T0, T0 + dt.timedelta(hours=8), T0 + dt.timedelta(hours=9)], now)
+    assert b.count == 3
+    assert b.oldest_age_s == pytest.approx(36000.0)
+    assert b.median_age_s == pytest.approx(7200.0)
+    e = ag.backlog([], now)
+    assert e.count == 0 and math.isnan(e.oldest_age_s) and e.reason
