@@ -200,7 +200,8 @@ def poisson_rates(
             "high": np.where(has_time, lim.high / safe_t, nan),
             "confidence_level": confidence_level,
             "method": method,
-            "reason": np.where(has_time, None, NO_MONITORED_TIME),
+            # object dtype keeps None (pandas would turn it into NaN in a string column).
+            "reason": pd.Series(np.where(has_time, None, NO_MONITORED_TIME), dtype=object),
         }
     )
 
@@ -231,7 +232,7 @@ def poisson_rate(
         high=float(row.high),
         confidence_level=confidence_level,
         method=method,
-        reason=row.reason,
+        reason=None if home_months > 0 else NO_MONITORED_TIME,
     )
 
 
@@ -377,10 +378,12 @@ def rate_ratio_test(
     """Exact conditional test of rate_a / rate_b = null_ratio (binomial on the split of counts).
 
     alternative: "two-sided" (probabilities no larger than the observed one, as in
-    scipy.stats.binomtest), "larger" (ratio above null_ratio) or "smaller". mid_p counts half the
-    probability of the observed split (the mid-p value; two-sided it is twice the smaller tail).
+    scipy.stats.binomtest), "larger" (ratio above null_ratio) or "smaller". mid_p subtracts half
+    the probability of the observed split from the p-value (the mid-p value; Lancaster 1961).
 
-    References: Gu et al. (2008), Biometrical Journal 50:283-298.
+    References: Gu et al. (2008), Biometrical Journal 50:283-298; Lancaster HO (1961) Significance
+    tests in discrete distributions. JASA 56:223-234 (from memory). Agrees with statsmodels
+    `test_poisson_2indep(method="exact-cond" | "cond-midp")`.
     """
     if alternative not in ("two-sided", "larger", "smaller"):
         raise ValueError(f"unknown alternative {alternative!r}")
@@ -394,17 +397,14 @@ def rate_ratio_test(
     at = float(stats.binom.pmf(events_a, n, p0))
     upper = float(stats.binom.sf(events_a - 1, n, p0))  # P(X >= x)
     lower = float(stats.binom.cdf(events_a, n, p0))  # P(X <= x)
-    if mid_p:
-        upper -= at / 2
-        lower -= at / 2
     if alternative == "larger":
         p = upper
     elif alternative == "smaller":
         p = lower
-    elif mid_p:
-        p = min(1.0, 2 * min(upper, lower))
     else:
         p = float(stats.binomtest(events_a, n, p0).pvalue)
+    if mid_p:
+        p -= at / 2
     return RatioTest(null_ratio=null_ratio, alternative=alternative, p_value=p, method=method)
 
 

@@ -64,6 +64,9 @@ import soundfile as sf
 from server.errors import UnreadableAudio, UnsupportedAudio, UnsupportedChannels
 
 LEVEL_FLOOR_DBFS = -120.0
+# decode_mono's ceiling: it has no duration limit, but must not let a small FLAC expand unbounded.
+DECODE_MONO_MAX_S = 600.0
+_READ_BLOCK_FRAMES = 1 << 16
 
 _WAVE_FORMAT_PCM = 0x0001
 _WAVE_FORMAT_IEEE_FLOAT = 0x0003
@@ -120,7 +123,7 @@ class _Header:
     bits: int
     channels: int
     sample_rate_hz: int
-    frames: int | None  # from the header; None when the header does not say (FLAC total 0)
+    frames: int  # as the header declares them
     flac_md5: bytes | None = None
 
 
@@ -141,17 +144,32 @@ def probe(source: bytes | bytearray | memoryview | str | os.PathLike[str], *,
     header = _parse_header(data)
     _check_mono(header)
     rate = header.sample_rate_hz
-    if rate < min_rate_hz or rate > max_rate_hz:
+    if rate < min_rate_hz:
         raise UnsupportedAudio(
-            f"The clip's sample rate is {rate} Hz; accepted rates are {min_rate_hz} to "
-            f"{max_rate_hz} Hz.")
-    samples = _decode(data, header)
+            f"The clip's sample rate is {rate} Hz, below the minimum of {min_rate_hz} Hz.")
+    if rate > max_rate_hz:
+        raise UnsupportedAudio(
+            f"The clip's sample rate is {rate} Hz, above the maximum of {max_rate_hz} Hz.")
+    samples, complete = _decode(data, header, max_frames=math.floor(max_duration_s * rate))
     frames = int(samples.shape[0])
     duration_s = frames / rate
-    if duration_s < min_duration_s or duration_s > max_duration_s:
+    if not complete:
+        if header.format == "WAV":  # the data chunk's size was checked against the file
+            frames = header.frames or frames
+            raise UnsupportedAudio(
+                f"The clip lasts {frames / rate:.3f} s ({frames} frames at {rate} Hz), longer "
+                f"than the maximum of {max_duration_s:g} s.")
         raise UnsupportedAudio(
-            f"The clip lasts {duration_s:.3f} s ({frames} frames at {rate} Hz); accepted "
-            f"clips last {min_duration_s:g} to {max_duration_s:g} s.")
+            f"The clip lasts more than {max_duration_s:g} s (decoding stopped after {frames} "
+            f"frames at {rate} Hz), longer than the maximum of {max_duration_s:g} s.")
+    if duration_s < min_duration_s:
+        raise UnsupportedAudio(
+            f"The clip lasts {duration_s:.3f} s ({frames} frames at {rate} Hz), shorter than "
+            f"the minimum of {min_duration_s:g} s.")
+    if duration_s > max_duration_s:
+        raise UnsupportedAudio(
+            f"The clip lasts {duration_s:.3f} s ({frames} frames at {rate} Hz), longer than "
+            f"the maximum of {max_duration_s:g} s.")
     peak_dbfs, rms_dbfs, clipped = _levels(samples[:, 0], header)
     return ClipInfo(format=header.format, subtype=header.subtype, sample_rate_hz=rate,
                     channels=header.channels, frames=frames, duration_s=duration_s,
@@ -163,12 +181,18 @@ def decode_mono(source: bytes | bytearray | memoryview | str | os.PathLike[str]
     """Decode an accepted clip to float32 samples in [-1, 1] and its sample rate.
 
     Applies the same format checks as ``probe`` but no rate or duration limits (for clips
-    already stored, e.g. to draw a spectrogram). Float samples beyond full scale are clipped.
+    already stored, e.g. to draw a spectrogram), apart from a ``DECODE_MONO_MAX_S`` ceiling.
+    Float samples beyond full scale are clipped.
     """
     data = _as_bytes(source)
     header = _parse_header(data)
     _check_mono(header)
-    samples = _decode(data, header)[:, 0]
+    rate = header.sample_rate_hz
+    samples, complete = _decode(data, header, max_frames=math.floor(DECODE_MONO_MAX_S * rate))
+    if not complete:
+        raise UnsupportedAudio(
+            f"The clip lasts more than {DECODE_MONO_MAX_S:g} s, longer than decoding allows.")
+    samples = samples[:, 0]
     return np.clip(samples, -1.0, 1.0).astype(np.float32, copy=False), header.sample_rate_hz
 
 
@@ -412,9 +436,14 @@ def _parse_flac(data: bytes) -> _Header:
         raise UnreadableAudio("The FLAC STREAMINFO declares a sample rate of 0 Hz.")
     if bits not in (16, 24):
         raise UnsupportedAudio(f"The FLAC stream holds {bits}-bit samples; send 16 or 24-bit FLAC.")
+    if total == 0:
+        # "Unknown length", as a streaming encoder leaves it: libsndfile cannot find the end
+        # of such a stream reliably, and truncation could not be told from the end.
+        raise UnreadableAudio(
+            "The FLAC STREAMINFO gives the total number of samples as 0 (unknown); let the "
+            "encoder finish the file so that it records the length.")
     return _Header(format="FLAC", subtype=f"PCM_{bits}", bits=bits, channels=channels,
-                   sample_rate_hz=rate, frames=total or None,
-                   flac_md5=md5 if any(md5) else None)
+                   sample_rate_hz=rate, frames=total, flac_md5=md5 if any(md5) else None)
 
 
 # ---------------------------------------------------------------------------------------
@@ -427,19 +456,28 @@ def _check_mono(header: _Header) -> None:
             f"The clip has {header.channels} channels; send mono (1 channel) audio.")
 
 
-def _decode(data: bytes, header: _Header) -> np.ndarray:
-    """Decode every frame as float32, shape (frames, channels), and check it against the header."""
+def _decode(data: bytes, header: _Header, max_frames: int) -> tuple[np.ndarray, bool]:
+    """Decode as float32, shape (frames, channels), and check the result against the header.
+
+    Reads at most ``max_frames + 1`` frames, so a small FLAC that expands to hours of audio
+    cannot exhaust memory; returns (samples, complete), complete False when it stopped there.
+    """
+    dtype = "int32" if header.flac_md5 is not None else "float32"
+    parts: list[np.ndarray] = []
+    total = 0
     try:
         with sf.SoundFile(io.BytesIO(data)) as f:
             lib_format, lib_subtype = f.format, f.subtype
             lib_rate, lib_channels = f.samplerate, f.channels
-            if header.flac_md5 is not None:
-                ints = f.read(dtype="int32", always_2d=True)
-                samples = ints.astype(np.float32) * np.float32(2.0 ** -31)
-            else:
-                ints = None
-                samples = f.read(dtype="float32", always_2d=True)
-    except (sf.SoundFileError, RuntimeError, ValueError, TypeError) as exc:
+            while total <= max_frames:
+                want = min(_READ_BLOCK_FRAMES, max_frames + 1 - total)
+                part = f.read(want, dtype=dtype, always_2d=True)
+                if part.shape[0]:
+                    parts.append(part)
+                    total += part.shape[0]
+                if part.shape[0] < want:
+                    break
+    except (sf.SoundFileError, RuntimeError, ValueError, TypeError, MemoryError) as exc:
         raise UnreadableAudio(
             f"The {header.format} clip failed to decode ({_short(exc)}); it looks damaged "
             "or truncated.") from None
@@ -450,8 +488,13 @@ def _decode(data: bytes, header: _Header) -> np.ndarray:
             f"The clip's header says {header.format} {header.subtype}, {header.sample_rate_hz} "
             f"Hz, {header.channels} channel(s), but it decodes as {lib_format} {lib_subtype}, "
             f"{lib_rate} Hz, {lib_channels} channel(s).")
+    decoded = np.concatenate(parts) if parts else np.zeros((0, header.channels), dtype=dtype)
+    if total > max_frames:
+        return _as_float(decoded), False
+    ints = decoded if dtype == "int32" else None
+    samples = _as_float(decoded)
     frames = samples.shape[0]
-    if header.frames is not None and frames != header.frames:
+    if frames != header.frames:
         raise UnreadableAudio(
             f"The clip's header declares {header.frames} frames but {frames} decode; it looks "
             "truncated or damaged.")
@@ -463,11 +506,17 @@ def _decode(data: bytes, header: _Header) -> np.ndarray:
             raw = shifted.astype("<i2").tobytes()
         else:
             raw = shifted.astype("<i4").view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
-        if hashlib.md5(raw).digest() != header.flac_md5:
+        if hashlib.md5(raw, usedforsecurity=False).digest() != header.flac_md5:
             raise UnreadableAudio(
                 "The FLAC audio does not match the MD5 signature in its STREAMINFO; it is "
                 "damaged.")
-    return samples
+    return samples, True
+
+
+def _as_float(decoded: np.ndarray) -> np.ndarray:
+    if decoded.dtype == np.int32:
+        return decoded.astype(np.float32) * np.float32(2.0 ** -31)
+    return decoded
 
 
 def _short(exc: Exception) -> str:

@@ -327,7 +327,7 @@ def test_sample_rate_outside_limits_is_unsupported(sox: str, tmp_path: Path, rat
     data = sox_write(sox, tmp_path / "r.wav", "-b", "16", rate=rate)
     err = assert_rejected(data, UnsupportedAudio, "unsupported_audio")
     assert str(rate) in err.message
-    assert ("48000" if rate > 48000 else "8000") in err.message
+    assert ("maximum of 48000 Hz" if rate > 48000 else "minimum of 8000 Hz") in err.message
 
 
 def test_rate_limits_come_from_the_arguments() -> None:
@@ -337,16 +337,26 @@ def test_rate_limits_come_from_the_arguments() -> None:
     assert "22050" in err.message and "16000" in err.message
 
 
-@pytest.mark.parametrize(("seconds", "limit"), [(0.2, "0.5"), (70.0, "60")])
+@pytest.mark.parametrize(("seconds", "limit"), [(0.2, "minimum of 0.5 s"), (70.0, "maximum of 60 s")])
 def test_duration_outside_limits_is_unsupported(seconds: float, limit: str) -> None:
     err = assert_rejected(sf_bytes(sine(seconds)), UnsupportedAudio, "unsupported_audio")
     assert f"{seconds:.3f} s" in err.message
-    assert f"{limit} s" in err.message
+    assert limit in err.message
 
 
-def test_duration_is_measured_on_decoded_frames(sox: str, tmp_path: Path) -> None:
-    data = sox_write(sox, tmp_path / "short.flac", "-b", "16", seconds=0.4999)
-    assert_rejected(data, UnsupportedAudio, "unsupported_audio")
+def test_long_flac_is_unsupported_without_decoding_it_all() -> None:
+    err = assert_rejected(sf_bytes(sine(70.0), fmt="FLAC"), UnsupportedAudio, "unsupported_audio")
+    assert "more than 60 s" in err.message
+
+
+def test_flac_of_unknown_length_is_unreadable() -> None:
+    # Total samples 0 and no MD5, as a streaming encoder leaves STREAMINFO (our rule: refused).
+    data = bytearray(sf_bytes(sine(), fmt="FLAC"))
+    packed = int.from_bytes(data[18:26], "big")
+    data[18:26] = (packed & ~((1 << 36) - 1)).to_bytes(8, "big")
+    data[26:42] = bytes(16)
+    err = assert_rejected(bytes(data), UnreadableAudio, "unreadable_audio")
+    assert "unknown" in err.message
 
 
 def test_encoding_is_judged_before_channels() -> None:
@@ -545,8 +555,7 @@ def test_flac_whose_streaminfo_lies_about_the_length_is_unreadable() -> None:
     packed = int.from_bytes(head[18:26], "big")
     assert packed & ((1 << 36) - 1) == RATE
     head[18:26] = (packed + 4000).to_bytes(8, "big")
-    err = assert_rejected(bytes(head), UnreadableAudio, "unreadable_audio")
-    assert "20000" in err.message
+    assert_rejected(bytes(head), UnreadableAudio, "unreadable_audio")
 
 
 def test_flac_with_wrong_md5_is_unreadable(sox: str, tmp_path: Path) -> None:
