@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import io
 from collections.abc import Callable
-from functools import lru_cache
+from functools import lru_cache, wraps
 
 import numpy as np
 import soundfile as sf
@@ -27,8 +27,18 @@ ROOM_TONE_DBFS = -55.0
 # Building blocks
 
 
-def _time(rate_hz: int, duration_s: float) -> np.ndarray:
-    return np.arange(int(round(rate_hz * duration_s))) / rate_hz
+def _sound(fn: Generator) -> Generator:
+    """Wrap a generator: check the arguments, and give an empty array for zero samples."""
+
+    @wraps(fn)
+    def wrapper(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
+        if rate_hz <= 0 or duration_s < 0:
+            raise ValueError(f"need rate_hz > 0 and duration_s >= 0, got {rate_hz} and {duration_s}")
+        if int(round(rate_hz * duration_s)) == 0:
+            return np.zeros(0, dtype=np.float32)
+        return fn(rate_hz, duration_s, rng)
+
+    return wrapper
 
 
 def _phase(freq_hz: np.ndarray | float, rate_hz: int, n: int) -> np.ndarray:
@@ -66,8 +76,9 @@ def _butter_sos(rate_hz: int, low_hz: float | None, high_hz: float | None, order
     return None
 
 
-def _band(x: np.ndarray, rate_hz: int, low_hz: float | None, high_hz: float | None,
-          order: int = 2) -> np.ndarray:
+def _band(
+    x: np.ndarray, rate_hz: int, low_hz: float | None, high_hz: float | None, order: int = 2
+) -> np.ndarray:
     """Butterworth band/low/high pass; edges beyond Nyquist are dropped."""
     sos = _butter_sos(rate_hz, low_hz, high_hz, order)
     return x if sos is None else signal.sosfilt(sos, x)
@@ -75,8 +86,7 @@ def _band(x: np.ndarray, rate_hz: int, low_hz: float | None, high_hz: float | No
 
 @lru_cache(maxsize=256)
 def _peak_sos(rate_hz: int, centres_hz: tuple[float, ...], q: float) -> np.ndarray | None:
-    sections = [np.concatenate(signal.iirpeak(fc, q, fs=rate_hz)) for fc in centres_hz
-                if fc < rate_hz * 0.45]
+    sections = [np.concatenate(signal.iirpeak(fc, q, fs=rate_hz)) for fc in centres_hz if fc < rate_hz * 0.45]
     return np.array(sections) if sections else None
 
 
@@ -90,8 +100,9 @@ def _resonate(x: np.ndarray, rate_hz: int, centres_hz: tuple[float, ...], q: flo
     return x if sos is None else signal.sosfilt(sos, x)
 
 
-def _segment_env(n: int, rate_hz: int, starts_s: np.ndarray, lengths_s: np.ndarray,
-                 attack_s: float, release_s: float) -> np.ndarray:
+def _segment_env(
+    n: int, rate_hz: int, starts_s: np.ndarray, lengths_s: np.ndarray, attack_s: float, release_s: float
+) -> np.ndarray:
     """Sum of trapezoid envelopes, one per (start, length), with linear attack and release."""
     env = np.zeros(n, dtype=np.float32)
     for start, length in zip(starts_s, lengths_s, strict=True):
@@ -103,8 +114,14 @@ def _segment_env(n: int, rate_hz: int, starts_s: np.ndarray, lengths_s: np.ndarr
     return env
 
 
-def _decays(n: int, rate_hz: int, onsets_s: np.ndarray, taus_s: np.ndarray,
-            amps: np.ndarray, freqs_hz: np.ndarray | None = None) -> np.ndarray:
+def _decays(
+    n: int,
+    rate_hz: int,
+    onsets_s: np.ndarray,
+    taus_s: np.ndarray,
+    amps: np.ndarray,
+    freqs_hz: np.ndarray | None = None,
+) -> np.ndarray:
     """Sum of exponentially decaying partials (or bare decays if no frequencies), vectorised.
 
     Each decay is cut after six time constants (-52 dB).
@@ -152,8 +169,9 @@ def _rms_dbfs(x: np.ndarray) -> float:
 # Sounds the detectors are meant to find
 
 
-def _bursts(rng: np.random.Generator, duration_s: float, length_s: tuple[float, float],
-            gap_s: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+def _bursts(
+    rng: np.random.Generator, duration_s: float, length_s: tuple[float, float], gap_s: tuple[float, float]
+) -> tuple[np.ndarray, np.ndarray]:
     """Start times and lengths of bursts separated by gaps, from t = 0 to the end."""
     starts, lengths, t0 = [], [], 0.0
     while t0 < duration_s:
@@ -164,8 +182,15 @@ def _bursts(rng: np.random.Generator, duration_s: float, length_s: tuple[float, 
     return np.array(starts), np.array(lengths)
 
 
-def _arches(n: int, rate_hz: int, starts_s: np.ndarray, lengths_s: np.ndarray, base_hz: np.ndarray,
-            lift_hz: np.ndarray, rest_hz: float) -> np.ndarray:
+def _arches(
+    n: int,
+    rate_hz: int,
+    starts_s: np.ndarray,
+    lengths_s: np.ndarray,
+    base_hz: np.ndarray,
+    lift_hz: np.ndarray,
+    rest_hz: float,
+) -> np.ndarray:
     """A pitch contour: within each burst base + lift * sin(pi * u), u from 0 to 1; rest_hz between."""
     f = np.full(n, rest_hz)
     for start, length, base, lift in zip(starts_s, lengths_s, base_hz, lift_hz, strict=True):
@@ -176,6 +201,7 @@ def _arches(n: int, rate_hz: int, starts_s: np.ndarray, lengths_s: np.ndarray, b
     return f
 
 
+@_sound
 def smoke_alarm_t3(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Temporal-three alarm: 0.5 s on / 0.5 s off three times, the third off phase 1.5 s.
 
@@ -200,12 +226,20 @@ def smoke_alarm_t3(rate_hz: int, duration_s: float, rng: np.random.Generator) ->
     return _finish(out, 0.7)
 
 
+@_sound
 def baby_cry(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Infant cry: ~1 s voiced bursts, f0 arching within 350-550 Hz with vibrato, breaths between."""
     n = int(round(rate_hz * duration_s))
     starts, lengths = _bursts(rng, duration_s, (0.8, 1.3), (0.35, 0.6))
-    f0 = _arches(n, rate_hz, starts, lengths, rng.uniform(390.0, 440.0, len(starts)),
-                 rng.uniform(50.0, 90.0, len(starts)), 420.0)
+    f0 = _arches(
+        n,
+        rate_hz,
+        starts,
+        lengths,
+        rng.uniform(390.0, 440.0, len(starts)),
+        rng.uniform(50.0, 90.0, len(starts)),
+        420.0,
+    )
     t = np.arange(n, dtype=np.float32) / np.float32(rate_hz)
     f0 = np.clip(f0 * (1.0 + 0.025 * np.sin(2.0 * np.pi * rng.uniform(5.0, 7.0) * t)), 355.0, 545.0)
     voiced = _harmonic(_phase(f0, rate_hz, n), 0.8)
@@ -217,6 +251,7 @@ def baby_cry(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.nd
     return _finish(_band(voiced * env + 0.04 * breath * breath_env, rate_hz, 150.0, 7000.0), 0.6)
 
 
+@_sound
 def glass_break(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Breaking glass: a bright broadband crack, then decaying tinkles resonating at 3-7 kHz."""
     n = int(round(rate_hz * duration_s))
@@ -228,8 +263,9 @@ def glass_break(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np
     amps = rng.uniform(0.15, 0.6, count) * np.exp(-onsets / 0.6)
     tinkles = _decays(n, rate_hz, onsets, rng.uniform(0.015, 0.06, count), amps, freqs)
     # Falling shards: short bright noise ticks.
-    ticks_env = _decays(n, rate_hz, np.sort(rng.uniform(0.05, 1.2, 20)), np.full(20, 0.004),
-                        rng.uniform(0.1, 0.4, 20))
+    ticks_env = _decays(
+        n, rate_hz, np.sort(rng.uniform(0.05, 1.2, 20)), np.full(20, 0.004), rng.uniform(0.1, 0.4, 20)
+    )
     ticks = _band(_noise(rng, n), rate_hz, 2500.0, None) * ticks_env
     return _finish(crack + tinkles + ticks, 0.8)
 
@@ -238,6 +274,7 @@ def glass_break(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np
 # Household sounds that cause false alarms
 
 
+@_sound
 def dog_bark(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Barks: short, harsh, falling-pitch bursts in groups of two to four."""
     n = int(round(rate_hz * duration_s))
@@ -251,8 +288,15 @@ def dog_bark(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.nd
     starts = np.array(onsets)
     lengths = rng.uniform(0.12, 0.22, len(onsets))
     # Pitch falls through each bark: an arch's second half.
-    f0 = _arches(n, rate_hz, starts - lengths, 2.0 * lengths, rng.uniform(250.0, 320.0, len(onsets)),
-                 rng.uniform(280.0, 380.0, len(onsets)), 300.0)
+    f0 = _arches(
+        n,
+        rate_hz,
+        starts - lengths,
+        2.0 * lengths,
+        rng.uniform(250.0, 320.0, len(onsets)),
+        rng.uniform(280.0, 380.0, len(onsets)),
+        300.0,
+    )
     voiced = _harmonic(_phase(f0, rate_hz, n), 0.75)
     body = voiced + 2.0 * _resonate(voiced, rate_hz, (900.0, 1800.0), q=2.5)
     rough = _band(_noise(rng, n), rate_hz, 300.0, 3500.0)
@@ -260,12 +304,20 @@ def dog_bark(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.nd
     return _finish((body + 0.6 * rough) * env, 0.7)
 
 
+@_sound
 def bird_screech(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Parrot-like screech: harsh harmonic calls with an arched contour (cry-like on purpose)."""
     n = int(round(rate_hz * duration_s))
     starts, lengths = _bursts(rng, duration_s, (0.4, 0.8), (0.4, 1.2))
-    f0 = _arches(n, rate_hz, starts, lengths, rng.uniform(650.0, 800.0, len(starts)),
-                 rng.uniform(150.0, 300.0, len(starts)), 800.0)
+    f0 = _arches(
+        n,
+        rate_hz,
+        starts,
+        lengths,
+        rng.uniform(650.0, 800.0, len(starts)),
+        rng.uniform(150.0, 300.0, len(starts)),
+        800.0,
+    )
     # Irregular frequency jitter below 60 Hz and ~110 Hz amplitude roughness make it harsh.
     jitter = _band(_noise(rng, n), rate_hz, None, 60.0)
     jitter /= np.max(np.abs(jitter)) or 1.0
@@ -279,10 +331,16 @@ def bird_screech(rate_hz: int, duration_s: float, rng: np.random.Generator) -> n
 
 
 # Vowel formants (F1, F2, F3) in Hz, adult speech, rounded (common textbook values, from memory).
-_VOWELS = ((730.0, 1090.0, 2440.0), (270.0, 2290.0, 3010.0), (530.0, 1840.0, 2480.0),
-           (570.0, 840.0, 2410.0), (300.0, 870.0, 2240.0))
+_VOWELS = (
+    (730.0, 1090.0, 2440.0),
+    (270.0, 2290.0, 3010.0),
+    (530.0, 1840.0, 2480.0),
+    (570.0, 840.0, 2410.0),
+    (300.0, 870.0, 2240.0),
+)
 
 
+@_sound
 def tv_babble(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Speech from a TV: two talkers (a low and a high voice) taking turns, phrase by phrase.
 
@@ -317,13 +375,14 @@ def tv_babble(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.n
         speech[i0:i1] = _resonate(pulses[i0:i1], rate_hz, _VOWELS[vowel[k]], q=5.0) * env
         if opens_with_hiss[k]:
             m = (i1 - i0) // 5
-            hiss[i0:i0 + m] = fricative[i0:i0 + m] * np.hanning(m)
+            hiss[i0 : i0 + m] = fricative[i0 : i0 + m] * np.hanning(m)
     speech /= float(np.sqrt(np.mean(speech * speech))) or 1.0
     hiss /= float(np.sqrt(np.mean(hiss * hiss))) or 1.0
     phrase = _segment_env(n, rate_hz, phrase_starts, phrase_lengths, 0.05, 0.1)
     return _finish(_band((speech + 0.12 * hiss) * phrase, rate_hz, 120.0, 6500.0), 0.5)
 
 
+@_sound
 def vacuum(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Vacuum cleaner: broadband motor noise, a motor hum and a wavering whistle."""
     n = int(round(rate_hz * duration_s))
@@ -336,30 +395,52 @@ def vacuum(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndar
     return _finish((noise + 0.3 * hum + 0.35 * whistle) * spin_up, 0.5)
 
 
+@_sound
 def door_slam(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Door slam: a broadband click, a low decaying thump and a short rattle."""
     n = int(round(rate_hz * duration_s))
     click = _band(_noise(rng, n), rate_hz, 500.0, None) * _decays(
-        n, rate_hz, np.array([0.0]), np.array([0.006]), np.array([1.0]))
-    thump = _decays(n, rate_hz, np.zeros(2), np.array([0.15, 0.08]), np.array([1.0, 0.5]),
-                    np.array([rng.uniform(60.0, 90.0), rng.uniform(140.0, 200.0)]))
-    rattle = _decays(n, rate_hz, 0.02 + np.sort(rng.uniform(0.0, 0.25, 8)), np.full(8, 0.01),
-                     rng.uniform(0.1, 0.3, 8), rng.uniform(600.0, 1500.0, 8))
+        n, rate_hz, np.array([0.0]), np.array([0.006]), np.array([1.0])
+    )
+    thump = _decays(
+        n,
+        rate_hz,
+        np.zeros(2),
+        np.array([0.15, 0.08]),
+        np.array([1.0, 0.5]),
+        np.array([rng.uniform(60.0, 90.0), rng.uniform(140.0, 200.0)]),
+    )
+    rattle = _decays(
+        n,
+        rate_hz,
+        0.02 + np.sort(rng.uniform(0.0, 0.25, 8)),
+        np.full(8, 0.01),
+        rng.uniform(0.1, 0.3, 8),
+        rng.uniform(600.0, 1500.0, 8),
+    )
     return _finish(0.8 * click + thump + rattle, 0.9)
 
 
+@_sound
 def kettle_rumble(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Electric kettle coming to the boil: rising low rumble, bubbling, then a hiss."""
     n = int(round(rate_hz * duration_s))
     u = np.arange(n, dtype=np.float32) / np.float32(max(n, 1))
     rumble = _band(_noise(rng, n), rate_hz, 40.0, 400.0) * (0.3 + 0.7 * u)
     count = int(40 * duration_s)
-    bubbles = _decays(n, rate_hz, np.sort(rng.uniform(0.0, duration_s, count)), np.full(count, 0.008),
-                      rng.uniform(0.05, 0.3, count), rng.uniform(300.0, 1200.0, count))
-    hiss = _band(_noise(rng, n), rate_hz, 2000.0, 6000.0) * u ** 2
+    bubbles = _decays(
+        n,
+        rate_hz,
+        np.sort(rng.uniform(0.0, duration_s, count)),
+        np.full(count, 0.008),
+        rng.uniform(0.05, 0.3, count),
+        rng.uniform(300.0, 1200.0, count),
+    )
+    hiss = _band(_noise(rng, n), rate_hz, 2000.0, 6000.0) * u**2
     return _finish(rumble + bubbles * (0.2 + u) + 0.25 * hiss, 0.5)
 
 
+@_sound
 def piano(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """A few piano-like notes, one every 0.4-0.8 s: bright partials fading fast over a mellow tail."""
     n = int(round(rate_hz * duration_s))
@@ -381,12 +462,14 @@ def piano(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarr
         i0 = int(onset * rate_hz)
         if i0 < n:
             m = min(note_len, n - i0)
-            out[i0:i0 + m] += rng.uniform(0.6, 1.0) * templates[note][:m]
+            out[i0 : i0 + m] += rng.uniform(0.6, 1.0) * templates[note][:m]
     hammer = _band(_noise(rng, n), rate_hz, 1000.0, None) * _decays(
-        n, rate_hz, onsets, np.full(count, 0.003), np.full(count, 0.3))
+        n, rate_hz, onsets, np.full(count, 0.003), np.full(count, 0.3)
+    )
     return _finish(_band(out + hammer, rate_hz, None, 6000.0), 0.6)
 
 
+@_sound
 def traffic(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Road traffic through a window: steady low rumble plus vehicles swelling past."""
     n = int(round(rate_hz * duration_s))
@@ -400,6 +483,7 @@ def traffic(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.nda
     return _finish(rumble + (1.5 * tyres + 0.4 * engine) * swell, 0.5)
 
 
+@_sound
 def drill(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Hammer drill through a wall: motor whine with hammer blows, in bursts of 1-3 s."""
     n = int(round(rate_hz * duration_s))
@@ -413,6 +497,7 @@ def drill(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarr
     return _finish((0.6 * motor + blows) * env, 0.6)
 
 
+@_sound
 def room_tone(rate_hz: int, duration_s: float, rng: np.random.Generator) -> np.ndarray:
     """Quiet room: pink-ish noise with the top rolled off above 5 kHz, at -55 dBFS RMS."""
     n = int(round(rate_hz * duration_s))
@@ -450,15 +535,20 @@ def _active_rms_dbfs(x: np.ndarray, rate_hz: int) -> float:
     m = len(x) // frame
     if m == 0:
         return _rms_dbfs(x)
-    power = np.mean(np.asarray(x[:m * frame], dtype=np.float64).reshape(m, frame) ** 2, axis=1)
+    power = np.mean(np.asarray(x[: m * frame], dtype=np.float64).reshape(m, frame) ** 2, axis=1)
     if not np.any(power > 0):
         return -np.inf
     active = power[power >= power.max() * 1e-3]
     return float(10.0 * np.log10(np.mean(active)))
 
 
-def mix(event: np.ndarray, rate_hz: int, rng: np.random.Generator, snr_db: float = 30.0,
-        room_level_dbfs: float = ROOM_TONE_DBFS) -> np.ndarray:
+def mix(
+    event: np.ndarray,
+    rate_hz: int,
+    rng: np.random.Generator,
+    snr_db: float = 30.0,
+    room_level_dbfs: float = ROOM_TONE_DBFS,
+) -> np.ndarray:
     """Event plus room tone: room tone at ``room_level_dbfs`` RMS, the event ``snr_db`` above it.
 
     The event's level is its RMS while it sounds (see ``_active_rms_dbfs``), so gaps between
@@ -487,18 +577,28 @@ def to_wav_bytes(samples: np.ndarray, rate_hz: int, subtype: str = "PCM_16") -> 
     return buf.getvalue()
 
 
-# Typical event level above a quiet room, in dB (from memory, rounded; the simulator's own
-# choice): alarms are loud, cries and barks loud, background sources moderate.
+# Event level above the room tone, in dB: our own choice for the simulator, not measured.
+# Alarms are loudest; cries, barks and breakage loud; background sources moderate.
 _SNR_RANGE_DB = {
-    "smoke_alarm_t3": (35.0, 45.0), "baby_cry": (25.0, 40.0), "glass_break": (25.0, 40.0),
-    "dog_bark": (25.0, 40.0), "bird_screech": (25.0, 40.0), "door_slam": (25.0, 40.0),
+    "smoke_alarm_t3": (35.0, 45.0),
+    "baby_cry": (25.0, 40.0),
+    "glass_break": (25.0, 40.0),
+    "dog_bark": (25.0, 40.0),
+    "bird_screech": (25.0, 40.0),
+    "door_slam": (25.0, 40.0),
 }
 _DEFAULT_SNR_RANGE_DB = (15.0, 30.0)
 
 
-def make_clip(kind: str, *, rate_hz: int = 16000, duration_s: float = 10.0,
-              rng: np.random.Generator, event_at_s: float | None = None,
-              snr_db: float | None = None) -> tuple[bytes, float]:
+def make_clip(
+    kind: str,
+    *,
+    rate_hz: int = 16000,
+    duration_s: float = 10.0,
+    rng: np.random.Generator,
+    event_at_s: float | None = None,
+    snr_db: float | None = None,
+) -> tuple[bytes, float]:
     """A PCM16 mono WAV clip of ``kind`` in room tone, and the offset (s) where the event starts.
 
     ``event_at_s=None`` picks an offset: 0 for sounds already going on (``CONTINUOUS_KINDS``),
@@ -514,9 +614,7 @@ def make_clip(kind: str, *, rate_hz: int = 16000, duration_s: float = 10.0,
     if snr_db is None:
         snr_db = float(rng.uniform(*_SNR_RANGE_DB.get(kind, _DEFAULT_SNR_RANGE_DB)))
     event = np.zeros(n)
-    event[start:] = SOUNDS[kind](rate_hz, (n - start) / rate_hz, rng)[: n - start]
-    if kind == "room_tone":
-        samples = mix(np.zeros(n), rate_hz, rng)
-    else:
-        samples = mix(event, rate_hz, rng, snr_db=snr_db)
+    if kind != "room_tone":  # room tone alone is the mix with no event
+        event[start:] = SOUNDS[kind](rate_hz, (n - start) / rate_hz, rng)[: n - start]
+    samples = mix(event, rate_hz, rng, snr_db=snr_db)
     return to_wav_bytes(samples, rate_hz), start / rate_hz

@@ -53,8 +53,8 @@ def rates_by(counts: pd.DataFrame, key: str, *, confidence_level: float = 0.95) 
     r = rates.poisson_rates(g["false_alarms"].to_numpy(), g["home_months"].to_numpy(dtype=np.float64),
                             confidence_level=confidence_level)
     g["false_alarms"] = r["events"].to_numpy()
-    g["rate"], g["low"], g["high"], g["reason"] = (r["estimate"].to_numpy(), r["low"].to_numpy(),
-                                                   r["high"].to_numpy(), r["reason"].to_numpy())
+    g["rate"], g["low"], g["high"] = r["estimate"].to_numpy(), r["low"].to_numpy(), r["high"].to_numpy()
+    g["reason"] = pd.Series(r["reason"].to_numpy(), dtype=object)
     return g
 
 

@@ -17,6 +17,7 @@ import pandas as pd
 from numpy.typing import NDArray
 
 from server.analytics import rates
+from server.analytics.trend import as_utc
 
 DEFAULT_MONITORED_STATES = ("installed", "active", "paused")
 WINDOW_COLUMNS = ["window_id", "installation_id", "device_id", "home_id", "room", "started_at", "ended_at"]
@@ -43,7 +44,7 @@ def home_intervals(
         return pd.DataFrame({"home_id": pd.Series(dtype=np.int64),
                              "started_at": pd.Series(dtype="datetime64[ns, UTC]"),
                              "ended_at": pd.Series(dtype="datetime64[ns, UTC]")})
-    c = changes.sort_values(["home_id", "at"], kind="mergesort").reset_index(drop=True)
+    c = as_utc(changes, "at").sort_values(["home_id", "at"], kind="mergesort").reset_index(drop=True)
     nxt = c.groupby("home_id")["at"].shift(-1)
     c["ended_at"] = nxt.fillna(pd.Timestamp(until))
     c["monitored"] = c["to_state"].isin(list(monitored_states)) & c["listening"].astype(bool)
@@ -76,12 +77,13 @@ def monitored_windows(
     If two installations of one device overlap (a device moved before the first was closed), the
     earlier one ends where the later one begins, so no second of listening counts twice.
     """
-    start_ts, end_ts = pd.Timestamp(start), pd.Timestamp(end)
-    inst = installations.sort_values(["device_id", "installed_at", "installation_id"], kind="mergesort").copy()
+    start_ts, end_ts = pd.Timestamp(start).tz_convert("UTC"), pd.Timestamp(end).tz_convert("UTC")
+    inst = as_utc(installations, "installed_at", "removed_at").sort_values(
+        ["device_id", "installed_at", "installation_id"], kind="mergesort")
     nxt = inst.groupby("device_id")["installed_at"].shift(-1)
     removed = inst["removed_at"].fillna(end_ts)
     inst["until"] = removed.where(nxt.isna() | (removed <= nxt), nxt)
-    pairs = inst.merge(intervals, on="home_id")
+    pairs = inst.merge(as_utc(intervals, "started_at", "ended_at"), on="home_id")
     lo = pairs[["installed_at", "started_at"]].max(axis=1).clip(lower=start_ts)
     hi = pairs[["until", "ended_at"]].min(axis=1).clip(upper=end_ts)
     out = pairs.assign(started_at=lo, ended_at=hi)[lo < hi]

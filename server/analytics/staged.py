@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from server.analytics import rates
+from server.analytics.trend import as_utc
 
 DEFAULT_TOLERANCE_S = 30.0
 
@@ -73,9 +74,11 @@ def match(
     if tolerance_s < 0:
         raise ValueError("the tolerance must not be negative")
     tol = pd.Timedelta(seconds=tolerance_s)
-    ev = events.loc[:, ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]]
-    inst = installations.loc[:, ["device_id", "home_id", "installed_at", "removed_at"]]
-    al = alerts.loc[:, ["alert_id", "device_id", "sound_class", "detected_at", "score"]]
+    ev = as_utc(events.loc[:, ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]],
+              "started_at", "ended_at")
+    inst = as_utc(installations.loc[:, ["device_id", "home_id", "installed_at", "removed_at"]],
+                "installed_at", "removed_at")
+    al = as_utc(alerts.loc[:, ["alert_id", "device_id", "sound_class", "detected_at", "score"]], "detected_at")
     pairs = ev.merge(inst, on="home_id").merge(al, on=["device_id", "sound_class"])
     t = pairs["detected_at"]
     inside = (

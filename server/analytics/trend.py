@@ -43,6 +43,17 @@ class OffsetStep:
     offset_s: float
 
 
+def as_utc(frame: pd.DataFrame, *columns: str) -> pd.DataFrame:
+    """A copy of `frame` with `columns` as UTC timestamps (naive values are taken as UTC)."""
+    return frame.assign(**{c: pd.to_datetime(frame[c], utc=True) for c in columns})
+
+
+def epoch_s(values: pd.Series | pd.DatetimeIndex) -> NDArray[np.float64]:
+    """UTC epoch seconds of aware timestamps, whatever their stored resolution."""
+    idx = pd.DatetimeIndex(values)
+    return np.asarray(idx.as_unit("ns").asi8 / 1e9, dtype=np.float64)
+
+
 def parse_week(label: str) -> tuple[int, int]:
     """'2026-W48' -> (2026, 48); ValueError for anything else or a week the year does not have."""
     m = _WEEK_LABEL.match(label.strip())
@@ -99,7 +110,7 @@ def week_start_s(index: ArrayLike, tz: str) -> NDArray[np.float64]:
     mondays = pd.to_datetime(EPOCH_MONDAY) + pd.to_timedelta(7 * k, unit="D")
     local = pd.DatetimeIndex(mondays).tz_localize(ZoneInfo(tz), ambiguous=np.ones(len(k), dtype=bool),
                                                    nonexistent="shift_forward")
-    return np.asarray(local.tz_convert("UTC").asi8 / 1e9, dtype=np.float64)
+    return epoch_s(local)
 
 
 def week_index(instants: pd.Series, tz: str) -> NDArray[np.int64]:
@@ -123,7 +134,8 @@ def utc_offset_steps(tz: str, start: dt.datetime, end: dt.datetime) -> list[Offs
                           / pd.Timedelta(seconds=1)), dtype=np.float64)
     change = np.flatnonzero(np.diff(offsets) != 0) + 1
     steps = [OffsetStep(from_s=-np.inf, offset_s=float(offsets[0]))]
-    steps += [OffsetStep(from_s=float(grid[i].value / 1e9), offset_s=float(offsets[i])) for i in change]
+    starts = epoch_s(grid)
+    steps += [OffsetStep(from_s=float(starts[i]), offset_s=float(offsets[i])) for i in change]
     return steps
 
 
@@ -160,5 +172,5 @@ def weekly_rates(
         "rate": r["estimate"].to_numpy(),
         "low": r["low"].to_numpy(),
         "high": r["high"].to_numpy(),
-        "reason": r["reason"].to_numpy(),
+        "reason": pd.Series(r["reason"].to_numpy(), dtype=object),
     })

@@ -76,9 +76,18 @@ _GUID_TAIL = bytes.fromhex("000000001000800000aa00389b71")
 
 # Names for common WAV format tags we refuse, so the message says what the device sent.
 _WAV_TAG_NAMES = {
-    0x0002: "Microsoft ADPCM", 0x0006: "A-law", 0x0007: "mu-law", 0x0011: "IMA ADPCM",
-    0x0031: "GSM 6.10", 0x0040: "G.721 ADPCM", 0x0050: "MPEG audio", 0x0055: "MPEG layer III",
-    0x0092: "Dolby AC-3", 0x00FF: "AAC", 0x1610: "AAC", 0xF1AC: "FLAC-in-WAV",
+    0x0002: "Microsoft ADPCM",
+    0x0006: "A-law",
+    0x0007: "mu-law",
+    0x0011: "IMA ADPCM",
+    0x0031: "GSM 6.10",
+    0x0040: "G.721 ADPCM",
+    0x0050: "MPEG audio",
+    0x0055: "MPEG layer III",
+    0x0092: "Dolby AC-3",
+    0x00FF: "AAC",
+    0x1610: "AAC",
+    0xF1AC: "FLAC-in-WAV",
 }
 
 # (offset, signature, container name) for audio containers we recognise but do not accept.
@@ -131,9 +140,14 @@ class _Header:
 # Public interface
 
 
-def probe(source: bytes | bytearray | memoryview | str | os.PathLike[str], *,
-          min_rate_hz: int = 8000, max_rate_hz: int = 48000,
-          min_duration_s: float = 0.5, max_duration_s: float = 60.0) -> ClipInfo:
+def probe(
+    source: bytes | bytearray | memoryview | str | os.PathLike[str],
+    *,
+    min_rate_hz: int = 8000,
+    max_rate_hz: int = 48000,
+    min_duration_s: float = 0.5,
+    max_duration_s: float = 60.0,
+) -> ClipInfo:
     """Check a whole clip against the accepted formats and limits; return its ``ClipInfo``.
 
     Raises ``UnreadableAudio``, ``UnsupportedAudio`` or ``UnsupportedChannels`` (see the module
@@ -145,11 +159,9 @@ def probe(source: bytes | bytearray | memoryview | str | os.PathLike[str], *,
     _check_mono(header)
     rate = header.sample_rate_hz
     if rate < min_rate_hz:
-        raise UnsupportedAudio(
-            f"The clip's sample rate is {rate} Hz, below the minimum of {min_rate_hz} Hz.")
+        raise UnsupportedAudio(f"The clip's sample rate is {rate} Hz, below the minimum of {min_rate_hz} Hz.")
     if rate > max_rate_hz:
-        raise UnsupportedAudio(
-            f"The clip's sample rate is {rate} Hz, above the maximum of {max_rate_hz} Hz.")
+        raise UnsupportedAudio(f"The clip's sample rate is {rate} Hz, above the maximum of {max_rate_hz} Hz.")
     samples, complete = _decode(data, header, max_frames=math.floor(max_duration_s * rate))
     frames = int(samples.shape[0])
     duration_s = frames / rate
@@ -158,26 +170,37 @@ def probe(source: bytes | bytearray | memoryview | str | os.PathLike[str], *,
             frames = header.frames or frames
             raise UnsupportedAudio(
                 f"The clip lasts {frames / rate:.3f} s ({frames} frames at {rate} Hz), longer "
-                f"than the maximum of {max_duration_s:g} s.")
+                f"than the maximum of {max_duration_s:g} s."
+            )
         raise UnsupportedAudio(
             f"The clip lasts more than {max_duration_s:g} s (decoding stopped after {frames} "
-            f"frames at {rate} Hz), longer than the maximum of {max_duration_s:g} s.")
+            f"frames at {rate} Hz), longer than the maximum of {max_duration_s:g} s."
+        )
     if duration_s < min_duration_s:
         raise UnsupportedAudio(
             f"The clip lasts {duration_s:.3f} s ({frames} frames at {rate} Hz), shorter than "
-            f"the minimum of {min_duration_s:g} s.")
+            f"the minimum of {min_duration_s:g} s."
+        )
     if duration_s > max_duration_s:
         raise UnsupportedAudio(
             f"The clip lasts {duration_s:.3f} s ({frames} frames at {rate} Hz), longer than "
-            f"the maximum of {max_duration_s:g} s.")
+            f"the maximum of {max_duration_s:g} s."
+        )
     peak_dbfs, rms_dbfs, clipped = _levels(samples[:, 0], header)
-    return ClipInfo(format=header.format, subtype=header.subtype, sample_rate_hz=rate,
-                    channels=header.channels, frames=frames, duration_s=duration_s,
-                    peak_dbfs=peak_dbfs, rms_dbfs=rms_dbfs, clipped_fraction=clipped)
+    return ClipInfo(
+        format=header.format,
+        subtype=header.subtype,
+        sample_rate_hz=rate,
+        channels=header.channels,
+        frames=frames,
+        duration_s=duration_s,
+        peak_dbfs=peak_dbfs,
+        rms_dbfs=rms_dbfs,
+        clipped_fraction=clipped,
+    )
 
 
-def decode_mono(source: bytes | bytearray | memoryview | str | os.PathLike[str]
-                ) -> tuple[np.ndarray, int]:
+def decode_mono(source: bytes | bytearray | memoryview | str | os.PathLike[str]) -> tuple[np.ndarray, int]:
     """Decode an accepted clip to float32 samples in [-1, 1] and its sample rate.
 
     Applies the same format checks as ``probe`` but no rate or duration limits (for clips
@@ -191,7 +214,8 @@ def decode_mono(source: bytes | bytearray | memoryview | str | os.PathLike[str]
     samples, complete = _decode(data, header, max_frames=math.floor(DECODE_MONO_MAX_S * rate))
     if not complete:
         raise UnsupportedAudio(
-            f"The clip lasts more than {DECODE_MONO_MAX_S:g} s, longer than decoding allows.")
+            f"The clip lasts more than {DECODE_MONO_MAX_S:g} s, longer than decoding allows."
+        )
     samples = samples[:, 0]
     return np.clip(samples, -1.0, 1.0).astype(np.float32, copy=False), header.sample_rate_hz
 
@@ -214,13 +238,11 @@ def _parse_header(data: bytes) -> _Header:
         raise UnreadableAudio("The clip is empty (0 bytes); send a WAV or FLAC file.")
     if data[:4] == b"RIFF":
         if len(data) < 12:
-            raise UnreadableAudio(
-                f"The clip is {len(data)} bytes, too short for a RIFF header (12 bytes).")
+            raise UnreadableAudio(f"The clip is {len(data)} bytes, too short for a RIFF header (12 bytes).")
         form = data[8:12]
         if form == b"WAVE":
             return _parse_wav(data)
-        raise UnreadableAudio(
-            f"The clip is a RIFF file of form type {_show(form)}, not WAVE audio.")
+        raise UnreadableAudio(f"The clip is a RIFF file of form type {_show(form)}, not WAVE audio.")
     if data[:4] == b"fLaC":
         return _parse_flac(data)
     raise _other_error(data)
@@ -229,23 +251,26 @@ def _parse_header(data: bytes) -> _Header:
 def _other_error(data: bytes) -> UnsupportedAudio | UnreadableAudio:
     """The error for bytes that are neither RIFF/WAVE nor FLAC: unsupported if audio, else unreadable."""
     for offset, signature, name in _OTHER_AUDIO_SIGNATURES:
-        if data[offset:offset + len(signature)] == signature:
+        if data[offset : offset + len(signature)] == signature:
             return UnsupportedAudio(
-                f"The clip is {name} audio; send WAV (16/24-bit PCM or 32-bit float) or "
-                "FLAC (16/24-bit).")
+                f"The clip is {name} audio; send WAV (16/24-bit PCM or 32-bit float) or FLAC (16/24-bit)."
+            )
     if data[:4] == b"FORM" and data[8:12] in (b"AIFF", b"AIFC", b"8SVX", b"16SV"):
         return UnsupportedAudio(
             f"The clip is {_show(data[8:12])} audio (IFF); send WAV (16/24-bit PCM or "
-            "32-bit float) or FLAC (16/24-bit).")
+            "32-bit float) or FLAC (16/24-bit)."
+        )
     try:
         info = sf.info(io.BytesIO(data))
     except (sf.SoundFileError, RuntimeError, ValueError, TypeError):
         return UnreadableAudio(
             f"The clip's {len(data)} bytes are not recognisable as audio (they begin "
-            f"{_show(data[:8])}); send a WAV or FLAC file.")
+            f"{_show(data[:8])}); send a WAV or FLAC file."
+        )
     return UnsupportedAudio(
         f"The clip is {info.format} audio ({info.subtype}); send WAV (16/24-bit PCM or "
-        "32-bit float) or FLAC (16/24-bit).")
+        "32-bit float) or FLAC (16/24-bit)."
+    )
 
 
 def _show(raw: bytes) -> str:
@@ -265,31 +290,36 @@ def _walk_riff(data: bytes) -> list[tuple[bytes, int, int]]:
     if riff_end > len(data):
         raise UnreadableAudio(
             f"The RIFF header declares {riff_size} bytes after its first 8, so a "
-            f"{riff_end}-byte file, but the clip has {len(data)} bytes; it looks truncated.")
+            f"{riff_end}-byte file, but the clip has {len(data)} bytes; it looks truncated."
+        )
     allowed_tail = 1 if riff_size % 2 else 0  # the RIFF chunk's own pad byte
     if len(data) - riff_end > allowed_tail:
         raise UnreadableAudio(
             f"The clip has {len(data) - riff_end} bytes after the end of its RIFF chunk "
-            f"(RIFF size {riff_size}, file {len(data)} bytes); send exactly one WAV file.")
+            f"(RIFF size {riff_size}, file {len(data)} bytes); send exactly one WAV file."
+        )
     chunks: list[tuple[bytes, int, int]] = []
     pos = 12
     while pos < riff_end:
         if riff_end - pos < 8:
             raise UnreadableAudio(
                 f"The WAV file has {riff_end - pos} stray bytes at offset {pos}, too few "
-                "for a chunk header; the RIFF size or a chunk size is wrong.")
-        chunk_id = data[pos:pos + 4]
+                "for a chunk header; the RIFF size or a chunk size is wrong."
+            )
+        chunk_id = data[pos : pos + 4]
         size = struct.unpack_from("<I", data, pos + 4)[0]
         if not all(32 <= b < 127 for b in chunk_id):
             raise UnreadableAudio(
                 f"The WAV file has a chunk id {_show(chunk_id)} at offset {pos} that is not "
-                "four ASCII characters; a previous chunk size or pad byte is wrong.")
+                "four ASCII characters; a previous chunk size or pad byte is wrong."
+            )
         payload = pos + 8
         if payload + size > riff_end:
             raise UnreadableAudio(
                 f"The WAV {_show(chunk_id)} chunk at offset {pos} declares {size} bytes but "
                 f"only {riff_end - payload} remain in the RIFF chunk; the file looks "
-                "truncated or the size is wrong.")
+                "truncated or the size is wrong."
+            )
         chunks.append((chunk_id, payload, size))
         pos = payload + size + (size % 2)
     # pos may exceed riff_end by one: the last chunk's pad byte missing at the end of the file.
@@ -304,20 +334,22 @@ def _parse_wav(data: bytes) -> _Header:
         if count == 0:
             raise UnreadableAudio(
                 f"The WAV file has no {_show(wanted)} chunk (chunks found: "
-                f"{', '.join(_show(i) for i in ids) or 'none'}).")
+                f"{', '.join(_show(i) for i in ids) or 'none'})."
+            )
         if count > 1:
-            raise UnreadableAudio(f"The WAV file has {count} {_show(wanted)} chunks; "
-                                  "it must have exactly one.")
+            raise UnreadableAudio(
+                f"The WAV file has {count} {_show(wanted)} chunks; it must have exactly one."
+            )
     if ids.index(b"fmt ") > ids.index(b"data"):
         raise UnreadableAudio(
             "The WAV file's 'fmt ' chunk comes after its 'data' chunk; the RIFF/WAVE "
-            "specification requires it before.")
+            "specification requires it before."
+        )
     _, fmt_at, fmt_size = chunks[ids.index(b"fmt ")]
     _, _, data_size = chunks[ids.index(b"data")]
     if fmt_size < 16:
         raise UnreadableAudio(f"The WAV 'fmt ' chunk is {fmt_size} bytes; it needs at least 16.")
-    tag, channels, rate, byte_rate, block_align, bits = struct.unpack_from(
-        "<HHIIHH", data, fmt_at)
+    tag, channels, rate, byte_rate, block_align, bits = struct.unpack_from("<HHIIHH", data, fmt_at)
     if channels == 0:
         raise UnreadableAudio("The WAV header declares 0 channels.")
     if rate == 0:
@@ -328,31 +360,39 @@ def _parse_wav(data: bytes) -> _Header:
     if valid_bits is not None and valid_bits != bits:
         if valid_bits == 0 or valid_bits > bits:
             raise UnreadableAudio(
-                f"The WAV extensible header declares {valid_bits} valid bits in "
-                f"{bits}-bit samples.")
+                f"The WAV extensible header declares {valid_bits} valid bits in {bits}-bit samples."
+            )
         raise UnsupportedAudio(
             f"The WAV file declares {valid_bits} valid bits in {bits}-bit samples; only "
-            "samples using their full width are accepted.")
+            "samples using their full width are accepted."
+        )
 
     expected_align = channels * bits // 8
     if block_align != expected_align:
         raise UnreadableAudio(
             f"The WAV header's block align is {block_align} but {channels} channel(s) of "
-            f"{bits}-bit samples need {expected_align}.")
+            f"{bits}-bit samples need {expected_align}."
+        )
     if byte_rate != rate * block_align:
         raise UnreadableAudio(
             f"The WAV header's byte rate is {byte_rate} but {rate} Hz times block align "
-            f"{block_align} is {rate * block_align}.")
+            f"{block_align} is {rate * block_align}."
+        )
     if data_size % block_align:
         raise UnreadableAudio(
-            f"The WAV data chunk is {data_size} bytes, not a whole number of "
-            f"{block_align}-byte frames.")
-    return _Header(format="WAV", subtype=subtype, bits=bits, channels=channels,
-                   sample_rate_hz=rate, frames=data_size // block_align)
+            f"The WAV data chunk is {data_size} bytes, not a whole number of {block_align}-byte frames."
+        )
+    return _Header(
+        format="WAV",
+        subtype=subtype,
+        bits=bits,
+        channels=channels,
+        sample_rate_hz=rate,
+        frames=data_size // block_align,
+    )
 
 
-def _wav_encoding(data: bytes, fmt_at: int, fmt_size: int, tag: int,
-                  bits: int) -> tuple[str, int | None]:
+def _wav_encoding(data: bytes, fmt_at: int, fmt_size: int, tag: int, bits: int) -> tuple[str, int | None]:
     """Return ("pcm" | "float", valid bits or None) or raise for encodings we refuse."""
     if tag == _WAVE_FORMAT_PCM:
         return "pcm", None
@@ -362,12 +402,12 @@ def _wav_encoding(data: bytes, fmt_at: int, fmt_size: int, tag: int,
         if fmt_size < 40:
             raise UnreadableAudio(
                 f"The WAV header says WAVE_FORMAT_EXTENSIBLE but its 'fmt ' chunk is "
-                f"{fmt_size} bytes; it needs 40.")
+                f"{fmt_size} bytes; it needs 40."
+            )
         cb_size, valid_bits = struct.unpack_from("<HH", data, fmt_at + 16)
         if cb_size < 22:
-            raise UnreadableAudio(
-                f"The WAV extensible header's extension size is {cb_size}; it needs 22.")
-        guid = data[fmt_at + 24:fmt_at + 40]
+            raise UnreadableAudio(f"The WAV extensible header's extension size is {cb_size}; it needs 22.")
+        guid = data[fmt_at + 24 : fmt_at + 40]
         if guid[2:] == _GUID_TAIL:
             sub_tag = struct.unpack_from("<H", guid)[0]
             if sub_tag == _WAVE_FORMAT_PCM:
@@ -376,10 +416,9 @@ def _wav_encoding(data: bytes, fmt_at: int, fmt_size: int, tag: int,
                 return "float", valid_bits
             name = _WAV_TAG_NAMES.get(sub_tag, f"format 0x{sub_tag:04X}")
             raise UnsupportedAudio(
-                f"The WAV file is {name} (extensible sub-format); send 16/24-bit PCM or "
-                "32-bit float.")
-        raise UnsupportedAudio(
-            f"The WAV extensible sub-format GUID {guid.hex()} is not PCM or IEEE float.")
+                f"The WAV file is {name} (extensible sub-format); send 16/24-bit PCM or 32-bit float."
+            )
+        raise UnsupportedAudio(f"The WAV extensible sub-format GUID {guid.hex()} is not PCM or IEEE float.")
     name = _WAV_TAG_NAMES.get(tag, f"format tag 0x{tag:04X}")
     raise UnsupportedAudio(f"The WAV file is {name} encoded; send 16/24-bit PCM or 32-bit float.")
 
@@ -404,23 +443,25 @@ def _parse_flac(data: bytes) -> _Header:
     while True:
         if len(data) < pos + 4:
             raise UnreadableAudio(
-                f"The FLAC stream ends at byte {len(data)} inside its metadata; it looks "
-                "truncated.")
+                f"The FLAC stream ends at byte {len(data)} inside its metadata; it looks truncated."
+            )
         last = bool(data[pos] & 0x80)
         block_type = data[pos] & 0x7F
-        length = int.from_bytes(data[pos + 1:pos + 4], "big")
+        length = int.from_bytes(data[pos + 1 : pos + 4], "big")
         if block_type == 127:
             raise UnreadableAudio(f"The FLAC metadata block at offset {pos} has the invalid type 127.")
         if first and (block_type != 0 or length != 34):
             raise UnreadableAudio(
                 f"The FLAC stream's first metadata block is type {block_type} of {length} "
-                "bytes; it must be STREAMINFO (type 0, 34 bytes).")
+                "bytes; it must be STREAMINFO (type 0, 34 bytes)."
+            )
         if pos + 4 + length > len(data):
             raise UnreadableAudio(
                 f"The FLAC metadata block at offset {pos} declares {length} bytes but only "
-                f"{len(data) - pos - 4} remain; the file looks truncated.")
+                f"{len(data) - pos - 4} remain; the file looks truncated."
+            )
         if first:
-            streaminfo = data[pos + 4:pos + 4 + length]
+            streaminfo = data[pos + 4 : pos + 4 + length]
         first = False
         pos += 4 + length
         if last:
@@ -441,9 +482,17 @@ def _parse_flac(data: bytes) -> _Header:
         # of such a stream reliably, and truncation could not be told from the end.
         raise UnreadableAudio(
             "The FLAC STREAMINFO gives the total number of samples as 0 (unknown); let the "
-            "encoder finish the file so that it records the length.")
-    return _Header(format="FLAC", subtype=f"PCM_{bits}", bits=bits, channels=channels,
-                   sample_rate_hz=rate, frames=total, flac_md5=md5 if any(md5) else None)
+            "encoder finish the file so that it records the length."
+        )
+    return _Header(
+        format="FLAC",
+        subtype=f"PCM_{bits}",
+        bits=bits,
+        channels=channels,
+        sample_rate_hz=rate,
+        frames=total,
+        flac_md5=md5 if any(md5) else None,
+    )
 
 
 # ---------------------------------------------------------------------------------------
@@ -452,8 +501,7 @@ def _parse_flac(data: bytes) -> _Header:
 
 def _check_mono(header: _Header) -> None:
     if header.channels != 1:
-        raise UnsupportedChannels(
-            f"The clip has {header.channels} channels; send mono (1 channel) audio.")
+        raise UnsupportedChannels(f"The clip has {header.channels} channels; send mono (1 channel) audio.")
 
 
 def _decode(data: bytes, header: _Header, max_frames: int) -> tuple[np.ndarray, bool]:
@@ -479,15 +527,20 @@ def _decode(data: bytes, header: _Header, max_frames: int) -> tuple[np.ndarray, 
                     break
     except (sf.SoundFileError, RuntimeError, ValueError, TypeError, MemoryError) as exc:
         raise UnreadableAudio(
-            f"The {header.format} clip failed to decode ({_short(exc)}); it looks damaged "
-            "or truncated.") from None
+            f"The {header.format} clip failed to decode ({_short(exc)}); it looks damaged or truncated."
+        ) from None
     expected_format = ("WAV", "WAVEX") if header.format == "WAV" else ("FLAC",)
-    if (lib_format not in expected_format or lib_subtype != header.subtype
-            or lib_rate != header.sample_rate_hz or lib_channels != header.channels):
+    if (
+        lib_format not in expected_format
+        or lib_subtype != header.subtype
+        or lib_rate != header.sample_rate_hz
+        or lib_channels != header.channels
+    ):
         raise UnreadableAudio(
             f"The clip's header says {header.format} {header.subtype}, {header.sample_rate_hz} "
             f"Hz, {header.channels} channel(s), but it decodes as {lib_format} {lib_subtype}, "
-            f"{lib_rate} Hz, {lib_channels} channel(s).")
+            f"{lib_rate} Hz, {lib_channels} channel(s)."
+        )
     decoded = np.concatenate(parts) if parts else np.zeros((0, header.channels), dtype=dtype)
     if total > max_frames:
         return _as_float(decoded), False
@@ -497,7 +550,8 @@ def _decode(data: bytes, header: _Header, max_frames: int) -> tuple[np.ndarray, 
     if frames != header.frames:
         raise UnreadableAudio(
             f"The clip's header declares {header.frames} frames but {frames} decode; it looks "
-            "truncated or damaged.")
+            "truncated or damaged."
+        )
     if ints is not None and header.flac_md5 is not None:
         # libsndfile returns samples left-justified in int32; the FLAC MD5 covers the samples
         # at their own width, little-endian, interleaved.
@@ -508,14 +562,14 @@ def _decode(data: bytes, header: _Header, max_frames: int) -> tuple[np.ndarray, 
             raw = shifted.astype("<i4").view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
         if hashlib.md5(raw, usedforsecurity=False).digest() != header.flac_md5:
             raise UnreadableAudio(
-                "The FLAC audio does not match the MD5 signature in its STREAMINFO; it is "
-                "damaged.")
+                "The FLAC audio does not match the MD5 signature in its STREAMINFO; it is damaged."
+            )
     return samples, True
 
 
 def _as_float(decoded: np.ndarray) -> np.ndarray:
     if decoded.dtype == np.int32:
-        return decoded.astype(np.float32) * np.float32(2.0 ** -31)
+        return decoded.astype(np.float32) * np.float32(2.0**-31)
     return decoded
 
 

@@ -99,6 +99,9 @@ class AttributeDefinition(Base):
     # yes_no | one_of | whole_number
     kind: Mapped[str] = mapped_column(String(20))
     options: Mapped[list[str]] = mapped_column(default=list)
+    # Inclusive bounds of a whole number (NULL: unbounded on that side).
+    min_value: Mapped[int | None]
+    max_value: Mapped[int | None]
     position: Mapped[int] = mapped_column(default=0)
 
 

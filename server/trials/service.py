@@ -46,6 +46,10 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
                   fa_target_per_home_month=fa_target_per_home_month, timezone=timezone)
     session.add(trial)
     session.flush()
+    # Every trial starts with the default household attribute catalogue.
+    from server.households.catalogue import seed_default_catalogue
+
+    seed_default_catalogue(session, trial)
     audit.record(session, actor if not isinstance(actor, str) else actor, "trial.create", "trial",
                  trial.id, {"code": code})  # type: ignore[arg-type]
     return trial
@@ -75,12 +79,4 @@ def ensure_default_trial(session: Session, code: str, sound_classes: list[str]) 
             return first
         trial = create_trial(session, code=code, name="Default pilot", starts_on=dt.date.today(),
                              sound_classes=sound_classes)
-        # Households' default attribute catalogue for the new trial (if the register is present).
-        try:
-            from server.households import service as households_service
-            seed = getattr(households_service, "seed_default_catalogue", None)
-            if seed is not None:
-                seed(session, trial)
-        except ImportError:
-            pass
     return trial

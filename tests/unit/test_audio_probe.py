@@ -41,17 +41,38 @@ def sox() -> str:
     return path
 
 
-def sox_write(sox: str, out: Path, *fmt: str, rate: int = RATE, channels: int = 1,
-              seconds: float = 1.0) -> bytes:
+def sox_write(
+    sox: str, out: Path, *fmt: str, rate: int = RATE, channels: int = 1, seconds: float = 1.0
+) -> bytes:
     """A 1 kHz half-scale sine written by SoX (no dither, so the levels are exact)."""
-    subprocess.run([sox, "-D", "-n", "-r", str(rate), "-c", str(channels), *fmt, str(out),
-                    "synth", str(seconds), "sine", "1000", "vol", "0.5"],
-                   check=True, capture_output=True, timeout=30)
+    subprocess.run(
+        [
+            sox,
+            "-D",
+            "-n",
+            "-r",
+            str(rate),
+            "-c",
+            str(channels),
+            *fmt,
+            str(out),
+            "synth",
+            str(seconds),
+            "sine",
+            "1000",
+            "vol",
+            "0.5",
+        ],
+        check=True,
+        capture_output=True,
+        timeout=30,
+    )
     return out.read_bytes()
 
 
-def sine(seconds: float = 1.0, rate: int = RATE, amplitude: float = 0.5, freq: float = 1000.0,
-         channels: int = 1) -> np.ndarray:
+def sine(
+    seconds: float = 1.0, rate: int = RATE, amplitude: float = 0.5, freq: float = 1000.0, channels: int = 1
+) -> np.ndarray:
     x = amplitude * np.sin(2 * np.pi * freq * np.arange(int(round(seconds * rate))) / rate)
     return np.repeat(x[:, None], channels, axis=1) if channels > 1 else x
 
@@ -68,11 +89,19 @@ def chunk(chunk_id: bytes, payload: bytes, *, pad: bool = True, size: int | None
     return chunk_id + struct.pack("<I", declared) + payload + (b"\0" if pad and len(payload) % 2 else b"")
 
 
-def fmt_payload(*, tag: int = 1, channels: int = 1, rate: int = RATE, bits: int = 16,
-                block_align: int | None = None, byte_rate: int | None = None) -> bytes:
+def fmt_payload(
+    *,
+    tag: int = 1,
+    channels: int = 1,
+    rate: int = RATE,
+    bits: int = 16,
+    block_align: int | None = None,
+    byte_rate: int | None = None,
+) -> bytes:
     align = channels * bits // 8 if block_align is None else block_align
-    return struct.pack("<HHIIHH", tag, channels, rate, rate * align if byte_rate is None else byte_rate,
-                       align, bits)
+    return struct.pack(
+        "<HHIIHH", tag, channels, rate, rate * align if byte_rate is None else byte_rate, align, bits
+    )
 
 
 def pcm16(seconds: float = 1.0) -> bytes:
@@ -181,10 +210,17 @@ def test_sox_pcm24_with_odd_data_size_and_pad_byte_is_accepted(sox: str, tmp_pat
 # Accepted formats, written by soundfile (libsndfile)
 
 
-@pytest.mark.parametrize(("fmt", "subtype", "tag"), [
-    ("WAV", "PCM_16", 1), ("WAV", "PCM_24", 1), ("WAV", "FLOAT", 3),
-    ("WAVEX", "PCM_16", 0xFFFE), ("WAVEX", "PCM_24", 0xFFFE), ("WAVEX", "FLOAT", 0xFFFE),
-])
+@pytest.mark.parametrize(
+    ("fmt", "subtype", "tag"),
+    [
+        ("WAV", "PCM_16", 1),
+        ("WAV", "PCM_24", 1),
+        ("WAV", "FLOAT", 3),
+        ("WAVEX", "PCM_16", 0xFFFE),
+        ("WAVEX", "PCM_24", 0xFFFE),
+        ("WAVEX", "FLOAT", 0xFFFE),
+    ],
+)
 def test_soundfile_wav_variants_are_accepted(fmt: str, subtype: str, tag: int) -> None:
     data = sf_bytes(sine(), fmt=fmt, subtype=subtype)
     assert struct.unpack_from("<H", data, 20)[0] == tag
@@ -273,33 +309,55 @@ def test_decode_mono_refuses_stereo() -> None:
 # Unsupported: recognisable audio we do not accept
 
 
-@pytest.mark.parametrize(("name", "fmt"), [
-    ("u8.wav", ["-b", "8", "-e", "unsigned-integer"]),
-    ("mulaw.wav", ["-e", "mu-law"]),
-    ("alaw.wav", ["-e", "a-law"]),
-    ("ima.wav", ["-e", "ima-adpcm"]),
-    ("ms.wav", ["-e", "ms-adpcm"]),
-    ("gsm.wav", ["-e", "gsm-full-rate"]),
-    ("s32.wav", ["-b", "32", "-e", "signed-integer"]),
-    ("f64.wav", ["-b", "64", "-e", "floating-point"]),
-    ("a.aiff", ["-b", "16"]),
-    ("a.au", ["-b", "16"]),
-    ("a.ogg", []),
-    ("a.w64", ["-b", "16"]),
-])
-def test_sox_formats_we_do_not_accept_are_unsupported(sox: str, tmp_path: Path, name: str,
-                                                      fmt: list[str]) -> None:
+@pytest.mark.parametrize(
+    ("name", "fmt"),
+    [
+        ("u8.wav", ["-b", "8", "-e", "unsigned-integer"]),
+        ("mulaw.wav", ["-e", "mu-law"]),
+        ("alaw.wav", ["-e", "a-law"]),
+        ("ima.wav", ["-e", "ima-adpcm"]),
+        ("ms.wav", ["-e", "ms-adpcm"]),
+        ("gsm.wav", ["-e", "gsm-full-rate"]),
+        ("s32.wav", ["-b", "32", "-e", "signed-integer"]),
+        ("f64.wav", ["-b", "64", "-e", "floating-point"]),
+        ("a.aiff", ["-b", "16"]),
+        ("a.au", ["-b", "16"]),
+        ("a.ogg", []),
+        ("a.w64", ["-b", "16"]),
+    ],
+)
+def test_sox_formats_we_do_not_accept_are_unsupported(
+    sox: str, tmp_path: Path, name: str, fmt: list[str]
+) -> None:
     data = sox_write(sox, tmp_path / name, *fmt)
     assert_rejected(data, UnsupportedAudio, "unsupported_audio")
 
 
-@pytest.mark.parametrize(("fmt", "subtype"), [
-    ("WAV", "PCM_U8"), ("WAV", "PCM_32"), ("WAV", "DOUBLE"), ("WAV", "ULAW"), ("WAV", "ALAW"),
-    ("WAV", "IMA_ADPCM"), ("WAV", "MS_ADPCM"), ("WAV", "G721_32"), ("WAVEX", "PCM_32"),
-    ("WAVEX", "ULAW"), ("FLAC", "PCM_S8"), ("AIFF", "PCM_16"), ("AU", "PCM_16"),
-    ("W64", "PCM_16"), ("RF64", "PCM_16"), ("CAF", "PCM_16"), ("OGG", "VORBIS"),
-    ("MP3", "MPEG_LAYER_III"), ("NIST", "PCM_16"), ("VOC", "PCM_16"),
-])
+@pytest.mark.parametrize(
+    ("fmt", "subtype"),
+    [
+        ("WAV", "PCM_U8"),
+        ("WAV", "PCM_32"),
+        ("WAV", "DOUBLE"),
+        ("WAV", "ULAW"),
+        ("WAV", "ALAW"),
+        ("WAV", "IMA_ADPCM"),
+        ("WAV", "MS_ADPCM"),
+        ("WAV", "G721_32"),
+        ("WAVEX", "PCM_32"),
+        ("WAVEX", "ULAW"),
+        ("FLAC", "PCM_S8"),
+        ("AIFF", "PCM_16"),
+        ("AU", "PCM_16"),
+        ("W64", "PCM_16"),
+        ("RF64", "PCM_16"),
+        ("CAF", "PCM_16"),
+        ("OGG", "VORBIS"),
+        ("MP3", "MPEG_LAYER_III"),
+        ("NIST", "PCM_16"),
+        ("VOC", "PCM_16"),
+    ],
+)
 def test_soundfile_formats_we_do_not_accept_are_unsupported(fmt: str, subtype: str) -> None:
     data = sf_bytes(sine(), fmt=fmt, subtype=subtype)
     assert_rejected(data, UnsupportedAudio, "unsupported_audio")
@@ -318,8 +376,9 @@ def test_stereo_from_sox_is_unsupported_channels(sox: str, tmp_path: Path) -> No
 
 @pytest.mark.parametrize(("fmt", "subtype"), [("WAV", "PCM_16"), ("WAVEX", "PCM_24"), ("FLAC", "PCM_16")])
 def test_stereo_from_soundfile_is_unsupported_channels(fmt: str, subtype: str) -> None:
-    assert_rejected(sf_bytes(sine(channels=2), fmt=fmt, subtype=subtype),
-                    UnsupportedChannels, "unsupported_channels")
+    assert_rejected(
+        sf_bytes(sine(channels=2), fmt=fmt, subtype=subtype), UnsupportedChannels, "unsupported_channels"
+    )
 
 
 @pytest.mark.parametrize("rate", [64000, 4000])
@@ -386,8 +445,9 @@ def test_truncated_data_with_riff_size_patched_is_unreadable() -> None:
 
 
 def test_riff_size_larger_than_file_is_unreadable() -> None:
-    assert_rejected(riff(FMT, chunk(b"data", pcm16()), size=36 + 32000 + 500),
-                    UnreadableAudio, "unreadable_audio")
+    assert_rejected(
+        riff(FMT, chunk(b"data", pcm16()), size=36 + 32000 + 500), UnreadableAudio, "unreadable_audio"
+    )
 
 
 def test_riff_size_smaller_than_file_with_trailing_bytes_is_unreadable() -> None:
@@ -419,8 +479,9 @@ def test_missing_fmt_chunk_is_unreadable() -> None:
 
 
 def test_missing_data_chunk_is_unreadable() -> None:
-    assert_rejected(riff(FMT, chunk(b"LIST", b"INFOISFT\x04\x00\x00\x00test")),
-                    UnreadableAudio, "unreadable_audio")
+    assert_rejected(
+        riff(FMT, chunk(b"LIST", b"INFOISFT\x04\x00\x00\x00test")), UnreadableAudio, "unreadable_audio"
+    )
 
 
 def test_fmt_after_data_is_unreadable() -> None:
@@ -430,16 +491,20 @@ def test_fmt_after_data_is_unreadable() -> None:
 
 
 def test_duplicate_data_chunk_is_unreadable() -> None:
-    assert_rejected(riff(FMT, chunk(b"data", pcm16()), chunk(b"data", pcm16())),
-                    UnreadableAudio, "unreadable_audio")
+    assert_rejected(
+        riff(FMT, chunk(b"data", pcm16()), chunk(b"data", pcm16())), UnreadableAudio, "unreadable_audio"
+    )
 
 
 def test_odd_sized_list_chunk_with_pad_byte_is_accepted() -> None:
     info_list = b"INFOISFT" + struct.pack("<I", 5) + b"trial"  # 17 bytes: odd
     listed = chunk(b"LIST", info_list)
     assert len(listed) == 8 + 17 + 1
-    for data in (riff(FMT, listed, chunk(b"data", pcm16())), riff(listed, FMT, chunk(b"data", pcm16())),
-                 riff(FMT, chunk(b"data", pcm16()), listed)):
+    for data in (
+        riff(FMT, listed, chunk(b"data", pcm16())),
+        riff(listed, FMT, chunk(b"data", pcm16())),
+        riff(FMT, chunk(b"data", pcm16()), listed),
+    ):
         assert_half_scale_sine(probe(data))
 
 
@@ -449,8 +514,9 @@ def test_odd_sized_chunk_without_its_pad_byte_is_unreadable() -> None:
 
 
 def test_missing_pad_byte_at_the_very_end_is_tolerated() -> None:
-    samples24 = (np.round(sine(8001 / RATE) * 8388607).astype("<i4").view(np.uint8)
-                 .reshape(-1, 4)[:, :3].tobytes())
+    samples24 = (
+        np.round(sine(8001 / RATE) * 8388607).astype("<i4").view(np.uint8).reshape(-1, 4)[:, :3].tobytes()
+    )
     data = riff(chunk(b"fmt ", fmt_payload(bits=24)), chunk(b"data", samples24, pad=False))
     assert probe(data).frames == 8001
 
@@ -458,14 +524,20 @@ def test_missing_pad_byte_at_the_very_end_is_tolerated() -> None:
 def test_extra_fact_and_peak_chunks_are_skipped() -> None:
     fact = chunk(b"fact", struct.pack("<I", RATE))
     peak = chunk(b"PEAK", struct.pack("<IIfI", 1, 0, 0.5, 4))
-    data = riff(chunk(b"fmt ", fmt_payload(tag=3, bits=32)), fact, peak,
-                chunk(b"data", sine().astype("<f4").tobytes()))
+    data = riff(
+        chunk(b"fmt ", fmt_payload(tag=3, bits=32)),
+        fact,
+        peak,
+        chunk(b"data", sine().astype("<f4").tobytes()),
+    )
     info = probe(data)
     assert info.subtype == "FLOAT"
     assert_half_scale_sine(info)
 
 
-@pytest.mark.parametrize("fields", [{"block_align": 4}, {"byte_rate": 16000}, {"block_align": 1, "byte_rate": 16000}])
+@pytest.mark.parametrize(
+    "fields", [{"block_align": 4}, {"byte_rate": 16000}, {"block_align": 1, "byte_rate": 16000}]
+)
 def test_fmt_fields_inconsistent_with_channels_and_bits_are_unreadable(fields: dict[str, int]) -> None:
     data = riff(chunk(b"fmt ", fmt_payload(**fields)), chunk(b"data", pcm16()))
     assert_rejected(data, UnreadableAudio, "unreadable_audio")
@@ -478,8 +550,9 @@ def test_data_size_not_whole_frames_is_unreadable() -> None:
 
 
 def test_short_fmt_chunk_is_unreadable() -> None:
-    assert_rejected(riff(chunk(b"fmt ", fmt_payload()[:14]), chunk(b"data", pcm16())),
-                    UnreadableAudio, "unreadable_audio")
+    assert_rejected(
+        riff(chunk(b"fmt ", fmt_payload()[:14]), chunk(b"data", pcm16())), UnreadableAudio, "unreadable_audio"
+    )
 
 
 def test_zero_channels_is_unreadable() -> None:
@@ -587,16 +660,20 @@ def _png() -> bytes:
     return buf.getvalue()
 
 
-@pytest.mark.parametrize("data", [
-    b"",
-    b"hello, this is a text file and not a recording\n" * 40,
-    b'{"event_id": "e-1", "sound_class": "smoke_alarm", "score": 0.93}',
-    bytes(16044),
-    b"\xff" * 4096,
-    np.random.default_rng(7).bytes(20000),
-    b"RIFF",
-    b"fLaC",
-], ids=["empty", "text", "json", "zeros", "ones", "random", "riff-magic-only", "flac-magic-only"])
+@pytest.mark.parametrize(
+    "data",
+    [
+        b"",
+        b"hello, this is a text file and not a recording\n" * 40,
+        b'{"event_id": "e-1", "sound_class": "smoke_alarm", "score": 0.93}',
+        bytes(16044),
+        b"\xff" * 4096,
+        np.random.default_rng(7).bytes(20000),
+        b"RIFF",
+        b"fLaC",
+    ],
+    ids=["empty", "text", "json", "zeros", "ones", "random", "riff-magic-only", "flac-magic-only"],
+)
 def test_non_audio_bytes_are_unreadable(data: bytes) -> None:
     assert_rejected(data, UnreadableAudio, "unreadable_audio")
 
