@@ -57,6 +57,11 @@ class DeviceRevoked(AppError):
 class NotSignedIn(AppError):
     code, status = "not_signed_in", 401
 
+    def __init__(self, message: str = "Sign in to continue.", **kw: Any) -> None:
+        # RFC 9110 section 15.5.2: a 401 names a scheme; the staff API takes personal bearer tokens.
+        kw.setdefault("headers", {"WWW-Authenticate": "Bearer"})
+        super().__init__(message, **kw)
+
 
 class Forbidden(AppError):
     code, status = "forbidden", 403

@@ -18,8 +18,11 @@ CAPABILITIES: dict[str, frozenset[str]] = {
     "homes.view": frozenset({ADMIN, COORDINATOR, LEAD}),         # codes and attributes only
     "homes.manage": frozenset({ADMIN, COORDINATOR}),
     "personal.view": frozenset({ADMIN, COORDINATOR}),            # contact data; audited
+    "personal.manage": frozenset({ADMIN, COORDINATOR}),          # edit contact data; audited
     "homes.erase": frozenset({ADMIN, COORDINATOR}),
     "quota.view": frozenset({ADMIN, COORDINATOR, LEAD}),
+    "quota.manage": frozenset({ADMIN, COORDINATOR}),             # targets, counting states
+    "attributes.manage": frozenset({ADMIN, COORDINATOR}),        # a trial's attribute catalogue
     "installations.manage": frozenset({ADMIN, COORDINATOR}),
     "staged.manage": frozenset({ADMIN, COORDINATOR}),
     "review.work": frozenset({ADMIN, REVIEWER}),

@@ -105,3 +105,42 @@ def make_alert(session: Session, store: ClipStore, settings: Settings, device: D
         result = devices_service.ingest_alert(session, store=store, settings=settings, device=device,
                                               meta_raw=meta, upload=up, now=now)
     return result.alert
+
+
+# --- households (register) ------------------------------------------------------------------------
+
+def make_registered_home(session: Session, trial: Trial, *, state: str = "candidate",
+                         attributes: dict[str, Any] | None = None, at: dt.datetime | None = None,
+                         retention_days: int = 90, staff_may_listen: bool = True) -> Home:
+    """A home created through the register service and walked to ``state`` (up to consented)."""
+    from server.households import service as households_service
+
+    at = at or (dt.datetime.now(dt.UTC).replace(microsecond=0) - dt.timedelta(days=120))
+    home = households_service.create_home(session, trial, attributes=attributes or {}, at=at)
+    if state == "candidate":
+        return home
+    if state == "declined":
+        households_service.transition(session, home, "declined", at=at)
+        return home
+    households_service.transition(session, home, "screened", at=at)
+    if state == "screened":
+        return home
+    households_service.record_consent(session, home, form_version="v1", consented_on=at.date(),
+                                      retention_days=retention_days, staff_may_listen=staff_may_listen,
+                                      mark_consented=True, at=at)
+    assert state == "consented", "walk further with install_device / transition"
+    return home
+
+
+def make_installed_home(session: Session, trial: Trial, device: Device, *, room: str = "kitchen",
+                        installed_at: dt.datetime, attributes: dict[str, Any] | None = None,
+                        state: str = "active", retention_days: int = 90) -> Home:
+    """A consented home with ``device`` installed from ``installed_at``, then made ``state``."""
+    from server.households import service as households_service
+
+    home = make_registered_home(session, trial, state="consented", attributes=attributes,
+                                at=installed_at - dt.timedelta(days=1), retention_days=retention_days)
+    households_service.install_device(session, home=home, device=device, room=room, installed_at=installed_at)
+    if state == "active":
+        households_service.transition(session, home, "active", at=installed_at)
+    return home

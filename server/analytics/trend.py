@@ -67,8 +67,9 @@ def parse_week(label: str) -> tuple[int, int]:
     return year, week
 
 
-def _local_midnight_utc(day: dt.date, zone: ZoneInfo) -> dt.datetime:
-    # The first instant whose local wall time is at or after 00:00 on `day`.
+def local_midnight(day: dt.date, tz: str | ZoneInfo) -> dt.datetime:
+    """The first instant (aware, UTC) whose local wall time in `tz` is 00:00 or later on `day`."""
+    zone = tz if isinstance(tz, ZoneInfo) else ZoneInfo(tz)
     ts = pd.Timestamp(day).tz_localize(zone, ambiguous=True, nonexistent="shift_forward")
     return ts.tz_convert("UTC").to_pydatetime()
 
@@ -81,8 +82,8 @@ def week_from_index(index: int, tz: str) -> Week:
         label=f"{year:04d}-W{week:02d}",
         index=int(index),
         starts_on=monday,
-        start_at=_local_midnight_utc(monday, zone),
-        end_at=_local_midnight_utc(monday + dt.timedelta(days=7), zone),
+        start_at=local_midnight(monday, zone),
+        end_at=local_midnight(monday + dt.timedelta(days=7), zone),
     )
 
 

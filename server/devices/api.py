@@ -41,7 +41,11 @@ def current_device(request: Request, session: DbSession) -> Device:
     token = token.strip()
     if scheme.lower() != "bearer" or not token:
         raise MissingToken("The Authorization header must read 'Bearer <token>'.")
-    return service.authenticate_device(session, token)
+    device = service.authenticate_device(session, token)
+    # End the look-up's transaction before the body streams in: on SQLite a write session's
+    # transaction holds the database's write lock, so a slow upload would stall every other device.
+    session.commit()
+    return device
 
 
 CurrentDevice = Annotated[Device, Depends(current_device)]

@@ -9,8 +9,29 @@ from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, field_validato
 
 _CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
 _HEX64 = re.compile(r"^[0-9a-fA-F]{64}$")
+# RFC 3339 section 5.6 date-time, offset required ("T" may be "t" or, per its note, a space).
+# Without this, a string of digits would be read as a Unix time.
+_RFC3339 = re.compile(r"^\d{4}-\d{2}-\d{2}[Tt ]\d{2}:\d{2}:\d{2}(\.\d+)?([Zz]|[+-]\d{2}:\d{2})$")
 
 STRICT = ConfigDict(strict=True, extra="ignore", allow_inf_nan=False)
+
+
+def _rfc3339(v: object) -> object:
+    """Parse an RFC 3339 string; anything else is left for the strict type check to refuse."""
+    if not isinstance(v, str):
+        return v
+    if not _RFC3339.match(v):
+        raise ValueError("must be an RFC 3339 date-time with an offset, such as 2026-03-02T11:57:30Z")
+    try:
+        return dt.datetime.fromisoformat(re.sub(r"(\.\d{6})\d+", r"\1", v).replace("z", "Z"))
+    except ValueError as exc:
+        raise ValueError(f"is not a valid date-time ({exc})") from exc
+
+
+def _printable(v: str) -> str:
+    if _CONTROL.search(v):
+        raise ValueError("must not contain control characters")
+    return v
 
 
 class HeartbeatIn(BaseModel):
@@ -19,6 +40,9 @@ class HeartbeatIn(BaseModel):
     sent_at: AwareDatetime
     listening: bool
     firmware: str = Field(min_length=1, max_length=64)
+
+    _sent_at_format = field_validator("sent_at", mode="before")(_rfc3339)
+    _firmware_printable = field_validator("firmware")(_printable)
 
 
 class HeartbeatOut(BaseModel):
@@ -48,6 +72,9 @@ class AlertMeta(EventIdOnly):
     clip_offset_s: float = Field(ge=0.0)
     firmware: str = Field(min_length=1, max_length=64)
     clip_sha256: str | None = None
+
+    _detected_at_format = field_validator("detected_at", mode="before")(_rfc3339)
+    _firmware_printable = field_validator("firmware")(_printable)
 
     @field_validator("score", "clip_offset_s", mode="before")
     @classmethod

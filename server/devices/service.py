@@ -25,6 +25,7 @@ from server.errors import (
     DeviceRevoked,
     EventIdConflict,
     InvalidMeta,
+    InvalidRequest,
     InvalidToken,
     NotFound,
     UnknownSoundClass,
@@ -91,7 +92,7 @@ def authenticate_device(session: Session, token: str) -> Device:
 # --- time checks ----------------------------------------------------------------------------
 
 def _check_time_window(value: dt.datetime, now: dt.datetime, settings: Settings, field: str,
-                       error: type[InvalidMeta] | type[ValidationFailed]) -> None:
+                       error: type[InvalidMeta] | type[InvalidRequest]) -> None:
     earliest = now - dt.timedelta(days=settings.max_past_days)
     latest = now + dt.timedelta(hours=settings.max_future_hours)
     if not earliest <= value <= latest:
@@ -117,7 +118,8 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     segment at now; ``listening: false`` closes the open segment at its last listening beat.
     """
     now = now or utcnow()
-    _check_time_window(beat.sent_at, now, settings, "sent_at", ValidationFailed)
+    # invalid_request, like every other heartbeat body error.
+    _check_time_window(beat.sent_at, now, settings, "sent_at", InvalidRequest)
     _lock_device(session, device)
     device.last_seen_at = now
     device.firmware = beat.firmware

@@ -43,7 +43,8 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
     """Parse the body; the caller must ``discard()`` the clip spool when done."""
     boundary = boundary_of(content_type)
     result = AlertUpload()
-    state: dict[str, object] = {"name": None, "buf": None, "hname": b"", "hval": b"", "headers": {}}
+    state: dict[str, object] = {"name": None, "buf": None, "hname": b"", "hval": b"", "headers": {},
+                                "ended": False}
     errors: list[Exception] = []
 
     def on_part_begin() -> None:
@@ -109,7 +110,11 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
             result.meta = bytes(state["buf"])
             state["buf"] = None
 
+    def on_end() -> None:
+        state["ended"] = True
+
     parser = MultipartParser(boundary, {
+        "on_end": on_end,
         "on_part_begin": on_part_begin, "on_header_field": on_header_field,
         "on_header_value": on_header_value, "on_header_end": on_header_end,
         "on_headers_finished": on_headers_finished, "on_part_data": on_part_data,
@@ -135,6 +140,12 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
         if result.clip:
             result.clip.discard()
         raise errors[0]
+    if not state["ended"] and result.parts:
+        # The parser accepts a body cut off before its closing delimiter (RFC 2046 section 5.1.1);
+        # a part that never ended may be incomplete, so none of it is used.
+        if result.clip:
+            result.clip.discard()
+        raise MalformedMultipart("The multipart body ends before its closing boundary; was the upload cut short?")
     if result.meta is None or result.clip is None:
         if result.clip:
             result.clip.discard()

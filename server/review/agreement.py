@@ -76,8 +76,9 @@ def percent_agreement(first: Sequence[Hashable], second: Sequence[Hashable]) -> 
     return Agreement(agreed / n, agreed, n)
 
 
-def confusion_matrix(first: Sequence[Hashable], second: Sequence[Hashable],
-                     labels: Sequence[Hashable] | None = None) -> ConfusionMatrix:
+def confusion_matrix(
+    first: Sequence[Hashable], second: Sequence[Hashable], labels: Sequence[Hashable] | None = None
+) -> ConfusionMatrix:
     """Cross-tabulate two label sequences.
 
     ``labels`` fixes the order (and may include labels nobody used); otherwise the labels
@@ -130,20 +131,31 @@ def cohen_kappa_from_table(table: Any, *, weights: Weights = None) -> Kappa:
             i, j = np.indices((g, g))
             w = np.abs(i - j) / (g - 1)
             if weights == "quadratic":
-                w = w ** 2
+                w = w**2
             elif weights != "linear":
                 raise ValueError(f"unknown weights {weights!r}; use 'linear' or 'quadratic'")
     d_obs = float((w * p).sum())
     d_exp = float((w * expected_table).sum())
     observed, expected = 1.0 - d_obs, 1.0 - d_exp
     if d_exp == 0.0:
-        return Kappa(math.nan, observed, expected, n_int, weights,
-                     reason="chance agreement is 1: both reviewers used a single, identical label")
+        return Kappa(
+            math.nan,
+            observed,
+            expected,
+            n_int,
+            weights,
+            reason="chance agreement is 1: both reviewers used a single, identical label",
+        )
     return Kappa(1.0 - d_obs / d_exp, observed, expected, n_int, weights)
 
 
-def cohen_kappa(first: Sequence[Hashable], second: Sequence[Hashable], *,
-                labels: Sequence[Hashable] | None = None, weights: Weights = None) -> Kappa:
+def cohen_kappa(
+    first: Sequence[Hashable],
+    second: Sequence[Hashable],
+    *,
+    labels: Sequence[Hashable] | None = None,
+    weights: Weights = None,
+) -> Kappa:
     """Cohen's kappa from paired labels (see ``cohen_kappa_from_table``)."""
     cm = confusion_matrix(first, second, labels)
     return cohen_kappa_from_table(cm.counts, weights=weights)
@@ -214,14 +226,19 @@ def krippendorff_alpha_nominal(reliability_data: Iterable[Iterable[Any]]) -> Alp
     n = float(coincidence.sum())
     n_int = int(round(n))
     if pairable_units == 0:
-        return Alpha(math.nan, math.nan, math.nan, 0, 0,
-                     reason="no unit has values from two or more coders")
+        return Alpha(math.nan, math.nan, math.nan, 0, 0, reason="no unit has values from two or more coders")
     n_c = coincidence.sum(axis=1)
     d_obs = (n - float(np.trace(coincidence))) / n
-    d_exp = (n * n - float((n_c ** 2).sum())) / (n * (n - 1))
+    d_exp = (n * n - float((n_c**2).sum())) / (n * (n - 1))
     if d_exp == 0.0:
-        return Alpha(math.nan, d_obs, d_exp, n_int, pairable_units,
-                     reason="every pairable value is the same label, so disagreement cannot be expected")
+        return Alpha(
+            math.nan,
+            d_obs,
+            d_exp,
+            n_int,
+            pairable_units,
+            reason="every pairable value is the same label, so disagreement cannot be expected",
+        )
     return Alpha(1.0 - d_obs / d_exp, d_obs, d_exp, n_int, pairable_units)
 
 
@@ -269,8 +286,9 @@ def paired_labels(verdicts: pd.DataFrame) -> tuple[list[Hashable], list[Hashable
     return first, second
 
 
-def pairwise_kappas(verdicts: pd.DataFrame, *, min_shared: int = 20,
-                    labels: Sequence[Hashable] | None = None) -> list[PairKappa]:
+def pairwise_kappas(
+    verdicts: pd.DataFrame, *, min_shared: int = 20, labels: Sequence[Hashable] | None = None
+) -> list[PairKappa]:
     """Cohen's kappa for each reviewer pair with at least ``min_shared`` items in common.
 
     Within a pair, each reviewer's label is their first verdict on the item. Reviewer ids
@@ -278,10 +296,11 @@ def pairwise_kappas(verdicts: pd.DataFrame, *, min_shared: int = 20,
     """
     if verdicts.empty:
         return []
-    firsts = (verdicts.sort_values("order")
-              .drop_duplicates(["alert_id", "reviewer_id"], keep="first"))
-    by_reviewer = {rid: dict(zip(g["alert_id"], g["label"], strict=True))
-                   for rid, g in firsts.groupby("reviewer_id", sort=False)}
+    firsts = verdicts.sort_values("order").drop_duplicates(["alert_id", "reviewer_id"], keep="first")
+    by_reviewer = {
+        rid: dict(zip(g["alert_id"], g["label"], strict=True))
+        for rid, g in firsts.groupby("reviewer_id", sort=False)
+    }
     out: list[PairKappa] = []
     for a, b in combinations(sorted(by_reviewer, key=str), 2):
         shared_ids = sorted(set(by_reviewer[a]) & set(by_reviewer[b]), key=str)
@@ -289,8 +308,9 @@ def pairwise_kappas(verdicts: pd.DataFrame, *, min_shared: int = 20,
             continue
         la = [by_reviewer[a][i] for i in shared_ids]
         lb = [by_reviewer[b][i] for i in shared_ids]
-        out.append(PairKappa(a, b, len(shared_ids), cohen_kappa(la, lb, labels=labels),
-                             percent_agreement(la, lb)))
+        out.append(
+            PairKappa(a, b, len(shared_ids), cohen_kappa(la, lb, labels=labels), percent_agreement(la, lb))
+        )
     return out
 
 
@@ -298,8 +318,7 @@ def reliability_matrix(verdicts: pd.DataFrame) -> list[list[Any]]:
     """Coders-by-units matrix (None where a reviewer did not review an item) for alpha."""
     if verdicts.empty:
         return []
-    firsts = (verdicts.sort_values("order")
-              .drop_duplicates(["alert_id", "reviewer_id"], keep="first"))
+    firsts = verdicts.sort_values("order").drop_duplicates(["alert_id", "reviewer_id"], keep="first")
     reviewers = sorted(firsts["reviewer_id"].unique(), key=str)
     units = sorted(firsts["alert_id"].unique(), key=str)
     col = {u: j for j, u in enumerate(units)}
@@ -343,8 +362,9 @@ def wilson_interval(successes: int, n: int, confidence_level: float = 0.95) -> P
     if not 0 < confidence_level < 1:
         raise ValueError("confidence_level must lie strictly between 0 and 1")
     if n == 0:
-        return Proportion(math.nan, math.nan, math.nan, 0, 0, confidence_level, "wilson",
-                          reason="no gold checks answered")
+        return Proportion(
+            math.nan, math.nan, math.nan, 0, 0, confidence_level, "wilson", reason="no gold checks answered"
+        )
     z = float(norm.ppf(1 - (1 - confidence_level) / 2))
     p = successes / n
     denom = 1 + z * z / n
@@ -427,8 +447,14 @@ def throughput(decided_at: pd.DataFrame, *, idle_gap_s: float = 300.0) -> dict[H
 
 def _throughput(clips: int, verdicts: int, active_s: float, idle_gap_s: float) -> Throughput:
     if active_s <= 0:
-        return Throughput(clips, verdicts, active_s, idle_gap_s, math.nan,
-                          reason="no active review time (fewer than two verdicts within the idle gap)")
+        return Throughput(
+            clips,
+            verdicts,
+            active_s,
+            idle_gap_s,
+            math.nan,
+            reason="no active review time (fewer than two verdicts within the idle gap)",
+        )
     return Throughput(clips, verdicts, active_s, idle_gap_s, clips / (active_s / 3600.0))
 
 

@@ -1,9 +1,51 @@
-"""CLI commands of the review domain."""
+"""CLI commands of the review domain: the backlog and agreement figures."""
 
 from __future__ import annotations
 
 import argparse
+import json
+import math
+
+from server.settings import Settings
+
+
+def _fmt(x: float | None, digits: int = 3) -> str:
+    return "—" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{x:.{digits}f}"
+
+
+def cmd_review_overview(args: argparse.Namespace, settings: Settings) -> int:
+    from server.cli import open_db
+    from server.db import session_scope
+    from server.review import overview
+    from server.trials import service as trials_service
+
+    with session_scope(open_db(settings)) as s:
+        trial_id = trials_service.get_trial(s, args.trial).id if args.trial else None
+        ov = overview.review_overview(s, trial_id)
+    if args.json:
+        print(json.dumps(overview.overview_to_json(ov), indent=2))
+        return 0
+    b = ov.backlog
+    oldest = "—" if math.isnan(b.oldest_age_s) else f"{b.oldest_age_s / 3600:.1f} h"
+    print(f"backlog: {b.count} alert(s) without a final verdict; oldest waited {oldest}")
+    print("  " + ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in ov.by_state.items() if k != "final"))
+    print(
+        f"double-reviewed: {ov.double_reviewed}; agreement {_fmt(ov.percent_agreement.estimate)}, "
+        f"Cohen's kappa {_fmt(ov.kappa_overall.estimate)}, Krippendorff's alpha {_fmt(ov.alpha.estimate)}"
+    )
+    for p in ov.pair_kappas:
+        print(f"  {p.reviewer_a} / {p.reviewer_b}: {p.shared} shared, kappa {_fmt(p.kappa.estimate)}")
+    for r in ov.reviewers:
+        gold = f"gold {r.gold.successes}/{r.gold.n}" if r.gold else "no gold answers"
+        rate = _fmt(r.throughput.clips_per_hour, 0) if r.throughput else "—"
+        print(f"  {r.name}: {r.verdicts} verdict(s), {gold}, {rate} clips/h")
+    return 0
 
 
 def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     """Add this domain's commands: ``sub`` is the top level, ``storage`` the `storage` group."""
+    review = sub.add_parser("review", help="clip review").add_subparsers(dest="review_cmd", required=True)
+    ro = review.add_parser("overview", help="backlog, reviewer agreement and reviewer quality")
+    ro.add_argument("--trial", help="trial code (default: all trials)")
+    ro.add_argument("--json", action="store_true")
+    ro.set_defaults(func=cmd_review_overview)

@@ -56,8 +56,14 @@ def default_n_fft(rate_hz: int) -> int:
     return int(2 ** max(6, round(math.log2(0.032 * rate_hz))))
 
 
-def spectrogram_db(samples: np.ndarray, rate_hz: int, *, n_fft: int | None = None,
-                   overlap: float = 0.75, dynamic_range_db: float = 80.0) -> Spectrogram:
+def spectrogram_db(
+    samples: np.ndarray,
+    rate_hz: int,
+    *,
+    n_fft: int | None = None,
+    overlap: float = 0.75,
+    dynamic_range_db: float = 80.0,
+) -> Spectrogram:
     """Short-time Fourier transform with a Hann window, as dB relative to the maximum.
 
     Frame ``i`` is centred on the middle of samples [i*hop, (i+1)*hop), with zeros beyond the
@@ -77,11 +83,11 @@ def spectrogram_db(samples: np.ndarray, rate_hz: int, *, n_fft: int | None = Non
     total = (n_frames - 1) * hop + n_fft
     padded = np.zeros(total, dtype=np.float32)
     take = min(x.size, total - left)
-    padded[left:left + take] = x[:take]
+    padded[left : left + take] = x[:take]
     frames = sliding_window_view(padded, n_fft)[::hop][:n_frames]
     window = np.hanning(n_fft + 1)[:-1].astype(np.float32)  # periodic Hann
     spec = np.fft.rfft(frames * window, axis=1)
-    power = (spec.real ** 2 + spec.imag ** 2).astype(np.float32)
+    power = (spec.real**2 + spec.imag**2).astype(np.float32)
     floor = np.float32(1e-12)
     ref = max(float(power.max()), float(floor))
     db = 10.0 * np.log10(np.maximum(power, floor) / ref)
@@ -211,9 +217,16 @@ def waveform_image(mins: np.ndarray, maxs: np.ndarray, height: int, scale: float
     return img
 
 
-def render_clip_images(samples: np.ndarray, rate_hz: int, *, waveform_width: int = 1000,
-                       waveform_height: int = 96, dynamic_range_db: float = 80.0,
-                       n_fft: int | None = None, overlap: float = 0.75) -> ClipImages:
+def render_clip_images(
+    samples: np.ndarray,
+    rate_hz: int,
+    *,
+    waveform_width: int = 1000,
+    waveform_height: int = 96,
+    dynamic_range_db: float = 80.0,
+    n_fft: int | None = None,
+    overlap: float = 0.75,
+) -> ClipImages:
     """Both images as PNG bytes plus their axis metadata.
 
     The waveform is scaled to the clip's peak so quiet clips stay visible; ``peak_dbfs``

@@ -75,66 +75,116 @@ class ReviewOverview:
     notes: tuple[str, ...] = field(default_factory=tuple)
 
 
-def review_overview(session: Session, trial_id: int | None = None, *, now: dt.datetime | None = None,
-                    throughput_days: float = 7.0, idle_gap_s: float = 300.0) -> ReviewOverview:
+def review_overview(
+    session: Session,
+    trial_id: int | None = None,
+    *,
+    now: dt.datetime | None = None,
+    throughput_days: float = 7.0,
+    idle_gap_s: float = 300.0,
+) -> ReviewOverview:
     """Backlog, agreement and reviewer quality; the agreement page and analytics read this."""
     now = now or utcnow()
     trial_cond: list[ColumnElement[bool]] = [Alert.trial_id == trial_id] if trial_id is not None else []
 
     by_state = {s: 0 for s in AlertState.all}
-    for state, n in session.execute(select(Alert.state, func.count()).where(*trial_cond).group_by(Alert.state)):
+    for state, n in session.execute(
+        select(Alert.state, func.count()).where(*trial_cond).group_by(Alert.state)
+    ):
         by_state[state] = int(n)
     methods = {m: 0 for m in ("single", "agreed", "adjudicated")}
-    for method, n in session.execute(select(Alert.final_method, func.count())
-                                     .where(Alert.state == AlertState.final, *trial_cond)
-                                     .group_by(Alert.final_method)):
+    for method, n in session.execute(
+        select(Alert.final_method, func.count())
+        .where(Alert.state == AlertState.final, *trial_cond)
+        .group_by(Alert.final_method)
+    ):
         if method is not None:
             methods[method] = int(n)
-    pending_times = session.scalars(select(Alert.received_at).where(Alert.state.in_(OPEN_STATES), *trial_cond))
+    pending_times = session.scalars(
+        select(Alert.received_at).where(Alert.state.in_(OPEN_STATES), *trial_cond)
+    )
     backlog = agreement.backlog(list(pending_times), now)
 
     rows = session.execute(
-        select(Verdict.id, Verdict.alert_id, Verdict.reviewer_id, Verdict.label, Verdict.round,
-               Verdict.created_at)
-        .join(Alert, Alert.id == Verdict.alert_id).where(*trial_cond))
-    vf = pd.DataFrame(rows.all(), columns=["order", "alert_id", "reviewer_id", "label", "round", "decided_at"])
+        select(
+            Verdict.id,
+            Verdict.alert_id,
+            Verdict.reviewer_id,
+            Verdict.label,
+            Verdict.round,
+            Verdict.created_at,
+        )
+        .join(Alert, Alert.id == Verdict.alert_id)
+        .where(*trial_cond)
+    )
+    vf = pd.DataFrame(
+        rows.all(), columns=["order", "alert_id", "reviewer_id", "label", "round", "decided_at"]
+    )
     names = dict(session.execute(select(User.id, User.name)).all())
     paired_frame = vf[vf["round"].isin(PAIRED_ROUNDS)]
     first, second = agreement.paired_labels(paired_frame)
     pa = agreement.percent_agreement(first, second)
     kappa_all = agreement.cohen_kappa(first, second, labels=list(LABELS))
-    pairs = tuple(ReviewerPairKappa(names.get(p.reviewer_a, str(p.reviewer_a)), names.get(p.reviewer_b, str(p.reviewer_b)),
-                                    p.shared, p.kappa, p.agreement)
-                  for p in agreement.pairwise_kappas(paired_frame, min_shared=MIN_SHARED_FOR_KAPPA,
-                                                     labels=list(LABELS)))
+    pairs = tuple(
+        ReviewerPairKappa(
+            names.get(p.reviewer_a, str(p.reviewer_a)),
+            names.get(p.reviewer_b, str(p.reviewer_b)),
+            p.shared,
+            p.kappa,
+            p.agreement,
+        )
+        for p in agreement.pairwise_kappas(paired_frame, min_shared=MIN_SHARED_FOR_KAPPA, labels=list(LABELS))
+    )
     alpha = agreement.krippendorff_alpha_nominal(agreement.reliability_matrix(paired_frame))
     confusion = agreement.confusion_matrix(first, second, labels=list(LABELS))
 
     gold_rows = session.execute(
         select(GoldAnswer.reviewer_id, GoldAnswer.correct, GoldAnswer.created_at)
         .join(GoldCheck, GoldCheck.id == GoldAnswer.gold_check_id)
-        .join(Alert, Alert.id == GoldCheck.alert_id).where(*trial_cond)).all()
+        .join(Alert, Alert.id == GoldCheck.alert_id)
+        .where(*trial_cond)
+    ).all()
     gf = pd.DataFrame(gold_rows, columns=["reviewer_id", "correct", "decided_at"])
     gold = {g.reviewer_id: g.accuracy for g in agreement.gold_accuracy(gf)}
 
     since = now - dt.timedelta(days=throughput_days)
-    recent = pd.concat([vf[["reviewer_id", "decided_at"]], gf[["reviewer_id", "decided_at"]]], ignore_index=True)
+    recent = pd.concat(
+        [vf[["reviewer_id", "decided_at"]], gf[["reviewer_id", "decided_at"]]], ignore_index=True
+    )
     if not recent.empty:
         recent["decided_at"] = pd.to_datetime(recent["decided_at"], utc=True)
         recent = recent[recent["decided_at"] >= pd.Timestamp(since)]
     tp = agreement.throughput(recent, idle_gap_s=idle_gap_s)
     counts = vf.groupby("reviewer_id").size().to_dict() if not vf.empty else {}
     reviewer_ids = sorted(set(counts) | set(gold) | {k for k in tp if k is not None})
-    reviewers = tuple(ReviewerQuality(int(rid), names.get(rid, str(rid)), int(counts.get(rid, 0)),
-                                      gold.get(rid), tp.get(rid)) for rid in reviewer_ids)
+    reviewers = tuple(
+        ReviewerQuality(
+            int(rid), names.get(rid, str(rid)), int(counts.get(rid, 0)), gold.get(rid), tp.get(rid)
+        )
+        for rid in reviewer_ids
+    )
     notes = []
     if not pairs and len(first) > 0:
-        notes.append(f"No reviewer pair shares {MIN_SHARED_FOR_KAPPA} or more clips yet, so no pairwise kappa.")
+        notes.append(
+            f"No reviewer pair shares {MIN_SHARED_FOR_KAPPA} or more clips yet, so no pairwise kappa."
+        )
     return ReviewOverview(
-        trial_id=trial_id, as_of=now, backlog=backlog, by_state=by_state, final_by_method=methods,
-        double_reviewed=len(first), percent_agreement=pa, kappa_overall=kappa_all, pair_kappas=pairs,
-        alpha=alpha, confusion=confusion, reviewers=reviewers, throughput_overall=tp[None],
-        throughput_since=since, notes=tuple(notes))
+        trial_id=trial_id,
+        as_of=now,
+        backlog=backlog,
+        by_state=by_state,
+        final_by_method=methods,
+        double_reviewed=len(first),
+        percent_agreement=pa,
+        kappa_overall=kappa_all,
+        pair_kappas=pairs,
+        alpha=alpha,
+        confusion=confusion,
+        reviewers=reviewers,
+        throughput_overall=tp[None],
+        throughput_since=since,
+        notes=tuple(notes),
+    )
 
 
 def overview_to_json(ov: ReviewOverview) -> dict[str, Any]:
@@ -146,40 +196,86 @@ def overview_to_json(ov: ReviewOverview) -> dict[str, Any]:
     def prop(p: agreement.Proportion | None) -> dict[str, Any] | None:
         if p is None:
             return None
-        return {"estimate": num(p.estimate), "low": num(p.low), "high": num(p.high), "successes": p.successes,
-                "n": p.n, "confidence_level": p.confidence_level, "method": p.method, "reason": p.reason}
+        return {
+            "estimate": num(p.estimate),
+            "low": num(p.low),
+            "high": num(p.high),
+            "successes": p.successes,
+            "n": p.n,
+            "confidence_level": p.confidence_level,
+            "method": p.method,
+            "reason": p.reason,
+        }
 
     def thr(t: agreement.Throughput | None) -> dict[str, Any] | None:
         if t is None:
             return None
-        return {"clips": t.clips, "verdicts": t.verdicts, "active_s": t.active_s, "idle_gap_s": t.idle_gap_s,
-                "clips_per_hour": num(t.clips_per_hour), "reason": t.reason}
+        return {
+            "clips": t.clips,
+            "verdicts": t.verdicts,
+            "active_s": t.active_s,
+            "idle_gap_s": t.idle_gap_s,
+            "clips_per_hour": num(t.clips_per_hour),
+            "reason": t.reason,
+        }
 
     def kap(k: agreement.Kappa) -> dict[str, Any]:
-        return {"estimate": num(k.estimate), "observed": num(k.observed), "expected": num(k.expected),
-                "n": k.n, "reason": k.reason}
+        return {
+            "estimate": num(k.estimate),
+            "observed": num(k.observed),
+            "expected": num(k.expected),
+            "n": k.n,
+            "reason": k.reason,
+        }
 
     return {
         "trial_id": ov.trial_id,
         "as_of": ov.as_of.isoformat(),
-        "backlog": {"count": ov.backlog.count, "oldest_age_s": num(ov.backlog.oldest_age_s),
-                    "median_age_s": num(ov.backlog.median_age_s)},
+        "backlog": {
+            "count": ov.backlog.count,
+            "oldest_age_s": num(ov.backlog.oldest_age_s),
+            "median_age_s": num(ov.backlog.median_age_s),
+        },
         "by_state": ov.by_state,
         "final_by_method": ov.final_by_method,
         "double_reviewed": ov.double_reviewed,
-        "percent_agreement": {"estimate": num(ov.percent_agreement.estimate), "agreed": ov.percent_agreement.agreed,
-                              "n": ov.percent_agreement.n, "reason": ov.percent_agreement.reason},
+        "percent_agreement": {
+            "estimate": num(ov.percent_agreement.estimate),
+            "agreed": ov.percent_agreement.agreed,
+            "n": ov.percent_agreement.n,
+            "reason": ov.percent_agreement.reason,
+        },
         "kappa": kap(ov.kappa_overall),
-        "pair_kappas": [{"reviewer_a": p.reviewer_a, "reviewer_b": p.reviewer_b, "shared": p.shared,
-                         "kappa": kap(p.kappa), "agreement": num(p.agreement.estimate)} for p in ov.pair_kappas],
+        "pair_kappas": [
+            {
+                "reviewer_a": p.reviewer_a,
+                "reviewer_b": p.reviewer_b,
+                "shared": p.shared,
+                "kappa": kap(p.kappa),
+                "agreement": num(p.agreement.estimate),
+            }
+            for p in ov.pair_kappas
+        ],
         "min_shared_for_kappa": ov.min_shared_for_kappa,
-        "alpha": {"estimate": num(ov.alpha.estimate), "observed_disagreement": num(ov.alpha.observed_disagreement),
-                  "expected_disagreement": num(ov.alpha.expected_disagreement),
-                  "pairable_values": ov.alpha.n_pairable_values, "units": ov.alpha.n_units,
-                  "reason": ov.alpha.reason},
+        "alpha": {
+            "estimate": num(ov.alpha.estimate),
+            "observed_disagreement": num(ov.alpha.observed_disagreement),
+            "expected_disagreement": num(ov.alpha.expected_disagreement),
+            "pairable_values": ov.alpha.n_pairable_values,
+            "units": ov.alpha.n_units,
+            "reason": ov.alpha.reason,
+        },
         "confusion": {"labels": list(ov.confusion.labels), "counts": ov.confusion.counts.tolist()},
-        "reviewers": [{"reviewer_id": r.reviewer_id, "name": r.name, "verdicts": r.verdicts, "gold": prop(r.gold),
-                       "throughput": thr(r.throughput)} for r in ov.reviewers],
+        "reviewers": [
+            {
+                "reviewer_id": r.reviewer_id,
+                "name": r.name,
+                "verdicts": r.verdicts,
+                "gold": prop(r.gold),
+                "throughput": thr(r.throughput),
+            }
+            for r in ov.reviewers
+        ],
         "throughput": thr(ov.throughput_overall),
         "throughput_since": ov.throughput_since.isoformat(),
         "notes": list(ov.notes),

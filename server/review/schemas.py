@@ -40,13 +40,24 @@ class QueueItemOut(BaseModel):
     @classmethod
     def of(cls, item: QueueItem) -> QueueItemOut:
         base = f"/review/images/{item.alert_id}"
-        return cls(alert_id=item.alert_id, trial_code=item.trial_code, sound_class=item.sound_class,
-                   score=item.score, detected_at=item.detected_at, detected_local=item.detected_local,
-                   timezone=item.timezone, home_code=item.home_code, room=item.room,
-                   clip_offset_s=item.clip_offset_s, clip_duration_s=item.clip_duration_s,
-                   audio_url=f"/clips/{item.alert_id}/audio", waveform_url=f"{base}/waveform.png",
-                   spectrogram_url=f"{base}/spectrogram.png", images_meta_url=f"{base}/meta.json",
-                   causes=[CauseOut(code=c.code, label=c.label, key=c.key) for c in item.causes])
+        return cls(
+            alert_id=item.alert_id,
+            trial_code=item.trial_code,
+            sound_class=item.sound_class,
+            score=item.score,
+            detected_at=item.detected_at,
+            detected_local=item.detected_local,
+            timezone=item.timezone,
+            home_code=item.home_code,
+            room=item.room,
+            clip_offset_s=item.clip_offset_s,
+            clip_duration_s=item.clip_duration_s,
+            audio_url=f"/clips/{item.alert_id}/audio",
+            waveform_url=f"{base}/waveform.png",
+            spectrogram_url=f"{base}/spectrogram.png",
+            images_meta_url=f"{base}/meta.json",
+            causes=[CauseOut(code=c.code, label=c.label, key=c.key) for c in item.causes],
+        )
 
 
 class QueueOut(BaseModel):
@@ -55,8 +66,10 @@ class QueueOut(BaseModel):
 
     @classmethod
     def of(cls, view: QueueView) -> QueueOut:
-        return cls(current=QueueItemOut.of(view.current) if view.current else None,
-                   next=QueueItemOut.of(view.next) if view.next else None)
+        return cls(
+            current=QueueItemOut.of(view.current) if view.current else None,
+            next=QueueItemOut.of(view.next) if view.next else None,
+        )
 
 
 class ClaimIn(BaseModel):
@@ -71,8 +84,9 @@ class VerdictIn(BaseModel):
 
     label: str = Field(max_length=20, description="confirmed | false_alarm | unsure | unusable")
     cause: str | None = Field(default=None, max_length=40, description="A cause code; false alarms only")
-    resemblance: str | None = Field(default=None, max_length=20,
-                                    description="resembles | unrelated; false alarms only")
+    resemblance: str | None = Field(
+        default=None, max_length=20, description="resembles | unrelated; false alarms only"
+    )
     note: str | None = Field(default=None, max_length=4000)
     private: bool = Field(default=False, description="The clip holds private content")
 
@@ -88,8 +102,15 @@ class VerdictOut(BaseModel):
 
     @classmethod
     def of(cls, r: Recorded) -> VerdictOut:
-        return cls(alert_id=r.alert_id, label=r.label, cause=r.cause, resemblance=r.resemblance, note=r.note,
-                   private=r.private, recorded_at=r.recorded_at)
+        return cls(
+            alert_id=r.alert_id,
+            label=r.label,
+            cause=r.cause,
+            resemblance=r.resemblance,
+            note=r.note,
+            private=r.private,
+            recorded_at=r.recorded_at,
+        )
 
 
 class AdjudicationIn(BaseModel):
@@ -118,10 +139,22 @@ class AdjudicationCaseOut(BaseModel):
 
     @classmethod
     def of(cls, case: AdjudicationCase) -> AdjudicationCaseOut:
-        return cls(item=QueueItemOut.of(case.item), private=case.private,
-                   verdicts=[EarlierVerdictOut(round=v.round, reviewer=v.reviewer_name, label=v.label,
-                                               cause=v.cause, resemblance=v.resemblance, note=v.note,
-                                               created_at=v.created_at) for v in case.verdicts])
+        return cls(
+            item=QueueItemOut.of(case.item),
+            private=case.private,
+            verdicts=[
+                EarlierVerdictOut(
+                    round=v.round,
+                    reviewer=v.reviewer_name,
+                    label=v.label,
+                    cause=v.cause,
+                    resemblance=v.resemblance,
+                    note=v.note,
+                    created_at=v.created_at,
+                )
+                for v in case.verdicts
+            ],
+        )
 
 
 class FinalOut(BaseModel):

@@ -52,8 +52,15 @@ from server.review.queue import (
 )
 from server.trials.models import Trial
 
-__all__ = ["adjudicate", "claim_next", "flag_private", "list_private_clips_to_purge", "mark_gold",
-           "record_verdict", "review_overview"]
+__all__ = [
+    "adjudicate",
+    "claim_next",
+    "flag_private",
+    "list_private_clips_to_purge",
+    "mark_gold",
+    "record_verdict",
+    "review_overview",
+]
 
 ROUND_FIRST, ROUND_SECOND, ROUND_ADJUDICATION = 1, 2, 3
 MAX_NOTE_CHARS = 2000
@@ -95,8 +102,9 @@ class AdjudicationCase:
 # Verdicts
 
 
-def _clean(label: str, cause: str | None, resemblance: str | None, note: str | None,
-           trial: Trial) -> tuple[str, str | None, str | None, str | None]:
+def _clean(
+    label: str, cause: str | None, resemblance: str | None, note: str | None, trial: Trial
+) -> tuple[str, str | None, str | None, str | None]:
     errors: dict[str, str] = {}
     if label not in LABELS:
         errors["label"] = f"Choose one of: {', '.join(LABELS)}."
@@ -127,8 +135,9 @@ def _clean(label: str, cause: str | None, resemblance: str | None, note: str | N
 
 
 def _lock_alert(session: Session, alert_id: int) -> Alert:
-    alert = session.scalars(select(Alert).where(Alert.id == alert_id).with_for_update()
-                            .execution_options(populate_existing=True)).one_or_none()
+    # Lock the row alone (FOR UPDATE cannot reach the eagerly joined device and clip), then reload.
+    found = session.scalar(select(Alert.id).where(Alert.id == alert_id).with_for_update())
+    alert = session.get(Alert, alert_id, populate_existing=True) if found is not None else None
     if alert is None:
         raise NotFound(f"No alert has id {alert_id}.", code="unknown_alert")
     return alert
@@ -147,20 +156,38 @@ def _same(a: Verdict, b: Verdict) -> bool:
     return (a.label, a.cause, a.resemblance) == (b.label, b.cause, b.resemblance)
 
 
-def _answer_gold(session: Session, gold: GoldCheck, reviewer: User, label: str, cause: str | None,
-                 now: dt.datetime) -> GoldAnswer:
+def _answer_gold(
+    session: Session, gold: GoldCheck, reviewer: User, label: str, cause: str | None, now: dt.datetime
+) -> GoldAnswer:
     # A gold false alarm with a known cause is answered right only with that cause.
     correct = label == gold.expected_label and (
-        gold.expected_label != "false_alarm" or gold.expected_cause is None or cause == gold.expected_cause)
-    answer = GoldAnswer(gold_check_id=gold.id, reviewer_id=reviewer.id, label=label, cause=cause,
-                        correct=correct, created_at=now)
+        gold.expected_label != "false_alarm" or gold.expected_cause is None or cause == gold.expected_cause
+    )
+    answer = GoldAnswer(
+        gold_check_id=gold.id,
+        reviewer_id=reviewer.id,
+        label=label,
+        cause=cause,
+        correct=correct,
+        created_at=now,
+    )
     session.add(answer)
     return answer
 
 
-def record_verdict(session: Session, *, reviewer: User, alert_id: int, label: str, cause: str | None = None,
-                   resemblance: str | None = None, note: str | None = None, private: bool = False,
-                   key: bytes = b"", now: dt.datetime | None = None) -> Recorded:
+def record_verdict(
+    session: Session,
+    *,
+    reviewer: User,
+    alert_id: int,
+    label: str,
+    cause: str | None = None,
+    resemblance: str | None = None,
+    note: str | None = None,
+    private: bool = False,
+    key: bytes = b"",
+    now: dt.datetime | None = None,
+) -> Recorded:
     """Record a reviewer's verdict and move the alert on (see the module docstring).
 
     Refuses: unknown alert (404), a clip another reviewer holds a live claim on (409
@@ -186,18 +213,37 @@ def record_verdict(session: Session, *, reviewer: User, alert_id: int, label: st
             return Recorded(alert.id, label, cause, resemblance, note, private or alert.private_flag, now)
         raise NotInReview(f"Alert {alert.id} is not waiting for a review verdict.")
 
-    if (alert.claimed_by_id not in (None, reviewer.id) and alert.claim_expires_at is not None
-            and alert.claim_expires_at >= now):
-        raise ClaimLost("Another reviewer took this clip after your claim expired; your verdict was not saved.")
-    earlier = list(session.scalars(select(Verdict).where(Verdict.alert_id == alert.id).order_by(Verdict.round)))
+    if (
+        alert.claimed_by_id not in (None, reviewer.id)
+        and alert.claim_expires_at is not None
+        and alert.claim_expires_at >= now
+    ):
+        raise ClaimLost(
+            "Another reviewer took this clip after your claim expired; your verdict was not saved."
+        )
+    earlier = list(
+        session.scalars(select(Verdict).where(Verdict.alert_id == alert.id).order_by(Verdict.round))
+    )
     round_ = ROUND_FIRST if alert.state == AlertState.pending else ROUND_SECOND
     if round_ == ROUND_SECOND and any(v.reviewer_id == reviewer.id for v in earlier):
-        raise SameReviewer("You gave the first verdict on this clip; a different reviewer must give the second.")
+        raise SameReviewer(
+            "You gave the first verdict on this clip; a different reviewer must give the second."
+        )
 
-    verdict = Verdict(alert_id=alert.id, reviewer_id=reviewer.id, round=round_, label=label, cause=cause,
-                      resemblance=resemblance, note=note, is_gold_serving=False, created_at=now)
+    gold_open = gold is not None and _gold_open_to(session, gold, reviewer)
+    verdict = Verdict(
+        alert_id=alert.id,
+        reviewer_id=reviewer.id,
+        round=round_,
+        label=label,
+        cause=cause,
+        resemblance=resemblance,
+        note=note,
+        is_gold_serving=False,
+        created_at=now,
+    )
     session.add(verdict)
-    if gold is not None and _gold_open_to(session, gold, reviewer):
+    if gold is not None and gold_open:
         _answer_gold(session, gold, reviewer, label, cause, now)
     if private:
         _flag_private(session, alert, reviewer)
@@ -232,6 +278,9 @@ def _flag_private(session: Session, alert: Alert, user: User) -> None:
         return
     alert.private_flag = True
     alert.private_flagged_by_id = user.id
+    # Whoever holds it lets go: from now on only an admin may be handed this clip.
+    alert.claimed_by_id = None
+    alert.claim_expires_at = None
     audit.record(session, user, "clip.flag_private", "alert", alert.id, {"clip_id": alert.clip_id})
 
 
@@ -249,9 +298,13 @@ def list_private_clips_to_purge(session: Session) -> list[Clip]:
     For the retention run: delete the file, then mark the clip erased (``erased_reason``
     "private_content") and remove its cached review images (``images_cache.forget``).
     """
-    q = (select(Clip).where(Clip.erased_at.is_(None),
-                            exists().where(Alert.clip_id == Clip.id, Alert.private_flag.is_(True)))
-         .order_by(Clip.id))
+    q = (
+        select(Clip)
+        .where(
+            Clip.erased_at.is_(None), exists().where(Alert.clip_id == Clip.id, Alert.private_flag.is_(True))
+        )
+        .order_by(Clip.id)
+    )
     return list(session.scalars(q))
 
 
@@ -267,22 +320,30 @@ def _verdict_views(session: Session, alert_ids: Sequence[int]) -> dict[int, list
     out: dict[int, list[VerdictView]] = {i: [] for i in alert_ids}
     if not alert_ids:
         return out
-    rows = session.execute(select(Verdict, User.name).join(User, User.id == Verdict.reviewer_id)
-                           .where(Verdict.alert_id.in_(list(alert_ids))).order_by(Verdict.alert_id, Verdict.round))
+    rows = session.execute(
+        select(Verdict, User.name)
+        .join(User, User.id == Verdict.reviewer_id)
+        .where(Verdict.alert_id.in_(list(alert_ids)))
+        .order_by(Verdict.alert_id, Verdict.round)
+    )
     for v, name in rows:
-        out[v.alert_id].append(VerdictView(v.round, v.reviewer_id, name, v.label, v.cause, v.resemblance,
-                                           v.note, v.created_at))
+        out[v.alert_id].append(
+            VerdictView(v.round, v.reviewer_id, name, v.label, v.cause, v.resemblance, v.note, v.created_at)
+        )
     return out
 
 
 def _check_adjudicator(user: User) -> None:
     if not can_adjudicate(user):
-        raise Forbidden("Only admins and reviewers with the adjudicator permission settle disagreements.",
-                        code="not_adjudicator")
+        raise Forbidden(
+            "Only admins and reviewers with the adjudicator permission settle disagreements.",
+            code="not_adjudicator",
+        )
 
 
-def list_adjudications(session: Session, *, adjudicator: User, trial_id: int | None = None,
-                       limit: int = 200) -> list[AdjudicationCase]:
+def list_adjudications(
+    session: Session, *, adjudicator: User, trial_id: int | None = None, limit: int = 200
+) -> list[AdjudicationCase]:
     """Alerts whose reviewers disagreed (or stayed unsure), oldest first, with both verdicts."""
     _check_adjudicator(adjudicator)
     q = select(Alert).where(Alert.state == AlertState.adjudication).order_by(Alert.received_at, Alert.id)
@@ -292,8 +353,10 @@ def list_adjudications(session: Session, *, adjudicator: User, trial_id: int | N
         q = q.where(Alert.private_flag.is_(False))
     alerts = list(session.scalars(q.limit(limit)))
     views = _verdict_views(session, [a.id for a in alerts])
-    return [AdjudicationCase(item, tuple(views[a.id]), a.private_flag)
-            for a, item in zip(alerts, _items(session, alerts), strict=True)]
+    return [
+        AdjudicationCase(item, tuple(views[a.id]), a.private_flag)
+        for a, item in zip(alerts, _items(session, alerts), strict=True)
+    ]
 
 
 def get_adjudication(session: Session, *, adjudicator: User, alert_id: int) -> AdjudicationCase:
@@ -302,16 +365,27 @@ def get_adjudication(session: Session, *, adjudicator: User, alert_id: int) -> A
     if alert is None:
         raise NotFound(f"No alert has id {alert_id}.", code="unknown_alert")
     if alert.state != AlertState.adjudication:
-        raise NotInReview(f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication")
+        raise NotInReview(
+            f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication"
+        )
     if alert.private_flag and not _is_admin(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
-    return AdjudicationCase(_item(session, alert), tuple(_verdict_views(session, [alert.id])[alert.id]),
-                            alert.private_flag)
+    return AdjudicationCase(
+        _item(session, alert), tuple(_verdict_views(session, [alert.id])[alert.id]), alert.private_flag
+    )
 
 
-def adjudicate(session: Session, *, adjudicator: User, alert_id: int, label: str, cause: str | None = None,
-               resemblance: str | None = None, note: str | None = None,
-               now: dt.datetime | None = None) -> Verdict:
+def adjudicate(
+    session: Session,
+    *,
+    adjudicator: User,
+    alert_id: int,
+    label: str,
+    cause: str | None = None,
+    resemblance: str | None = None,
+    note: str | None = None,
+    now: dt.datetime | None = None,
+) -> Verdict:
     """Settle a disagreement; the adjudicator's verdict becomes final ("adjudicated").
 
     Only admins and reviewers with ``is_adjudicator``; a reviewer who gave one of the two
@@ -324,21 +398,38 @@ def adjudicate(session: Session, *, adjudicator: User, alert_id: int, label: str
     assert trial is not None
     label, cause, resemblance, note = _clean(label, cause, resemblance, note, trial)
     if alert.state != AlertState.adjudication:
-        raise NotInReview(f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication")
+        raise NotInReview(
+            f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication"
+        )
     if alert.private_flag and not _is_admin(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     earlier = list(session.scalars(select(Verdict).where(Verdict.alert_id == alert.id)))
     if not _is_admin(adjudicator) and any(v.reviewer_id == adjudicator.id for v in earlier):
         raise SameReviewer("You gave one of the verdicts on this clip; another adjudicator must settle it.")
-    verdict = Verdict(alert_id=alert.id, reviewer_id=adjudicator.id, round=ROUND_ADJUDICATION, label=label,
-                      cause=cause, resemblance=resemblance, note=note, is_gold_serving=False, created_at=now)
+    verdict = Verdict(
+        alert_id=alert.id,
+        reviewer_id=adjudicator.id,
+        round=ROUND_ADJUDICATION,
+        label=label,
+        cause=cause,
+        resemblance=resemblance,
+        note=note,
+        is_gold_serving=False,
+        created_at=now,
+    )
     session.add(verdict)
     _finalise(alert, verdict, "adjudicated", now)
     alert.claimed_by_id = None
     alert.claim_expires_at = None
     session.flush()
-    audit.record(session, adjudicator, "review.adjudicate", "alert", alert.id,
-                 {"label": label, "cause": cause, "earlier": [v.label for v in earlier]})
+    audit.record(
+        session,
+        adjudicator,
+        "review.adjudicate",
+        "alert",
+        alert.id,
+        {"label": label, "cause": cause, "earlier": [v.label for v in earlier]},
+    )
     return verdict
 
 
@@ -359,8 +450,9 @@ class GoldRow:
     created_at: dt.datetime
 
 
-def mark_gold(session: Session, *, user: User, alert_id: int, expected_label: str,
-              expected_cause: str | None = None) -> GoldCheck:
+def mark_gold(
+    session: Session, *, user: User, alert_id: int, expected_label: str, expected_cause: str | None = None
+) -> GoldCheck:
     """Record a clip's known answer, to be served unannounced to reviewers."""
     alert = session.get(Alert, alert_id)
     if alert is None:
@@ -381,8 +473,9 @@ def mark_gold(session: Session, *, user: User, alert_id: int, expected_label: st
         raise ValidationFailed(errors[first], errors, field=first)
     if _gold_for(session, alert_id) is not None:
         raise Conflict(f"Alert {alert_id} is already a gold check.", code="gold_exists")
-    gold = GoldCheck(alert_id=alert_id, expected_label=expected_label, expected_cause=expected_cause,
-                     created_by_id=user.id)
+    gold = GoldCheck(
+        alert_id=alert_id, expected_label=expected_label, expected_cause=expected_cause, created_by_id=user.id
+    )
     session.add(gold)
     session.flush()
     audit.record(session, user, "review.gold_mark", "alert", alert_id, {"expected_label": expected_label})
@@ -390,13 +483,34 @@ def mark_gold(session: Session, *, user: User, alert_id: int, expected_label: st
 
 
 def list_gold_checks(session: Session, *, trial_id: int | None = None) -> list[GoldRow]:
-    counts = {gid: (int(n), int(ok or 0)) for gid, n, ok in session.execute(
-        select(GoldAnswer.gold_check_id, func.count(),
-               func.sum(case((GoldAnswer.correct.is_(True), 1), else_=0)))
-        .group_by(GoldAnswer.gold_check_id))}
-    q = (select(GoldCheck, Alert.sound_class, Trial.code).join(Alert, Alert.id == GoldCheck.alert_id)
-         .join(Trial, Trial.id == Alert.trial_id).order_by(GoldCheck.id.desc()))
+    counts = {
+        gid: (int(n), int(ok or 0))
+        for gid, n, ok in session.execute(
+            select(
+                GoldAnswer.gold_check_id,
+                func.count(),
+                func.sum(case((GoldAnswer.correct.is_(True), 1), else_=0)),
+            ).group_by(GoldAnswer.gold_check_id)
+        )
+    }
+    q = (
+        select(GoldCheck, Alert.sound_class, Trial.code)
+        .join(Alert, Alert.id == GoldCheck.alert_id)
+        .join(Trial, Trial.id == Alert.trial_id)
+        .order_by(GoldCheck.id.desc())
+    )
     if trial_id is not None:
         q = q.where(Alert.trial_id == trial_id)
-    return [GoldRow(g.id, g.alert_id, code, sc, g.expected_label, g.expected_cause,
-                    *counts.get(g.id, (0, 0)), g.created_at) for g, sc, code in session.execute(q)]
+    return [
+        GoldRow(
+            g.id,
+            g.alert_id,
+            code,
+            sc,
+            g.expected_label,
+            g.expected_cause,
+            *counts.get(g.id, (0, 0)),
+            g.created_at,
+        )
+        for g, sc, code in session.execute(q)
+    ]

@@ -891,12 +891,13 @@ def test_clip_file_is_fsynced_and_in_place_before_the_row_commits(clocked, clien
     at_commit: list[bool] = []
 
     def before_commit(s: Session) -> None:
-        for obj in list(s.identity_map.values()):
-            if isinstance(obj, Clip):
-                at_commit.append(store.exists(obj.storage_key)
-                                 and hashlib.sha256(store.path(obj.storage_key).read_bytes()).hexdigest()
-                                 == obj.sha256)
-        log.append(("commit", ""))
+        clips = [obj for obj in list(s.identity_map.values()) if isinstance(obj, Clip)]
+        for obj in clips:
+            at_commit.append(store.exists(obj.storage_key)
+                             and hashlib.sha256(store.path(obj.storage_key).read_bytes()).hexdigest()
+                             == obj.sha256)
+        if clips:  # the device look-up's own commit carries no rows and comes first
+            log.append(("commit", ""))
 
     event.listen(session, "before_commit", before_commit)
     clip = sine(seed=100)
@@ -910,11 +911,13 @@ def test_clip_file_is_fsynced_and_in_place_before_the_row_commits(clocked, clien
     steps = [(kind, p) for kind, p in log if kind == "commit" or sha in p or p == str(final.parent)
              or p.startswith(str(store.tmp.resolve()))]
     kinds = [k for k, _ in steps]
-    # temp file fsynced -> renamed to its content key -> directory fsynced -> row committed
-    assert kinds[:4] == ["fsync", "rename", "fsync", "commit"], steps
+    # temp file fsynced -> renamed to its content key -> directory fsynced -> rows committed
+    # (savepoint releases also count as commits here; every one comes after the directory fsync).
+    assert kinds[:3] == ["fsync", "rename", "fsync"], steps
+    assert kinds[3:] and set(kinds[3:]) == {"commit"}, steps
     assert steps[0][1].startswith(str(store.tmp.resolve()))
     assert steps[1][1] == str(final) and steps[2][1] == str(final.parent)
-    assert at_commit == [True]
+    assert at_commit and all(at_commit)
 
 
 def _cli(argv: list[str], settings: Settings, monkeypatch: pytest.MonkeyPatch,

@@ -19,9 +19,18 @@ T0 = dt.datetime.now(dt.UTC).replace(microsecond=0) - dt.timedelta(hours=2)
 
 def _alerts(session, store, settings, trial, n, *, start=T0, step_min=1, **kw):
     device, _ = factories.make_device(session, trial)
-    return [factories.make_alert(session, store, settings, device, now=start + dt.timedelta(minutes=step_min * i),
-                                 detected_at=start + dt.timedelta(minutes=step_min * i), **kw)
-            for i in range(n)]
+    return [
+        factories.make_alert(
+            session,
+            store,
+            settings,
+            device,
+            now=start + dt.timedelta(minutes=step_min * i),
+            detected_at=start + dt.timedelta(minutes=step_min * i),
+            **kw,
+        )
+        for i in range(n)
+    ]
 
 
 def _reviewer(session, **kw):
@@ -41,6 +50,7 @@ def _fa(session, reviewer, alert_id, now=None, **kw):
 
 # --- claims ------------------------------------------------------------------------------------------
 
+
 def test_claim_hands_out_oldest_first_and_holds_two(session, store, settings, trial):
     a = _alerts(session, store, settings, trial, 4)
     r1, r2 = _reviewer(session), _reviewer(session)
@@ -59,7 +69,12 @@ def test_expired_claim_returns_clip_to_queue(session, store, settings, trial):
     r1, r2 = _reviewer(session), _reviewer(session)
     now = dt.datetime.now(dt.UTC)
     service.claim_next(session, reviewer=r1, key=KEY, gold_share=0, claim_minutes=5, now=now)
-    assert service.claim_next(session, reviewer=r2, key=KEY, gold_share=0, now=now + dt.timedelta(minutes=4)).current is None
+    assert (
+        service.claim_next(
+            session, reviewer=r2, key=KEY, gold_share=0, now=now + dt.timedelta(minutes=4)
+        ).current
+        is None
+    )
     later = service.claim_next(session, reviewer=r2, key=KEY, gold_share=0, now=now + dt.timedelta(minutes=6))
     assert later.current.alert_id == a[0].id and later.next.alert_id == a[1].id
     assert session.get(Alert, a[0].id).claimed_by_id == r2.id
@@ -97,18 +112,28 @@ def test_late_verdict_after_expiry_is_kept_when_nobody_took_the_clip(session, st
 def test_queue_filters_by_trial_and_sound_class(session, store, settings, trial):
     other = factories.make_trial(session)
     a_smoke = _alerts(session, store, settings, trial, 1, sound_class="smoke_alarm")
-    a_cry = _alerts(session, store, settings, trial, 1, start=T0 + dt.timedelta(minutes=10), sound_class="baby_cry")
+    a_cry = _alerts(
+        session, store, settings, trial, 1, start=T0 + dt.timedelta(minutes=10), sound_class="baby_cry"
+    )
     a_other = _alerts(session, store, settings, other, 1, start=T0 - dt.timedelta(minutes=30))
     r = _reviewer(session)
-    v = service.claim_next(session, reviewer=r, trial_id=trial.id, sound_class="baby_cry", key=KEY, gold_share=0)
+    v = service.claim_next(
+        session, reviewer=r, trial_id=trial.id, sound_class="baby_cry", key=KEY, gold_share=0
+    )
     assert v.current.alert_id == a_cry[0].id and v.next is None
     v = service.claim_next(session, reviewer=r, trial_id=trial.id, key=KEY, gold_share=0)
     assert {v.current.alert_id, v.next.alert_id} == {a_smoke[0].id, a_cry[0].id}
+    # Without a filter the reviewer keeps the two clips already held.
     v = service.claim_next(session, reviewer=r, key=KEY, gold_share=0)
-    assert v.current.alert_id == a_other[0].id  # oldest across trials
-    # Claims outside the clips handed out are released.
+    assert (v.current.alert_id, v.next.alert_id) == (a_smoke[0].id, a_cry[0].id)
+    # Another trial: its clip is handed out and the claims outside the hand-out are released.
+    v = service.claim_next(session, reviewer=r, trial_id=other.id, key=KEY, gold_share=0)
+    assert v.current.alert_id == a_other[0].id and v.next is None
     held = session.scalars(select(Alert.id).where(Alert.claimed_by_id == r.id)).all()
-    assert set(held) == {v.current.alert_id, v.next.alert_id}
+    assert held == [a_other[0].id]
+    # A second reviewer with no filter now gets the oldest clip of all first.
+    r2 = _reviewer(session)
+    assert service.claim_next(session, reviewer=r2, key=KEY, gold_share=0).current.alert_id == a_smoke[0].id
 
 
 def test_queue_item_shows_local_time_home_and_room(session, store, settings):
@@ -129,6 +154,7 @@ def test_queue_item_shows_local_time_home_and_room(session, store, settings):
 
 # --- verdicts and blind second review -----------------------------------------------------------------
 
+
 def test_single_verdict_is_final_with_method_single(session, store, settings, trial):
     _no_second(trial, session)
     a = _alerts(session, store, settings, trial, 1)
@@ -136,8 +162,13 @@ def test_single_verdict_is_final_with_method_single(session, store, settings, tr
     service.claim_next(session, reviewer=r, key=KEY, gold_share=0)
     _fa(session, r, a[0].id, cause="door_knock_impact", resemblance="resembles", note="slammed")
     alert = session.get(Alert, a[0].id)
-    assert (alert.state, alert.final_label, alert.final_cause, alert.final_resemblance, alert.final_method) == (
-        AlertState.final, "false_alarm", "door_knock_impact", "resembles", "single")
+    assert (
+        alert.state,
+        alert.final_label,
+        alert.final_cause,
+        alert.final_resemblance,
+        alert.final_method,
+    ) == (AlertState.final, "false_alarm", "door_knock_impact", "resembles", "single")
     assert alert.claimed_by_id is None and alert.finalized_at is not None
 
 
@@ -145,11 +176,13 @@ def test_verdict_rules(session, store, settings, trial):
     a = _alerts(session, store, settings, trial, 1)
     r = _reviewer(session)
     service.claim_next(session, reviewer=r, key=KEY, gold_share=0)
-    for kw, field in [({"label": "maybe"}, "label"),
-                      ({"label": "false_alarm", "resemblance": "unrelated"}, "cause"),
-                      ({"label": "false_alarm", "cause": "volcano", "resemblance": "unrelated"}, "cause"),
-                      ({"label": "false_alarm", "cause": "dog"}, "resemblance"),
-                      ({"label": "confirmed", "cause": "dog"}, "cause")]:
+    for kw, field in [
+        ({"label": "maybe"}, "label"),
+        ({"label": "false_alarm", "resemblance": "unrelated"}, "cause"),
+        ({"label": "false_alarm", "cause": "volcano", "resemblance": "unrelated"}, "cause"),
+        ({"label": "false_alarm", "cause": "dog"}, "resemblance"),
+        ({"label": "confirmed", "cause": "dog"}, "cause"),
+    ]:
         with pytest.raises(ValidationFailed) as exc:
             service.record_verdict(session, reviewer=r, alert_id=a[0].id, key=KEY, **kw)
         assert field in exc.value.errors
@@ -205,8 +238,14 @@ def test_agreeing_second_review_finalises_as_agreed(session, store, settings, tr
     _fa(session, r2, a[0].id, cause="appliance", resemblance="resembles")
     alert = session.get(Alert, a[0].id)
     assert (alert.state, alert.final_label, alert.final_cause, alert.final_method) == (
-        AlertState.final, "false_alarm", "appliance", "agreed")
-    rounds = session.scalars(select(Verdict.round).where(Verdict.alert_id == alert.id).order_by(Verdict.round)).all()
+        AlertState.final,
+        "false_alarm",
+        "appliance",
+        "agreed",
+    )
+    rounds = session.scalars(
+        select(Verdict.round).where(Verdict.alert_id == alert.id).order_by(Verdict.round)
+    ).all()
     assert rounds == [1, 2]
 
 
@@ -233,12 +272,24 @@ def test_disagreement_goes_to_adjudication_and_adjudicator_decides(session, stor
     cases = service.list_adjudications(session, adjudicator=judge)
     assert [c.item.alert_id for c in cases] == [a[0].id]
     assert [(v.round, v.label, v.note) for v in cases[0].verdicts] == [
-        (1, "confirmed", None), (2, "false_alarm", "oven timer")]
-    service.adjudicate(session, adjudicator=judge, alert_id=a[0].id, label="false_alarm",
-                       cause="other_alarm_beep", resemblance="resembles")
+        (1, "confirmed", None),
+        (2, "false_alarm", "oven timer"),
+    ]
+    service.adjudicate(
+        session,
+        adjudicator=judge,
+        alert_id=a[0].id,
+        label="false_alarm",
+        cause="other_alarm_beep",
+        resemblance="resembles",
+    )
     alert = session.get(Alert, a[0].id)
     assert (alert.state, alert.final_label, alert.final_cause, alert.final_method) == (
-        AlertState.final, "false_alarm", "other_alarm_beep", "adjudicated")
+        AlertState.final,
+        "false_alarm",
+        "other_alarm_beep",
+        "adjudicated",
+    )
     with pytest.raises(queue.NotInReview):
         service.adjudicate(session, adjudicator=judge, alert_id=a[0].id, label="confirmed")
 
@@ -260,6 +311,7 @@ def test_admin_may_adjudicate_even_after_reviewing(session, store, settings, tri
 
 # --- gold checks ------------------------------------------------------------------------------------
 
+
 def test_gold_check_served_unannounced_and_scored(session, store, settings, trial):
     _no_second(trial, session)
     a = _alerts(session, store, settings, trial, 3)
@@ -268,8 +320,9 @@ def test_gold_check_served_unannounced_and_scored(session, store, settings, tria
     # a[0] is decided by r1, then marked as gold with a known answer.
     service.claim_next(session, reviewer=r1, key=KEY, gold_share=0)
     _fa(session, r1, a[0].id, cause="dog")
-    gold = service.mark_gold(session, user=coord, alert_id=a[0].id, expected_label="false_alarm",
-                             expected_cause="dog")
+    gold = service.mark_gold(
+        session, user=coord, alert_id=a[0].id, expected_label="false_alarm", expected_cause="dog"
+    )
     view = service.claim_next(session, reviewer=r2, key=KEY, gold_share=1.0)
     assert view.current.alert_id == a[0].id  # served like any clip
     assert view.next.alert_id != a[0].id
@@ -284,8 +337,11 @@ def test_gold_check_served_unannounced_and_scored(session, store, settings, tria
     assert session.scalars(select(Verdict).where(Verdict.alert_id == a[0].id)).all()[0].reviewer_id == r1.id
     # Answered once: not served again; r1 (who decided the clip) never gets it.
     assert service.claim_next(session, reviewer=r2, key=KEY, gold_share=1.0).current.alert_id != a[0].id
-    assert all(i.alert_id != a[0].id for i in (service.claim_next(session, reviewer=r1, key=KEY, gold_share=1.0).current,)
-               if i is not None)
+    assert all(
+        i.alert_id != a[0].id
+        for i in (service.claim_next(session, reviewer=r1, key=KEY, gold_share=1.0).current,)
+        if i is not None
+    )
     with pytest.raises(queue.NotInReview):
         _fa(session, r2, a[0].id)
 
@@ -307,7 +363,9 @@ def test_mark_gold_rules(session, store, settings, trial):
     a = _alerts(session, store, settings, trial, 1)
     coord = factories.make_user(session, role="coordinator")[0]
     with pytest.raises(ValidationFailed):
-        service.mark_gold(session, user=coord, alert_id=a[0].id, expected_label="confirmed", expected_cause="dog")
+        service.mark_gold(
+            session, user=coord, alert_id=a[0].id, expected_label="confirmed", expected_cause="dog"
+        )
     service.mark_gold(session, user=coord, alert_id=a[0].id, expected_label="confirmed")
     with pytest.raises(Exception) as exc:
         service.mark_gold(session, user=coord, alert_id=a[0].id, expected_label="unusable")
@@ -316,13 +374,16 @@ def test_mark_gold_rules(session, store, settings, trial):
 
 # --- private content -------------------------------------------------------------------------------
 
+
 def test_private_flag_hides_clip_from_everyone_but_admins(session, store, settings, trial):
     trial.second_review_share = 1.0
     a = _alerts(session, store, settings, trial, 2)
     r1, r2 = _reviewer(session), _reviewer(session)
     admin = factories.make_user(session, role="admin")[0]
     service.claim_next(session, reviewer=r1, key=KEY, gold_share=0)
-    got = service.record_verdict(session, reviewer=r1, alert_id=a[0].id, label="confirmed", private=True, key=KEY)
+    got = service.record_verdict(
+        session, reviewer=r1, alert_id=a[0].id, label="confirmed", private=True, key=KEY
+    )
     assert got.private is True
     alert = session.get(Alert, a[0].id)
     # Nobody else should hear it, so no random second review.
@@ -362,3 +423,41 @@ def test_erased_clip_is_not_handed_out(session, store, settings, trial):
     r = _reviewer(session)
     v = service.claim_next(session, reviewer=r, key=KEY, gold_share=0)
     assert v.current.alert_id == a[1].id and v.next is None
+
+
+def test_clip_of_home_without_listening_consent_is_not_handed_out(session, store, settings, trial):
+    from server.households.models import Consent
+
+    device, _ = factories.make_device(session, trial)
+    home = factories.make_home(session, trial)
+    factories.make_installation(session, device, home, installed_at=T0 - dt.timedelta(days=1))
+    alert = factories.make_alert(session, store, settings, device, now=T0, detected_at=T0)
+    session.add(
+        Consent(
+            home_id=home.id,
+            form_version="v1",
+            consented_on=T0.date(),
+            staff_may_listen=True,
+            recorded_at=T0 - dt.timedelta(days=1),
+        )
+    )
+    session.add(
+        Consent(
+            home_id=home.id, form_version="v2", consented_on=T0.date(), staff_may_listen=False, recorded_at=T0
+        )
+    )
+    session.flush()
+    r = _reviewer(session)
+    assert service.claim_next(session, reviewer=r, key=KEY, gold_share=0).current is None
+    # A newer consent that allows listening puts it back in the queue.
+    session.add(
+        Consent(
+            home_id=home.id,
+            form_version="v3",
+            consented_on=T0.date(),
+            staff_may_listen=True,
+            recorded_at=T0 + dt.timedelta(minutes=5),
+        )
+    )
+    session.flush()
+    assert service.claim_next(session, reviewer=r, key=KEY, gold_share=0).current.alert_id == alert.id

@@ -80,7 +80,8 @@ def test_kappa_from_labels_equals_kappa_from_table(table: list[list[int]]) -> No
     a, b = _expand(table)
     labels = list(range(len(table)))
     assert ag.cohen_kappa(a, b, labels=labels).estimate == pytest.approx(
-        ag.cohen_kappa_from_table(table).estimate, abs=1e-12)
+        ag.cohen_kappa_from_table(table).estimate, abs=1e-12
+    )
 
 
 @pytest.mark.parametrize("seed", range(8))
@@ -143,8 +144,11 @@ def test_confusion_matrix_rebuilds_published_table() -> None:
 
 
 def test_confusion_matrix_keeps_given_order_and_unused_labels() -> None:
-    cm = ag.confusion_matrix(["false_alarm", "confirmed"], ["false_alarm", "unsure"],
-                             labels=["confirmed", "false_alarm", "unsure", "unusable"])
+    cm = ag.confusion_matrix(
+        ["false_alarm", "confirmed"],
+        ["false_alarm", "unsure"],
+        labels=["confirmed", "false_alarm", "unsure", "unusable"],
+    )
     assert cm.labels == ("confirmed", "false_alarm", "unsure", "unusable")
     assert cm.counts.tolist() == [[0, 0, 1, 0], [0, 1, 0, 0], [0, 0, 0, 0], [0, 0, 0, 0]]
     with pytest.raises(ValueError):
@@ -158,8 +162,7 @@ N = None
 
 def test_krippendorff_2011_section_a_binary_two_coders() -> None:
     # Krippendorff (2011) "Computing Krippendorff's Alpha-Reliability", section A: alpha 0.095.
-    data = [[0, 1, 0, 0, 0, 0, 0, 0, 1, 0],
-            [1, 1, 1, 0, 0, 1, 0, 0, 0, 0]]
+    data = [[0, 1, 0, 0, 0, 0, 0, 0, 1, 0], [1, 1, 1, 0, 0, 1, 0, 0, 0, 0]]
     a = ag.krippendorff_alpha_nominal(data)
     assert abs(a.estimate - 0.095) <= HALF_3DP
     assert a.estimate == pytest.approx(1 - 19 * 4 / (14 * 6), abs=1e-12)  # derived form, checks.md
@@ -167,10 +170,12 @@ def test_krippendorff_2011_section_a_binary_two_coders() -> None:
 
 def test_krippendorff_2011_section_c_nominal_missing_values() -> None:
     # Krippendorff (2011), section C: four coders, twelve units, missing values; alpha 0.743.
-    data = [[1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
-            [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
-            [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
-            [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N]]
+    data = [
+        [1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
+        [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
+        [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
+        [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N],
+    ]
     a = ag.krippendorff_alpha_nominal(data)
     assert abs(a.estimate - 0.743) <= HALF_3DP
     assert a.estimate == pytest.approx(0.743421, abs=5e-7)
@@ -181,22 +186,27 @@ def test_krippendorff_2011_section_c_nominal_missing_values() -> None:
 
 def test_alpha_is_unchanged_when_lone_value_moves_coder() -> None:
     # checks.md section 7: putting unit 12's single value under coder C gives the same alpha.
-    data_b = [[1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
-              [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
-              [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
-              [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N]]
+    data_b = [
+        [1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
+        [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
+        [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
+        [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N],
+    ]
     data_c = [row[:] for row in data_b]
     data_c[1][11], data_c[2][11] = N, 3
     assert ag.krippendorff_alpha_nominal(data_b).estimate == pytest.approx(
-        ag.krippendorff_alpha_nominal(data_c).estimate, abs=1e-15)
+        ag.krippendorff_alpha_nominal(data_c).estimate, abs=1e-15
+    )
 
 
 def test_alpha_accepts_string_labels_and_nan_missing() -> None:
     words = {1: "confirmed", 2: "false_alarm", 3: "unsure", 4: "unusable", 5: "other"}
-    data = [[1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
-            [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
-            [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
-            [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N]]
+    data = [
+        [1, 2, 3, 3, 2, 1, 4, 1, 2, N, N, N],
+        [1, 2, 3, 3, 2, 2, 4, 1, 2, 5, N, 3],
+        [N, 3, 3, 3, 2, 3, 4, 2, 2, 5, 1, N],
+        [1, 2, 3, 3, 2, 4, 4, 1, 2, 5, 1, N],
+    ]
     as_words = [[words[v] if v is not None else math.nan for v in row] for row in data]
     assert ag.krippendorff_alpha_nominal(as_words).estimate == pytest.approx(0.743421, abs=5e-7)
 
@@ -242,13 +252,23 @@ def test_perfect_agreement_gives_alpha_one() -> None:
 
 
 def _frame(rows: list[tuple[int, int, str]]) -> pd.DataFrame:
-    return pd.DataFrame([{"alert_id": a, "reviewer_id": r, "label": lab, "order": i}
-                         for i, (a, r, lab) in enumerate(rows)])
+    return pd.DataFrame(
+        [{"alert_id": a, "reviewer_id": r, "label": lab, "order": i} for i, (a, r, lab) in enumerate(rows)]
+    )
 
 
 def test_paired_labels_takes_first_two_distinct_reviewers() -> None:
-    frame = _frame([(1, 10, "confirmed"), (1, 11, "false_alarm"), (1, 12, "confirmed"),
-                    (2, 10, "unsure"), (3, 11, "confirmed"), (3, 11, "false_alarm"), (3, 12, "confirmed")])
+    frame = _frame(
+        [
+            (1, 10, "confirmed"),
+            (1, 11, "false_alarm"),
+            (1, 12, "confirmed"),
+            (2, 10, "unsure"),
+            (3, 11, "confirmed"),
+            (3, 11, "false_alarm"),
+            (3, 12, "confirmed"),
+        ]
+    )
     first, second = ag.paired_labels(frame)
     # Alert 2 has one verdict; alert 3's repeat by reviewer 11 is not a second reviewer.
     assert first == ["confirmed", "confirmed"]
@@ -275,8 +295,15 @@ def test_pairwise_kappas_only_for_pairs_with_enough_shared_items() -> None:
 
 
 def test_reliability_matrix_feeds_alpha() -> None:
-    frame = _frame([(1, 10, "confirmed"), (1, 11, "confirmed"), (2, 10, "false_alarm"),
-                    (2, 11, "unsure"), (3, 11, "unsure")])
+    frame = _frame(
+        [
+            (1, 10, "confirmed"),
+            (1, 11, "confirmed"),
+            (2, 10, "false_alarm"),
+            (2, 11, "unsure"),
+            (3, 11, "unsure"),
+        ]
+    )
     m = ag.reliability_matrix(frame)
     assert m == [["confirmed", "false_alarm", None], ["confirmed", "unsure", "unsure"]]
     codes = {"confirmed": 0, "false_alarm": 1, "unsure": 2}
@@ -310,11 +337,20 @@ def test_wilson_interval_house_style_value_and_edges() -> None:
 
 
 def test_gold_accuracy_per_reviewer() -> None:
-    answers = pd.DataFrame({
-        "reviewer_id": [1, 1, 1, 1, 2, 2],
-        "label": ["confirmed", "false_alarm", "confirmed", "unsure", "confirmed", "confirmed"],
-        "expected_label": ["confirmed", "false_alarm", "false_alarm", "confirmed", "confirmed", "confirmed"],
-    })
+    answers = pd.DataFrame(
+        {
+            "reviewer_id": [1, 1, 1, 1, 2, 2],
+            "label": ["confirmed", "false_alarm", "confirmed", "unsure", "confirmed", "confirmed"],
+            "expected_label": [
+                "confirmed",
+                "false_alarm",
+                "false_alarm",
+                "confirmed",
+                "confirmed",
+                "confirmed",
+            ],
+        }
+    )
     res = {g.reviewer_id: g.accuracy for g in ag.gold_accuracy(answers)}
     assert (res[1].successes, res[1].n, res[1].estimate) == (2, 4, 0.5)
     assert (res[2].successes, res[2].n) == (2, 2)
@@ -343,10 +379,12 @@ def test_throughput_counts_gaps_within_idle_limit() -> None:
 
 
 def test_throughput_overall_pools_reviewers_and_handles_no_activity() -> None:
-    frame = pd.DataFrame({
-        "reviewer_id": [1, 1, 1, 2],
-        "decided_at": [T0, T0 + dt.timedelta(seconds=60), T0 + dt.timedelta(seconds=120), T0],
-    })
+    frame = pd.DataFrame(
+        {
+            "reviewer_id": [1, 1, 1, 2],
+            "decided_at": [T0, T0 + dt.timedelta(seconds=60), T0 + dt.timedelta(seconds=120), T0],
+        }
+    )
     res = ag.throughput(frame)
     assert res[None].clips == 2 and res[None].active_s == pytest.approx(120.0)
     assert res[None].clips_per_hour == pytest.approx(60.0)

@@ -80,8 +80,9 @@ def test_meta_axes_in_seconds_and_khz() -> None:
 def test_waveform_envelope_of_silence_is_flat() -> None:
     mins, maxs = images.waveform_envelope(np.zeros(RATE * 2, np.float32), 300)
     assert np.all(mins == 0) and np.all(maxs == 0)
-    out = images.render_clip_images(np.zeros(RATE * 2, np.float32), RATE, waveform_width=300,
-                                    waveform_height=61)
+    out = images.render_clip_images(
+        np.zeros(RATE * 2, np.float32), RATE, waveform_width=300, waveform_height=61
+    )
     ink = np.asarray(Image.open(io.BytesIO(out.waveform_png)).convert("P")) == 1
     # Only the centre row is inked, across every column.
     assert ink[30].all()
@@ -108,8 +109,9 @@ def test_waveform_wider_than_clip_still_renders() -> None:
 
 
 def test_loud_tone_reaches_the_edges_of_the_waveform() -> None:
-    out = images.render_clip_images(_tone(200.0, 1.0, amplitude=0.25), RATE, waveform_width=100,
-                                    waveform_height=51)
+    out = images.render_clip_images(
+        _tone(200.0, 1.0, amplitude=0.25), RATE, waveform_width=100, waveform_height=51
+    )
     ink = np.asarray(Image.open(io.BytesIO(out.waveform_png)).convert("P")) == 1
     # Scaled to the clip's peak, so a quiet tone still spans top to bottom.
     assert ink[0].any() and ink[-1].any()

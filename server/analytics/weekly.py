@@ -1,0 +1,548 @@
+"""The weekly trial summary: every figure, per sound class, for the ISO week and the trial to date.
+
+`build_summary` is the one service function behind the summary page, the staff JSON and CSV API
+and `trialhouse report weekly`. It reads through `load` and computes with the pure modules.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import logging
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sqlalchemy.orm import Session
+
+from server.analytics import breakdowns, load, rates, shares, staged, trend, whatif
+from server.errors import ValidationFailed
+from server.trials import service as trials_service
+from server.trials.models import Trial
+
+log = logging.getLogger(__name__)
+
+SCOPES = ("week", "to_date")
+OUTCOMES = ("false_alarm", "confirmed", "unsure", "unusable", "pending")
+# Review grades of a false alarm: the sound resembles the target (forgivable) or not.
+GRADE_NAMES = {"resembles": "forgivable", "unrelated": "unforgivable"}
+NOT_GRADED = "not graded"
+NOT_RECORDED = "not recorded"
+DIMENSIONS = (("firmware", "Firmware (device's current)"), ("hardware_model", "Hardware model"), ("room", "Room"))
+DEFAULT_SEED = 20261123
+WHATIF_STEP_MILLI = 20  # threshold grid step: 0.02 on the score scale
+SILENT_AFTER_S = 24 * 3600.0
+
+DEFINITIONS = (
+    "Monitored time: the listening of devices while installed in a home that is installed, active, or "
+    "paused but still listening, inside the trial and the reporting window. Offline and muted time is "
+    "not monitored time. A home-month is 30.4375 days (365.25 / 12) of monitored time.",
+    "False alarm: an alert whose final review verdict is false alarm. Alerts awaiting review, and those "
+    "judged unsure or unusable, are counted and shown apart; they are never folded into either side.",
+    "Staged test event: a test sound a coordinator played on purpose and logged (home, sound class, start, "
+    "end, source). An alert of the same class from a device installed in that home within the event's "
+    "window, widened by {tol:g} s each side, detects it; it is a detection, not a false alarm. Latency "
+    "runs from the logged start of the event.",
+    "Only alerts detected inside monitored time count towards rates; those outside it (unassigned device, "
+    "home not monitored, device offline) are listed under Operations.",
+)
+CAUTIONS = (
+    "A detector in trial is not a certified life-safety device. Households keep their certified smoke and "
+    "CO alarms; local codes and each household's consent govern how a trial device may be used.",
+)
+LIMITS = (
+    "Staged test events are planned tests, not real emergencies: detection on them is a guide to, not a "
+    "measure of, detection in a real fire or a real cry.",
+    "Verdicts are human judgements; reviewer agreement is shown under Operations.",
+    "Exact (Garwood) intervals assume false alarms arrive independently at one rate; the home bootstrap "
+    "interval drops that assumption by resampling whole homes.",
+)
+
+
+# ---------------------------------------------------------------------------------------
+# Results
+
+
+@dataclass(frozen=True)
+class AlertTally:
+    """Alerts of one class in one scope by what became of them."""
+
+    false_alarm: int
+    confirmed: int
+    unsure: int
+    unusable: int
+    pending: int
+    staged_detections: int
+    outside_monitored_time: int
+
+
+@dataclass(frozen=True)
+class Breakdown:
+    dimension: str
+    title: str
+    table: pd.DataFrame
+    test: breakdowns.Heterogeneity
+
+
+@dataclass(frozen=True)
+class FirmwareComparison:
+    version_a: str
+    version_b: str
+    ratio: rates.RatioEstimate
+
+
+@dataclass(frozen=True)
+class ClassFigures:
+    """Every figure for one sound class over one scope (the week or the trial to date)."""
+
+    sound_class: str
+    scope: str
+    label: str
+    alerts: AlertTally
+    homes_monitored: int
+    home_months: float
+    rate: rates.RateEstimate
+    upper_one_sided: float
+    bootstrap: rates.BootstrapRate
+    overdispersion: rates.Overdispersion
+    homes_note: str | None
+    homes: pd.DataFrame
+    concentration: shares.Concentration
+    causes: pd.DataFrame
+    grades: pd.DataFrame
+    above_target: shares.HomesAboveTarget
+    breakdowns: tuple[Breakdown, ...]
+    firmware_comparison: FirmwareComparison | None
+    detection: staged.Detection
+    whatif: pd.DataFrame
+    whatif_floor: float
+    readiness: rates.Readiness
+
+
+@dataclass(frozen=True)
+class ClassSummary:
+    sound_class: str
+    week: ClassFigures
+    to_date: ClassFigures
+    trend: pd.DataFrame
+
+
+@dataclass(frozen=True)
+class ReviewFigures:
+    backlog: int
+    oldest_age_s: float
+    median_age_s: float
+    double_reviewed: int
+    percent_agreement: float
+    kappa: float
+    kappa_reason: str | None
+    alpha: float
+
+
+@dataclass(frozen=True)
+class QuotaLine:
+    label: str
+    count: int
+    min_count: int | None
+    max_count: int | None
+    status: str
+
+
+@dataclass(frozen=True)
+class Operations:
+    """The week's running of the pilot. Device states (silent, clock skew) are as of `as_of`."""
+
+    as_of: dt.datetime
+    homes_monitored: int
+    homes_with_devices: int
+    devices_monitored: int
+    devices_installed: int
+    uptime_share: float
+    silent_devices: tuple[str, ...]
+    skewed_devices: tuple[tuple[str, float], ...]
+    skew_limit_s: float
+    outside_monitored_time: pd.DataFrame
+    review: ReviewFigures | None
+    quota: tuple[QuotaLine, ...] | None
+
+
+@dataclass(frozen=True)
+class WeeklySummary:
+    trial_code: str
+    trial_name: str
+    timezone: str
+    target: float
+    confidence_level: float
+    week: trend.Week
+    trial_start: dt.datetime
+    report_end: dt.datetime
+    generated_at: dt.datetime
+    staged_tolerance_s: float
+    bootstrap_resamples: int
+    seed: int
+    classes: tuple[ClassSummary, ...]
+    operations: Operations
+    definitions: tuple[str, ...]
+    cautions: tuple[str, ...]
+    limits: tuple[str, ...]
+    notes: tuple[str, ...]
+
+
+# ---------------------------------------------------------------------------------------
+# Building
+
+
+def choose_week(trial: Trial, week: str | None, now: dt.datetime) -> trend.Week:
+    """The requested ISO week, or the last complete one; 422 for a bad label or a week out of range."""
+    if week:
+        try:
+            chosen = trend.week(week, trial.timezone)
+        except ValueError as exc:
+            raise ValidationFailed(f"{exc}.", {"week": "Give an ISO week such as 2026-W48."}) from None
+    else:
+        chosen = trend.last_complete_week(now, trial.timezone)
+    start = trend.local_midnight(trial.starts_on, trial.timezone)
+    if chosen.end_at <= start:
+        if not week:  # the trial is in its first week: show that week so far
+            return trend.week_of(start, trial.timezone)
+        raise ValidationFailed(f"Trial {trial.code} starts on {trial.starts_on}, after {chosen.label}.",
+                               {"week": "Pick a week from the trial's start on."})
+    if chosen.start_at > now:
+        raise ValidationFailed(f"{chosen.label} has not started yet.", {"week": "Pick a past or current week."})
+    return chosen
+
+
+def build_summary(
+    session: Session,
+    *,
+    trial_code: str,
+    now: dt.datetime,
+    week: str | None = None,
+    confidence_level: float = 0.95,
+    staged_tolerance_s: float = staged.DEFAULT_TOLERANCE_S,
+    resamples: int = 2000,
+    seed: int = DEFAULT_SEED,
+    firmware_pair: tuple[str, str] | None = None,
+    skew_limit_s: float = 300.0,
+) -> WeeklySummary:
+    """Every figure of the weekly summary for one trial and ISO week (default: the last complete one)."""
+    trial = trials_service.get_trial(session, trial_code)
+    chosen = choose_week(trial, week, now)
+    data = load.load_pilot(session, trial, chosen, now=now, staged_tolerance_s=staged_tolerance_s)
+    ctx = _Context(data, confidence_level, staged_tolerance_s, resamples, seed, firmware_pair)
+    classes = tuple(
+        ClassSummary(sound_class=c, week=ctx.figures(i, c, "week"), to_date=ctx.figures(i, c, "to_date"),
+                     trend=ctx.trend(c))
+        for i, c in enumerate(trial.sound_classes))
+    notes: list[str] = []
+    ops = _operations(session, ctx, now=now, skew_limit_s=skew_limit_s, notes=notes)
+    return WeeklySummary(
+        trial_code=trial.code, trial_name=trial.name, timezone=trial.timezone,
+        target=float(trial.fa_target_per_home_month), confidence_level=confidence_level, week=chosen,
+        trial_start=data.start, report_end=data.end, generated_at=now, staged_tolerance_s=staged_tolerance_s,
+        bootstrap_resamples=resamples, seed=seed, classes=classes, operations=ops,
+        definitions=tuple(d.format(tol=staged_tolerance_s) for d in DEFINITIONS), cautions=CAUTIONS,
+        limits=LIMITS, notes=tuple(notes))
+
+
+def _subtract(frame: pd.DataFrame, removed: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """`frame` (keys..., alerts) less the `removed` rows (one per alert), matched on `keys`."""
+    if removed.empty:
+        return frame
+    n = removed.groupby(keys, dropna=False).size().rename("removed").reset_index()
+    out = frame.merge(n, on=keys, how="left")
+    out["alerts"] = out["alerts"] - out["removed"].fillna(0).astype(np.int64)
+    return out.drop(columns="removed")[out["alerts"] > 0].reset_index(drop=True)
+
+
+class _Context:
+    """Frames prepared once (staged detections taken out) for every class and scope."""
+
+    def __init__(self, data: load.PilotData, confidence_level: float, tolerance_s: float, resamples: int,
+                 seed: int, firmware_pair: tuple[str, str] | None) -> None:
+        self.data = data
+        self.level = confidence_level
+        self.resamples = resamples
+        self.seed = seed
+        self.target = float(data.trial.fa_target_per_home_month)
+        codes = data.homes.set_index("home_id")["home_code"]
+        self.codes = codes
+        self.windows = data.windows.assign(home_code=data.windows["home_id"].map(codes))
+        self.causes = {c["code"]: c["label"] for c in (data.trial.causes or [])}
+
+        self.match = staged.match(data.staged_events, data.staged_alerts, data.installations,
+                                  tolerance_s=tolerance_s)
+        matched = data.staged_alerts[data.staged_alerts["alert_id"].isin(self.match.matches["alert_id"])]
+        self.matched = matched
+        m = matched[matched["counted"]]
+        self.counted = _subtract(data.counted, m, ["window_id", "period", "sound_class", "outcome", "cause",
+                                                   "resemblance"])
+        self.by_week = _subtract(data.by_week, m, ["week_index", "sound_class", "outcome"])
+        self.fa_scores = _subtract(data.fa_scores, m[m["outcome"] == "false_alarm"],
+                                   ["period", "sound_class", "score_milli"])
+        week_index = data.week.index
+        mon = data.monitored
+        self.seconds = {"week": mon[mon["bucket"] == week_index].groupby("window_id")["seconds"].sum(),
+                        "to_date": mon.groupby("window_id")["seconds"].sum()}
+        self.firmware_pair = firmware_pair or self._busiest_firmware()
+
+    def _busiest_firmware(self) -> tuple[str, str] | None:
+        t = self.windows.assign(seconds=self.windows["window_id"].map(self.seconds["to_date"]).fillna(0.0))
+        busiest = t.groupby("firmware")["seconds"].sum().sort_values(ascending=False)
+        busiest = busiest[busiest > 0]
+        return (str(busiest.index[0]), str(busiest.index[1])) if len(busiest) >= 2 else None
+
+    def _rng(self, *key: int) -> np.random.Generator:
+        return np.random.default_rng([self.seed, *key])
+
+    def _scoped(self, frame: pd.DataFrame, scope: str) -> pd.DataFrame:
+        return frame[frame["period"] == "week"] if scope == "week" else frame
+
+    def figures(self, class_index: int, sound_class: str, scope: str) -> ClassFigures:
+        d, level, target = self.data, self.level, self.target
+        s_index = SCOPES.index(scope)
+        counted = self._scoped(self.counted, scope)
+        counted = counted[counted["sound_class"] == sound_class]
+        fa = counted[counted["outcome"] == "false_alarm"]
+        per_window = self.windows.assign(
+            seconds=self.windows["window_id"].map(self.seconds[scope]).fillna(0.0),
+            false_alarms=self.windows["window_id"].map(fa.groupby("window_id")["alerts"].sum()).fillna(0)
+            .astype(np.int64))
+        per_window["home_months"] = per_window["seconds"] / rates.HOME_MONTH_S
+        homes = (per_window.groupby("home_code", as_index=False)[["false_alarms", "home_months"]].sum())
+        homes = homes[(homes["home_months"] > 0) | (homes["false_alarms"] > 0)]
+        total_fa = int(homes["false_alarms"].sum())
+        total_hm = float(homes["home_months"].sum())
+        rate = rates.poisson_rate(total_fa, total_hm, confidence_level=level)
+        boot = rates.home_bootstrap(homes["false_alarms"].to_numpy(), homes["home_months"].to_numpy(),
+                                    rng=self._rng(class_index, s_index), resamples=self.resamples,
+                                    confidence_level=level)
+        disp = rates.overdispersion(homes["false_alarms"].to_numpy(), homes["home_months"].to_numpy())
+        pareto = shares.home_pareto(homes, confidence_level=level)
+
+        causes = shares.category_shares(
+            fa.assign(cause=[self.causes.get(c, c) if c is not None else NOT_RECORDED for c in fa["cause"]])
+            .rename(columns={"alerts": "false_alarms"}), total_hm, category="cause", confidence_level=level)
+        grade_counts = fa.assign(grade=[GRADE_NAMES.get(g, NOT_GRADED) if g is not None else NOT_GRADED
+                                        for g in fa["resemblance"]]).rename(columns={"alerts": "false_alarms"})
+        grades = shares.category_shares(
+            pd.concat([grade_counts[["grade", "false_alarms"]],
+                       pd.DataFrame({"grade": list(GRADE_NAMES.values()), "false_alarms": 0})]),
+            total_hm, category="grade", confidence_level=level)
+
+        parts = []
+        for dim_index, (dim, title) in enumerate(DIMENSIONS):
+            table = breakdowns.rates_by(per_window[[dim, "false_alarms", "home_months"]], dim,
+                                        confidence_level=level)
+            table = table[table["home_months"] > 0].reset_index(drop=True)
+            test = breakdowns.heterogeneity(table["false_alarms"].to_numpy(), table["home_months"].to_numpy(),
+                                            rng=self._rng(class_index, s_index, 10 + dim_index))
+            parts.append(Breakdown(dimension=dim, title=title, table=table, test=test))
+        comparison = None
+        if self.firmware_pair is not None:
+            fw = parts[0].table
+            a, b = self.firmware_pair
+            comparison = FirmwareComparison(a, b, breakdowns.firmware_ratio(fw, a, b, confidence_level=level))
+
+        events = self.match.events[self.match.events["sound_class"] == sound_class]
+        if scope == "week":
+            events = events[events["started_at"] >= pd.Timestamp(d.week.start_at)]
+        detection = staged.detection(events, confidence_level=level)
+        detection = _with_codes(detection, self.codes)
+        table, floor = self._whatif(sound_class, scope, total_hm, events)
+
+        outside = self._scoped(d.not_counted, scope)
+        outside = outside[outside["sound_class"] == sound_class]["alerts"].sum()
+        matched = self.matched[self.matched["sound_class"] == sound_class]
+        if scope == "week":
+            matched = matched[matched["period"] == "week"]
+        by_outcome = counted.groupby("outcome")["alerts"].sum()
+        tally = AlertTally(**{o: int(by_outcome.get(o, 0)) for o in OUTCOMES},
+                           staged_detections=len(matched), outside_monitored_time=int(outside))
+        return ClassFigures(
+            sound_class=sound_class, scope=scope, label=d.week.label if scope == "week" else "trial to date",
+            alerts=tally, homes_monitored=int((homes["home_months"] > 0).sum()), home_months=total_hm,
+            rate=rate, upper_one_sided=rates.upper_bound_one_sided(total_fa, total_hm, confidence_level=level),
+            bootstrap=boot, overdispersion=disp, homes_note=_homes_note(rate, boot, disp),
+            homes=pareto, concentration=shares.concentration(homes, confidence_level=level), causes=causes,
+            grades=grades, above_target=shares.homes_above_target(pareto, target), breakdowns=tuple(parts),
+            firmware_comparison=comparison, detection=detection, whatif=table, whatif_floor=floor,
+            readiness=rates.readiness(total_fa, total_hm, target, confidence_level=level))
+
+    def _whatif(self, sound_class: str, scope: str, home_months: float,
+                events: pd.DataFrame) -> tuple[pd.DataFrame, float]:
+        floors = self.data.score_floors
+        floor = whatif.score_floor(floors.loc[floors["sound_class"] == sound_class, "min_score"])
+        if math.isnan(floor):
+            return pd.DataFrame(), floor
+        # Scores arrive as thousandths (floor(1000 s)), so thresholds on that grid are exact.
+        floor_milli = math.ceil(floor * 1000.0 - 1e-6)
+        grid = whatif.threshold_grid(floor_milli, step=WHATIF_STEP_MILLI, top=1000.0)
+        s = self._scoped(self.fa_scores, scope)
+        s = s[s["sound_class"] == sound_class]
+        best = np.floor(events["best_score"].to_numpy(dtype=np.float64) * 1000.0 + 1e-6)
+        table = whatif.at_thresholds(s["score_milli"].to_numpy(dtype=np.float64), home_months, best, grid,
+                                     floor=floor_milli, target=self.target, fa_counts=s["alerts"].to_numpy(),
+                                     confidence_level=self.level)
+        table["threshold"] = table["threshold"] / 1000.0
+        return table, floor_milli / 1000.0
+
+    def trend(self, sound_class: str) -> pd.DataFrame:
+        d = self.data
+        fa = self.by_week[(self.by_week["sound_class"] == sound_class) & (self.by_week["outcome"] == "false_alarm")]
+        hm = d.monitored.groupby("bucket")["seconds"].sum() / rates.HOME_MONTH_S
+        weeks = pd.concat([
+            fa.groupby("week_index")["alerts"].sum().rename("false_alarms").reset_index(),
+            pd.DataFrame({"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}),
+        ], ignore_index=True).fillna(0.0)
+        first = trend.week_of(d.start, d.trial.timezone).index
+        out = trend.weekly_rates(weeks, first_index=first, last_index=d.week.index, tz=d.trial.timezone,
+                                 confidence_level=self.level)
+        out["target"] = self.target
+        return out
+
+
+def _with_codes(detection: staged.Detection, codes: pd.Series) -> staged.Detection:
+    """Missed events with home codes instead of internal ids."""
+    missed = detection.missed.assign(home_code=detection.missed["home_id"].map(codes)).drop(columns="home_id")
+    cols = ["staged_event_id", "home_code", "sound_class", "started_at", "ended_at", "source"]
+    return dataclasses.replace(detection, missed=missed[cols])
+
+
+def _homes_note(rate: rates.RateEstimate, boot: rates.BootstrapRate, disp: rates.Overdispersion) -> str | None:
+    """One line on why the two intervals differ (or agree)."""
+    if boot.reason is not None or disp.reason is not None or rate.reason is not None:
+        return None
+    if disp.p_value < 0.05 and disp.ratio > 1.5:
+        return (f"Homes are not alike (overdispersion {disp.ratio:.1f}, chi-square p = {disp.p_value:.2g}): the home "
+                "bootstrap interval resamples whole homes and is wider than the Poisson interval, which treats "
+                "every home-month as interchangeable.")
+    return (f"Homes look alike (overdispersion {disp.ratio:.1f}), so the home bootstrap and Poisson intervals "
+            "are close.")
+
+
+def _operations(session: Session, ctx: _Context, *, now: dt.datetime, skew_limit_s: float,
+                notes: list[str]) -> Operations:
+    d = ctx.data
+    week_s = ctx.seconds["week"]
+    w = ctx.windows
+    span = (w["ended_at"].clip(upper=pd.Timestamp(d.end)) - w["started_at"].clip(lower=pd.Timestamp(d.week.start_at)))
+    w = w.assign(window_s=span.dt.total_seconds().clip(lower=0.0),
+                 listening_s=w["window_id"].map(week_s).fillna(0.0))
+    in_week = w[w["window_s"] > 0]
+    listening = in_week.groupby("device_id")["listening_s"].sum()
+    installed_now = set(w.loc[w["ended_at"] >= pd.Timestamp(d.end), "device_id"])
+    devices = d.devices[d.devices["device_id"].isin(installed_now)]
+    last_seen = devices["last_seen_at"]
+    silent = devices[last_seen.isna() | ((pd.Timestamp(now) - last_seen).dt.total_seconds() > SILENT_AFTER_S)]
+    skewed = devices[devices["clock_skew_s"].abs() > skew_limit_s]
+    outside = d.not_counted[d.not_counted["period"] == "week"].drop(columns="period").reset_index(drop=True)
+    window_total = float(in_week["window_s"].sum())
+    return Operations(
+        as_of=now,
+        homes_monitored=int(in_week.groupby("home_id")["listening_s"].sum().gt(0).sum()),
+        homes_with_devices=int(in_week["home_id"].nunique()),
+        devices_monitored=int(listening.gt(0).sum()),
+        devices_installed=int(in_week["device_id"].nunique()),
+        uptime_share=float(in_week["listening_s"].sum()) / window_total if window_total > 0 else math.nan,
+        silent_devices=tuple(sorted(silent["serial"])),
+        skewed_devices=tuple((str(r.serial), float(r.clock_skew_s)) for r in skewed.sort_values("serial").itertuples()),
+        skew_limit_s=skew_limit_s,
+        outside_monitored_time=outside,
+        review=_review(session, d.trial, now, notes),
+        quota=_quota(session, d.trial, notes),
+    )
+
+
+def _review(session: Session, trial: Trial, now: dt.datetime, notes: list[str]) -> ReviewFigures | None:
+    try:
+        from server.review import overview
+    except ImportError:  # the review module is optional at import time only
+        notes.append("Review figures are unavailable: the review module is not installed.")
+        return None
+    ov = overview.review_overview(session, trial.id, now=now)
+    return ReviewFigures(
+        backlog=ov.backlog.count, oldest_age_s=ov.backlog.oldest_age_s, median_age_s=ov.backlog.median_age_s,
+        double_reviewed=ov.double_reviewed, percent_agreement=ov.percent_agreement.estimate,
+        kappa=ov.kappa_overall.estimate, kappa_reason=ov.kappa_overall.reason, alpha=ov.alpha.estimate)
+
+
+def _quota(session: Session, trial: Trial, notes: list[str]) -> tuple[QuotaLine, ...] | None:
+    try:
+        from server.households import service as households_service
+    except ImportError:
+        notes.append("Quota status is unavailable: the household register is not installed.")
+        return None
+    report = households_service.quota_report(session, trial)
+    return tuple(QuotaLine(label=s.target.label, count=s.count, min_count=s.target.min_count,
+                           max_count=s.target.max_count, status=s.status) for s in report.targets)
+
+
+# ---------------------------------------------------------------------------------------
+# Plain forms for JSON and CSV
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready values: NaN and infinities become null, times ISO 8601 strings."""
+    if isinstance(value, pd.DataFrame):
+        return [{k: _plain(v) for k, v in row.items()} for row in value.to_dict("records")]
+    if hasattr(value, "__dataclass_fields__"):
+        return {k: _plain(getattr(value, k)) for k in value.__dataclass_fields__}
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.bool_ | bool):
+        return bool(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    if isinstance(value, float | np.floating):
+        f = float(value)
+        return f if math.isfinite(f) else None
+    if isinstance(value, pd.Timestamp):
+        return None if pd.isna(value) else value.isoformat()
+    if isinstance(value, dt.datetime | dt.date):
+        return value.isoformat()
+    if value is pd.NaT or (value is not None and not isinstance(value, str) and pd.api.types.is_scalar(value)
+                           and pd.isna(value)):
+        return None
+    return value
+
+
+def summary_json(summary: WeeklySummary) -> dict[str, Any]:
+    """The whole summary as JSON-ready data (NaN and infinite values are null)."""
+    out: dict[str, Any] = _plain(summary)
+    return out
+
+
+def summary_tables(summary: WeeklySummary) -> dict[str, pd.DataFrame]:
+    """Every table of the summary by name (`<class>-<scope>-<table>`, `<class>-trend`, `overview`)."""
+    tables: dict[str, pd.DataFrame] = {}
+    rows = []
+    for cs in summary.classes:
+        for f in (cs.week, cs.to_date):
+            rows.append({
+                "sound_class": f.sound_class, "scope": f.label, "false_alarms": f.rate.events,
+                "home_months": f.home_months, "rate": f.rate.estimate, "low": f.rate.low, "high": f.rate.high,
+                "upper_one_sided": f.upper_one_sided, "bootstrap_low": f.bootstrap.low,
+                "bootstrap_high": f.bootstrap.high, "overdispersion": f.overdispersion.ratio,
+                "target": summary.target, "readiness": f.readiness.state,
+                "more_home_months": f.readiness.more_home_months, "staged_events": f.detection.events,
+                "staged_detected": f.detection.detected, "detected_share": f.detection.share.estimate,
+                "detected_low": f.detection.share.low, "detected_high": f.detection.share.high,
+                "confirmed": f.alerts.confirmed, "unsure": f.alerts.unsure, "unusable": f.alerts.unusable,
+                "pending": f.alerts.pending, "outside_monitored_time": f.alerts.outside_monitored_time})
+            prefix = f"{f.sound_class}-{f.scope}"
+            tables[f"{prefix}-homes"] = f.homes
+            tables[f"{prefix}-causes"] = f.causes
+            tables[f"{prefix}-grades"] = f.grades
+            for b in f.breakdowns:
+                tables[f"{prefix}-{b.dimension}"] = b.table
+            tables[f"{prefix}-thresholds"] = f.whatif
+            tables[f"{prefix}-missed-staged"] = f.detection.missed
+        tables[f"{cs.sound_class}-trend"] = cs.trend
+    tables["overview"] = pd.DataFrame(rows)
+    tables["outside-monitored-time"] = summary.operations.outside_monitored_time
+    return tables

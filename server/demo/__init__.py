@@ -1,0 +1,1 @@
+"""The demo pilot: an invented scenario (``scenario``), seeded through the real API (``seed``)."""

@@ -1,0 +1,246 @@
+"""JSON bodies of the register API. Contact details appear only in ContactIn / ContactOut."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Any
+
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
+
+
+class Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class HomeIn(Strict):
+    trial: str | None = None
+    code: str | None = None
+    attributes: dict[str, Any] = Field(default_factory=dict)
+    note: str | None = None
+    at: AwareDatetime | None = None  # when the household entered the register (default now)
+
+
+class HomePatch(Strict):
+    # Only the given keys change; null removes an answer.
+    attributes: dict[str, Any]
+
+
+class HomeOut(BaseModel):
+    code: str
+    trial: str
+    state: str
+    state_changed_at: dt.datetime
+    attributes: dict[str, Any]
+    devices_installed: int
+    consented: bool
+    erased: bool
+
+
+class TransitionIn(Strict):
+    to_state: str
+    note: str | None = None
+    at: AwareDatetime | None = None
+    # On a pause: do the devices keep listening (time still counts as monitored)?
+    listening: bool = True
+
+
+class TimelineOut(BaseModel):
+    at: dt.datetime
+    from_state: str | None
+    to_state: str
+    author: str
+    note: str | None = None
+    listening: bool
+
+
+class TransitionOut(BaseModel):
+    home: HomeOut
+    warnings: list[str]
+    closed_installations: list[int]
+
+
+class ConsentIn(Strict):
+    form_version: str
+    consented_on: dt.date
+    staff_may_listen: bool = True
+    retention_days: int = Field(90, ge=1, le=3650)
+    mark_consented: bool = False
+    at: AwareDatetime | None = None  # time of the move to consented (default now)
+
+
+class ConsentOut(BaseModel):
+    form_version: str
+    consented_on: dt.date
+    staff_may_listen: bool
+    retention_days: int
+    recorded_at: dt.datetime
+
+
+class ContactIn(Strict):
+    names: str = ""
+    address: str = ""
+    phone: str = ""
+    email: str = ""
+    access_notes: str = ""
+
+
+class ContactOut(ContactIn):
+    code: str
+    updated_at: dt.datetime | None = None
+
+
+class InstallationIn(Strict):
+    device: str  # serial
+    home: str    # code
+    room: str
+    installed_at: AwareDatetime
+    move: bool = False
+
+
+class InstallationPatch(Strict):
+    installed_at: AwareDatetime | None = None
+    removed_at: AwareDatetime | None = None
+    reopen: bool = False  # clear removed_at
+    room: str | None = None
+
+
+class RemovalIn(Strict):
+    removed_at: AwareDatetime
+
+
+class InstallationOut(BaseModel):
+    id: int
+    device: str
+    home: str
+    room: str
+    installed_at: dt.datetime
+    removed_at: dt.datetime | None
+    last_seen_at: dt.datetime | None = None
+
+
+class InstallationResult(BaseModel):
+    installation: InstallationOut
+    closed: InstallationOut | None = None
+    alerts_reattributed: int
+
+
+class StagedEventIn(Strict):
+    home: str
+    sound_class: str
+    started_at: AwareDatetime
+    ended_at: AwareDatetime
+    source: str
+    level_db: float | None = None
+
+
+class StagedEventOut(BaseModel):
+    id: int
+    trial: str
+    home: str
+    sound_class: str
+    started_at: dt.datetime
+    ended_at: dt.datetime
+    source: str
+    level_db: float | None
+
+
+class AttributeIn(Strict):
+    trial: str | None = None
+    key: str
+    label: str
+    kind: str
+    options: list[str] = Field(default_factory=list)
+    min_value: int | None = None
+    max_value: int | None = None
+
+
+class AttributeOut(BaseModel):
+    key: str
+    label: str
+    kind: str
+    options: list[str]
+    min_value: int | None
+    max_value: int | None
+
+
+class TargetIn(Strict):
+    trial: str | None = None
+    attribute_key: str | None = None
+    value: Any = None
+    min_count: int | None = None
+    max_count: int | None = None
+    label: str = ""
+
+
+class TargetOut(BaseModel):
+    id: int
+    label: str
+    attribute_key: str | None
+    value: Any
+    min_count: int | None
+    max_count: int | None
+    count: int
+    status: str
+    shortfall: int
+    excess: int
+    homes: list[str]
+
+
+class SuggestionOut(BaseModel):
+    code: str
+    state: str
+    helps: list[str]
+
+
+class QuotaOut(BaseModel):
+    trial: str
+    counting_states: list[str]
+    counted: int
+    by_state: dict[str, int]
+    targets: list[TargetOut]
+    suggestions: list[SuggestionOut]
+    remaining_after: dict[str, int]
+    rule: str
+    warnings: list[str]
+
+
+class QuotaStatesIn(Strict):
+    trial: str | None = None
+    states: list[str]
+
+
+class ErasurePlanOut(BaseModel):
+    code: str
+    will_erase: list[str]
+    will_keep: list[str]
+    clips_to_delete: int
+    alerts_kept: int
+    ticket: str
+    expires_in_s: int
+
+
+class ErasureIn(Strict):
+    ticket: str
+    confirm_code: str
+    note: str | None = None
+
+
+class ErasureOut(BaseModel):
+    code: str
+    complete: bool
+    contact_erased: bool
+    clips_deleted: int
+    clips_shared_kept: int
+    alerts_kept: int
+
+
+class ImportProblemOut(BaseModel):
+    row: int
+    code: str
+    column: str
+    problem: str
+
+
+class ImportOut(BaseModel):
+    rows: int
+    created: list[str]

@@ -1,0 +1,704 @@
+"""The household register: homes, lifecycle transitions, consent, personal data, attributes,
+installations, staged test events and the trial's quota.
+
+One function per action, serving the pages, the JSON API and the CLI alike. Services take a
+Session and plain values, flush and never commit.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+import zoneinfo
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from sqlalchemy import delete, func, select
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from server import audit
+from server.auth.models import User
+from server.db import utcnow
+from server.devices import service as devices_service
+from server.devices.models import Device
+from server.errors import Conflict, IllegalTransition, NotFound, ValidationFailed
+from server.households import catalogue, lifecycle, quota, timeline
+from server.households.catalogue import seed_default_catalogue  # noqa: F401  (re-exported)
+from server.households.models import (
+    ROOMS,
+    AttributeDefinition,
+    Consent,
+    Home,
+    HomeContact,
+    HomeState,
+    HomeStateChange,
+    Installation,
+    QuotaTarget,
+    StagedEvent,
+)
+from server.trials.models import Trial
+
+Actor = User | str
+
+CODE_PATTERN = re.compile(r"^H-\d{4,6}$")
+SORTS = ("code", "state", "changed", "created")
+CONTACT_FIELDS = ("names", "address", "phone", "email", "access_notes")
+EMAIL_PATTERN = re.compile(r"^[^@\s]+@[^@\s]+\.[^@\s]+$")
+PHONE_PATTERN = re.compile(r"^[0-9+() .\-/]{3,60}$")
+
+
+def _by_id(actor: Actor | None) -> int | None:
+    return actor.id if isinstance(actor, User) else None
+
+
+def _utc(value: dt.datetime, field: str) -> dt.datetime:
+    if value.tzinfo is None:
+        raise ValidationFailed(f"'{field}' needs a time zone.", {field: "Give the time with its time zone."})
+    return value.astimezone(dt.UTC)
+
+
+def _when(value: dt.datetime | None) -> str:
+    return value.strftime("%Y-%m-%d %H:%M UTC") if value else "now"
+
+
+# --- look-ups -----------------------------------------------------------------------------------
+
+def find_home(session: Session, code: str) -> Home | None:
+    return session.scalar(select(Home).where(Home.code == code.strip().upper()))
+
+
+def get_home(session: Session, code: str) -> Home:
+    home = find_home(session, code)
+    if home is None:
+        raise NotFound(f"No home has code {code}.", code="unknown_home")
+    return home
+
+
+def trial_of(session: Session, home: Home) -> Trial:
+    trial = session.get(Trial, home.trial_id)
+    assert trial is not None
+    return trial
+
+
+def latest_consent(session: Session, home: Home) -> Consent | None:
+    return session.scalar(select(Consent).where(Consent.home_id == home.id)
+                          .order_by(Consent.recorded_at.desc(), Consent.id.desc()).limit(1))
+
+
+def list_homes(session: Session, trial: Trial, *, state: str | None = None, attribute: str | None = None,
+               value: Any = None, sort: str = "code", descending: bool = False) -> list[Home]:
+    """Homes of a trial, filtered by state and by one attribute (value None: any answer)."""
+    q = select(Home).where(Home.trial_id == trial.id)
+    if state:
+        if state not in HomeState.all:
+            raise ValidationFailed(f"'{state}' is not a home state.", {"state": "Pick one of the states."})
+        q = q.where(Home.state == state)
+    order = {"code": Home.code, "state": Home.state, "changed": Home.state_changed_at,
+             "created": Home.created_at}.get(sort)
+    if order is None:
+        raise ValidationFailed(f"Sort by one of: {', '.join(SORTS)}.", {"sort": "Unknown sort."})
+    q = q.order_by(order.desc() if descending else order.asc(), Home.code)
+    homes = list(session.scalars(q))
+    if attribute:
+        # Attributes are a JSON column; matching in Python keeps one query for both backends.
+        target = quota.Target(0, "", attribute, value, None, None)
+        homes = [h for h in homes if quota.matches(target, h.attributes or {})]
+    return homes
+
+
+def state_counts(session: Session, trial: Trial) -> dict[str, int]:
+    rows = session.execute(select(Home.state, func.count(Home.id)).where(Home.trial_id == trial.id)
+                           .group_by(Home.state))
+    counts = dict.fromkeys(HomeState.all, 0)
+    counts.update({s: int(n) for s, n in rows})
+    return counts
+
+
+def timeline_of(session: Session, home: Home) -> list[tuple[HomeStateChange, User | None]]:
+    rows = session.execute(select(HomeStateChange, User).outerjoin(User, User.id == HomeStateChange.by_id)
+                           .where(HomeStateChange.home_id == home.id)
+                           .order_by(HomeStateChange.at, HomeStateChange.id))
+    return [(c, u) for c, u in rows]
+
+
+# --- homes and attributes -----------------------------------------------------------------------
+
+def next_home_code(session: Session) -> str:
+    codes = session.scalars(select(Home.code).where(Home.code.like("H-%")))
+    numbers = [int(c[2:]) for c in codes if CODE_PATTERN.match(c)]
+    return f"H-{(max(numbers, default=0) + 1):04d}"
+
+
+def _check_attributes(session: Session, trial: Trial, values: Mapping[str, Any]) -> dict[str, Any]:
+    clean, errors = catalogue.validate_attributes(catalogue.list_catalogue(session, trial), values)
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
+    return clean
+
+
+def create_home(session: Session, trial: Trial, *, attributes: Mapping[str, Any] | None = None,
+                code: str | None = None, actor: Actor = "cli", at: dt.datetime | None = None,
+                note: str | None = None) -> Home:
+    """A new candidate home with a generated code (or the given one), its first timeline entry."""
+    clean = _check_attributes(session, trial, attributes or {})
+    at = _utc(at, "at") if at else utcnow()
+    if code is not None:
+        code = code.strip().upper()
+        if not CODE_PATTERN.match(code):
+            raise ValidationFailed(f"Home code '{code}' must read H- and 4 to 6 digits, e.g. H-0007.",
+                                   {"code": "Codes read H- and 4 to 6 digits, e.g. H-0007."})
+        if find_home(session, code) is not None:
+            raise Conflict(f"Home code {code} is already taken.", code="home_exists")
+    for _attempt in range(5):
+        home = Home(trial_id=trial.id, code=code or next_home_code(session), state=HomeState.candidate,
+                    state_changed_at=at, attributes=clean, created_at=at)
+        try:
+            with session.begin_nested():
+                session.add(home)
+                session.flush()
+            break
+        except IntegrityError:
+            # A simultaneous creation took the same code.
+            if code is not None:
+                raise Conflict(f"Home code {code} is already taken.", code="home_exists") from None
+    else:  # pragma: no cover - five collisions in a row
+        raise Conflict("Could not pick a free home code; try again.", code="home_exists")
+    session.add(HomeStateChange(home_id=home.id, from_state=None, to_state=HomeState.candidate, at=at,
+                                by_id=_by_id(actor), note=_note(note)))
+    session.flush()
+    return home
+
+
+def _note(note: str | None) -> str | None:
+    note = (note or "").strip()
+    if len(note) > 2000:
+        raise ValidationFailed("A note is at most 2000 characters.", {"note": "At most 2000 characters."})
+    return note or None
+
+
+def update_attributes(session: Session, home: Home, values: Mapping[str, Any], *, actor: Actor = "cli",
+                      merge: bool = False) -> Home:
+    """Replace the home's answers (``merge``: change only the given keys; None removes one)."""
+    _refuse_if_erased(home, "change its attributes")
+    trial = trial_of(session, home)
+    if merge:
+        given = {k: v for k, v in values.items() if v is not None}
+        clean = _check_attributes(session, trial, given)
+        merged = {k: v for k, v in (home.attributes or {}).items() if k not in values}
+        merged.update(clean)
+        home.attributes = merged
+    else:
+        home.attributes = _check_attributes(session, trial, values)
+    session.flush()
+    return home
+
+
+def _refuse_if_erased(home: Home, what: str) -> None:
+    if home.erased_at is not None:
+        raise Conflict(f"{home.code} was withdrawn and erased; it cannot {what}.", code="home_erased")
+
+
+# --- lifecycle ----------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class TransitionResult:
+    home: Home
+    change: HomeStateChange
+    warnings: tuple[str, ...]
+    closed: tuple[Installation, ...]  # installations closed because the home left the pilot
+
+
+def _has_device_at(session: Session, home: Home, at: dt.datetime) -> bool:
+    return session.scalar(select(Installation.id).where(
+        Installation.home_id == home.id, Installation.installed_at <= at,
+        Installation.removed_at.is_(None) | (Installation.removed_at > at)).limit(1)) is not None
+
+
+def transition(session: Session, home: Home, to_state: str, *, actor: Actor = "cli",
+               at: dt.datetime | None = None, note: str | None = None, listening: bool = True
+               ) -> TransitionResult:
+    """Move a home to ``to_state`` at ``at`` (default now), recording time, author and note.
+
+    ``listening`` matters on a pause: whether the devices keep listening (their time still counts
+    as monitored). Leaving the pilot (withdrawn, declined) closes open installations at ``at``.
+    Refusals: 409 ``illegal_transition``, ``consent_missing``, ``no_device_installed``.
+    """
+    at = _utc(at, "at") if at else utcnow()
+    if home.erased_at is not None:
+        raise IllegalTransition(f"{home.code} was withdrawn and erased; its state is final.")
+    if at < home.state_changed_at:
+        raise ValidationFailed(
+            f"{home.code} last changed state at {_when(home.state_changed_at)}; a new step cannot be "
+            f"dated before it.", {"at": "This time is before the home's last change of state."})
+    refusal = lifecycle.check(home.code, home.state, to_state,
+                              has_consent=latest_consent(session, home) is not None,
+                              has_device=_has_device_at(session, home, at))
+    if refusal is not None:
+        raise IllegalTransition(refusal.message, code=refusal.code)
+    trial = trial_of(session, home)
+    before = quota_report(session, trial)
+    closed: list[Installation] = []
+    if to_state in lifecycle.ENDED:
+        for inst in session.scalars(select(Installation).where(Installation.home_id == home.id,
+                                                                Installation.removed_at.is_(None))):
+            closed.append(remove_installation(session, inst, removed_at=at, actor=actor))
+    change = HomeStateChange(home_id=home.id, from_state=home.state, to_state=to_state, at=at,
+                             by_id=_by_id(actor), note=_note(note),
+                             listening=bool(listening) if to_state == HomeState.paused else True)
+    session.add(change)
+    home.state = to_state
+    home.state_changed_at = at
+    session.flush()
+    after = quota_report(session, trial)
+    warnings = tuple(
+        f"Quota target '{s.target.label}' now has {s.count} home{'s' if s.count != 1 else ''}, "
+        f"below its minimum of {s.target.min_count}." for s in quota.newly_short(before, after))
+    return TransitionResult(home, change, warnings, tuple(closed))
+
+
+# --- consent and personal data ------------------------------------------------------------------
+
+def record_consent(session: Session, home: Home, *, form_version: str, consented_on: dt.date,
+                   staff_may_listen: bool = True, retention_days: int = 90, actor: Actor = "cli",
+                   mark_consented: bool = False, at: dt.datetime | None = None,
+                   today: dt.date | None = None) -> Consent:
+    """Record the household's signed consent; ``mark_consented`` also moves a screened home on.
+
+    The move is dated ``at``, or by default from the signing date (local midnight) but never before
+    the home's last change of state.
+    """
+    _refuse_if_erased(home, "record a consent")
+    errors: dict[str, str] = {}
+    form_version = (form_version or "").strip()
+    if not 1 <= len(form_version) <= 40:
+        errors["form_version"] = "Give the consent form's version (1 to 40 characters)."
+    today = today or utcnow().date()
+    if consented_on > today + dt.timedelta(days=1):
+        errors["consented_on"] = "The consent date cannot be in the future."
+    if not 1 <= int(retention_days) <= 3650:
+        errors["retention_days"] = "Keep clips for 1 to 3650 days."
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
+    consent = Consent(home_id=home.id, form_version=form_version, consented_on=consented_on,
+                      staff_may_listen=bool(staff_may_listen), retention_days=int(retention_days),
+                      recorded_by_id=_by_id(actor), recorded_at=utcnow())
+    session.add(consent)
+    session.flush()
+    audit.record(session, actor, "consent.record", "home", home.id,
+                 {"code": home.code, "form_version": form_version, "retention_days": int(retention_days),
+                  "staff_may_listen": bool(staff_may_listen)})
+    if mark_consented:
+        if at is None:
+            # The home is consented from the day the form was signed (local midnight), unless its
+            # last change of state came later.
+            tz = zoneinfo.ZoneInfo(trial_of(session, home).timezone)
+            signed = dt.datetime.combine(consented_on, dt.time(0), tzinfo=tz).astimezone(dt.UTC)
+            at = min(max(signed, home.state_changed_at), max(utcnow(), home.state_changed_at))
+        transition(session, home, HomeState.consented, actor=actor, at=at,
+                   note=f"Consent form {form_version} signed {consented_on.isoformat()}.")
+    return consent
+
+
+def check_contact(values: Mapping[str, str]) -> dict[str, str]:
+    clean = {f: (values.get(f) or "").strip() for f in CONTACT_FIELDS}
+    errors: dict[str, str] = {}
+    limits = {"names": 300, "address": 2000, "phone": 60, "email": 254, "access_notes": 2000}
+    for f, n in limits.items():
+        if len(clean[f]) > n:
+            errors[f] = f"At most {n} characters."
+    if clean["email"] and not EMAIL_PATTERN.match(clean["email"]):
+        errors["email"] = "This does not look like an e-mail address."
+    if clean["phone"] and not PHONE_PATTERN.match(clean["phone"]):
+        errors["phone"] = "Use digits, spaces and + ( ) - . / only."
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
+    return clean
+
+
+def set_contact(session: Session, home: Home, *, actor: Actor = "cli", **values: str) -> HomeContact:
+    """Create or replace the household's contact details (personal data; the change is audited)."""
+    _refuse_if_erased(home, "take new contact details")
+    unknown = set(values) - set(CONTACT_FIELDS)
+    if unknown:
+        raise ValidationFailed(f"Unknown contact field(s): {', '.join(sorted(unknown))}.")
+    clean = check_contact(values)
+    contact = session.scalar(select(HomeContact).where(HomeContact.home_id == home.id))
+    changed: list[str]
+    if contact is None:
+        contact = HomeContact(home_id=home.id, **clean)
+        session.add(contact)
+        changed = [f for f in CONTACT_FIELDS if clean[f]]
+    else:
+        changed = [f for f in CONTACT_FIELDS if getattr(contact, f) != clean[f]]
+        for f in CONTACT_FIELDS:
+            setattr(contact, f, clean[f])
+    contact.updated_at = utcnow()
+    session.flush()
+    # The trail names the fields, never their values.
+    audit.record(session, actor, "personal.update", "home", home.id, {"code": home.code, "fields": changed})
+    return contact
+
+
+def view_contact(session: Session, home: Home, *, actor: Actor, via: str) -> HomeContact | None:
+    """The household's contact details for someone allowed to see them; every view is audited."""
+    contact = session.scalar(select(HomeContact).where(HomeContact.home_id == home.id))
+    audit.record(session, actor, "personal.view", "home", home.id,
+                 {"code": home.code, "via": via, "present": contact is not None})
+    return contact
+
+
+def has_contact(session: Session, home: Home) -> bool:
+    return session.scalar(select(HomeContact.id).where(HomeContact.home_id == home.id)) is not None
+
+
+# --- installations ------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class InstallResult:
+    installation: Installation
+    closed: Installation | None  # the device's previous installation, closed by a move
+    reattributed: int             # alerts whose home or installation changed
+
+
+@dataclass(frozen=True)
+class CorrectionResult:
+    installation: Installation
+    reattributed: int
+
+
+def get_installation(session: Session, installation_id: int) -> Installation:
+    inst = session.get(Installation, installation_id)
+    if inst is None:
+        raise NotFound(f"No installation has id {installation_id}.", code="unknown_installation")
+    return inst
+
+
+def list_installations(session: Session, *, home: Home | None = None, device: Device | None = None
+                       ) -> list[Installation]:
+    q = select(Installation).order_by(Installation.installed_at.desc(), Installation.id.desc())
+    if home is not None:
+        q = q.where(Installation.home_id == home.id)
+    if device is not None:
+        q = q.where(Installation.device_id == device.id)
+    return list(session.scalars(q))
+
+
+def current_installation(session: Session, device: Device) -> Installation | None:
+    return session.scalar(select(Installation).where(Installation.device_id == device.id,
+                                                     Installation.removed_at.is_(None)))
+
+
+def _check_room(room: str) -> str:
+    room = (room or "").strip().lower().replace(" ", "_")
+    if room not in ROOMS:
+        raise ValidationFailed(f"The room is one of: {', '.join(r.replace('_', ' ') for r in ROOMS)}.",
+                               {"room": "Pick a room from the list."})
+    return room
+
+
+def _check_no_overlap(session: Session, device: Device, start: dt.datetime, end: dt.datetime | None,
+                      exclude_id: int | None = None) -> None:
+    for other in list_installations(session, device=device):
+        if other.id == exclude_id:
+            continue
+        if timeline.overlaps(start, end, other.installed_at, other.removed_at):
+            until = f"until {_when(other.removed_at)}" if other.removed_at else "with no end yet"
+            raise Conflict(
+                f"Device {device.serial} was in {other.home.code} ({other.room.replace('_', ' ')}) from "
+                f"{_when(other.installed_at)} {until}; a device can be in only one home at a time.",
+                code="installation_overlap")
+
+
+def install_device(session: Session, *, home: Home, device: Device, room: str, installed_at: dt.datetime,
+                   actor: Actor = "cli", move: bool = False) -> InstallResult:
+    """Put a device in a home's room from ``installed_at``; ``move`` first closes its open installation.
+
+    A consented home becomes installed. Refusals: 409 ``consent_missing``, ``illegal_transition``,
+    ``device_installed_elsewhere``, ``installation_overlap``; 422 for a bad room or time.
+    """
+    installed_at = _utc(installed_at, "installed_at")
+    room = _check_room(room)
+    _refuse_if_erased(home, "receive a device")
+    if device.trial_id != home.trial_id:
+        raise Conflict(f"Device {device.serial} belongs to another trial than {home.code}.",
+                       code="device_other_trial")
+    if device.revoked:
+        raise Conflict(f"Device {device.serial} was revoked; it cannot be installed.", code="device_revoked")
+    if latest_consent(session, home) is None:
+        raise IllegalTransition(f"{home.code} has no consent on record; record the household's signed "
+                                "consent before installing a device.", code="consent_missing")
+    if home.state not in lifecycle.MAY_INSTALL:
+        raise IllegalTransition(f"{home.code} is {home.state}; devices go only into consented, installed, "
+                                "active or paused homes.")
+    closed = None
+    current = current_installation(session, device)
+    if current is not None:
+        if not move:
+            raise Conflict(f"Device {device.serial} is installed in {current.home.code} "
+                           f"({current.room.replace('_', ' ')}) since {_when(current.installed_at)}; "
+                           "remove it there first, or move it.", code="device_installed_elsewhere")
+        if installed_at <= current.installed_at:
+            raise ValidationFailed(
+                f"A move must happen after the device's current installation began "
+                f"({_when(current.installed_at)}).", {"installed_at": "Before the current installation began."})
+        closed = _close(session, current, installed_at, actor)
+    _check_no_overlap(session, device, installed_at, None)
+    inst = Installation(device_id=device.id, home_id=home.id, room=room, installed_at=installed_at)
+    session.add(inst)
+    session.flush()
+    audit.record(session, actor, "installation.add", "installation", inst.id,
+                 {"device": device.serial, "home": home.code, "room": room,
+                  "installed_at": installed_at.isoformat(), "moved_from": closed.home.code if closed else None})
+    if home.state == HomeState.consented:
+        transition(session, home, HomeState.installed, actor=actor,
+                   at=max(installed_at, home.state_changed_at),
+                   note=f"Device {device.serial} installed ({room.replace('_', ' ')}).")
+    return InstallResult(inst, closed, devices_service.reattribute_alerts(session, device.id))
+
+
+def _close(session: Session, inst: Installation, removed_at: dt.datetime, actor: Actor) -> Installation:
+    if removed_at <= inst.installed_at:
+        raise ValidationFailed(f"The removal must come after the installation began "
+                               f"({_when(inst.installed_at)}).",
+                               {"removed_at": "Before the installation began."})
+    inst.removed_at = removed_at
+    session.flush()
+    audit.record(session, actor, "installation.remove", "installation", inst.id,
+                 {"home": inst.home.code, "removed_at": removed_at.isoformat()})
+    return inst
+
+
+def remove_installation(session: Session, inst: Installation, *, removed_at: dt.datetime,
+                        actor: Actor = "cli") -> Installation:
+    """Close an open installation at ``removed_at``; alerts after it become unassigned."""
+    removed_at = _utc(removed_at, "removed_at")
+    if inst.removed_at is not None:
+        raise Conflict(f"This installation already ended at {_when(inst.removed_at)}; correct its dates "
+                       "instead.", code="installation_closed")
+    _close(session, inst, removed_at, actor)
+    devices_service.reattribute_alerts(session, inst.device_id)
+    return inst
+
+
+def move_device(session: Session, *, device: Device, to_home: Home, room: str, at: dt.datetime,
+                actor: Actor = "cli") -> InstallResult:
+    """Close the device's open installation at ``at`` and open one in ``to_home``."""
+    return install_device(session, home=to_home, device=device, room=room, installed_at=at, actor=actor,
+                          move=True)
+
+
+def correct_installation(session: Session, inst: Installation, *, installed_at: dt.datetime,
+                         removed_at: dt.datetime | None, room: str, actor: Actor = "cli") -> CorrectionResult:
+    """Fix an installation's dates or room; the device's alerts are re-attributed (audited)."""
+    installed_at = _utc(installed_at, "installed_at")
+    removed_at = _utc(removed_at, "removed_at") if removed_at is not None else None
+    room = _check_room(room)
+    if removed_at is not None and removed_at <= installed_at:
+        raise ValidationFailed("The removal must come after the installation began.",
+                               {"removed_at": "Must be after the installation time."})
+    device = session.get(Device, inst.device_id)
+    assert device is not None
+    _check_no_overlap(session, device, installed_at, removed_at, exclude_id=inst.id)
+    before = {"installed_at": inst.installed_at.isoformat(), "room": inst.room,
+              "removed_at": inst.removed_at.isoformat() if inst.removed_at else None}
+    inst.installed_at, inst.removed_at, inst.room = installed_at, removed_at, room
+    session.flush()
+    changed = devices_service.reattribute_alerts(session, device.id)
+    audit.record(session, actor, "installation.correct", "installation", inst.id,
+                 {"device": device.serial, "home": inst.home.code, "before": before,
+                  "after": {"installed_at": installed_at.isoformat(), "room": room,
+                            "removed_at": removed_at.isoformat() if removed_at else None},
+                  "alerts_reattributed": changed})
+    return CorrectionResult(inst, changed)
+
+
+# --- staged test events -------------------------------------------------------------------------
+
+MAX_STAGED = dt.timedelta(hours=6)
+
+
+def log_staged_event(session: Session, *, home: Home, sound_class: str, started_at: dt.datetime,
+                     ended_at: dt.datetime, source: str, level_db: float | None = None,
+                     actor: Actor = "cli") -> StagedEvent:
+    """Record a test sound played on purpose in a home (analytics matches alerts against it)."""
+    trial = trial_of(session, home)
+    errors: dict[str, str] = {}
+    started_at, ended_at = _utc(started_at, "started_at"), _utc(ended_at, "ended_at")
+    source = (source or "").strip()
+    if sound_class not in trial.sound_classes:
+        errors["sound_class"] = f"Pick one of the trial's sound classes: {', '.join(trial.sound_classes)}."
+    if ended_at <= started_at:
+        errors["ended_at"] = "The end must come after the start."
+    elif ended_at - started_at > MAX_STAGED:
+        errors["ended_at"] = "A staged event lasts at most 6 hours; log longer tests as several events."
+    if not source or len(source) > 500:
+        errors["source"] = "Say what was played and where (1 to 500 characters)."
+    if level_db is not None and not -20.0 <= float(level_db) <= 160.0:
+        errors["level_db"] = "A sound level is between -20 and 160 dB."
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
+    in_place = session.scalar(select(Installation.id).where(
+        Installation.home_id == home.id, Installation.installed_at < ended_at,
+        Installation.removed_at.is_(None) | (Installation.removed_at > started_at)).limit(1))
+    if in_place is None:
+        raise ValidationFailed(f"No device was installed in {home.code} at that time, so nothing could "
+                               "hear the test.", {"started_at": "No device was installed then."})
+    event = StagedEvent(trial_id=trial.id, home_id=home.id, sound_class=sound_class, started_at=started_at,
+                        ended_at=ended_at, source=source,
+                        level_db=float(level_db) if level_db is not None else None,
+                        created_by_id=_by_id(actor))
+    session.add(event)
+    session.flush()
+    return event
+
+
+def list_staged_events(session: Session, *, trial: Trial | None = None, home: Home | None = None
+                       ) -> list[StagedEvent]:
+    q = select(StagedEvent).order_by(StagedEvent.started_at.desc(), StagedEvent.id.desc())
+    if trial is not None:
+        q = q.where(StagedEvent.trial_id == trial.id)
+    if home is not None:
+        q = q.where(StagedEvent.home_id == home.id)
+    return list(session.scalars(q))
+
+
+def get_staged_event(session: Session, event_id: int) -> StagedEvent:
+    event = session.get(StagedEvent, event_id)
+    if event is None:
+        raise NotFound(f"No staged event has id {event_id}.", code="unknown_staged_event")
+    return event
+
+
+def delete_staged_event(session: Session, event: StagedEvent, *, actor: Actor = "cli") -> None:
+    audit.record(session, actor, "staged_event.delete", "staged_event", event.id,
+                 {"home_id": event.home_id, "sound_class": event.sound_class,
+                  "started_at": event.started_at.isoformat()})
+    session.delete(event)
+    session.flush()
+
+
+# --- quota --------------------------------------------------------------------------------------
+
+def list_targets(session: Session, trial: Trial) -> list[QuotaTarget]:
+    return list(session.scalars(select(QuotaTarget).where(QuotaTarget.trial_id == trial.id)
+                                .order_by(QuotaTarget.position, QuotaTarget.id)))
+
+
+def _target_label(defn: AttributeDefinition | None, value: Any) -> str:
+    if defn is None:
+        return "All homes"
+    if value is None:
+        return f"{defn.label}: any answer"
+    return f"{defn.label}: {catalogue.format_value(value)}"
+
+
+def add_target(session: Session, trial: Trial, *, attribute_key: str | None, value: Any = None,
+               min_count: int | None = None, max_count: int | None = None, label: str = "",
+               actor: Actor = "cli") -> QuotaTarget:
+    """A quota target: at least ``min_count`` / at most ``max_count`` homes with attribute = value."""
+    errors: dict[str, str] = {}
+    defn = None
+    parsed = None
+    if attribute_key:
+        defn = session.scalar(select(AttributeDefinition).where(AttributeDefinition.trial_id == trial.id,
+                                                               AttributeDefinition.key == attribute_key))
+        if defn is None:
+            errors["attribute_key"] = f"'{attribute_key}' is not an attribute of trial {trial.code}."
+        else:
+            try:
+                parsed = catalogue.parse_value(defn, value)
+            except ValueError as exc:
+                errors["value"] = str(exc)
+    for name, n in (("min_count", min_count), ("max_count", max_count)):
+        if n is not None and not 0 <= n <= 100000:
+            errors[name] = "A count is a whole number from 0."
+    if min_count is None and max_count is None:
+        errors["min_count"] = "Give a minimum, a maximum or both."
+    elif min_count is not None and max_count is not None and min_count > max_count:
+        errors["max_count"] = "The maximum cannot be below the minimum."
+    label = (label or "").strip()
+    if len(label) > 200:
+        errors["label"] = "At most 200 characters."
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
+    pos = (session.scalar(select(func.max(QuotaTarget.position)).where(QuotaTarget.trial_id == trial.id))
+           or 0) + 1
+    target = QuotaTarget(trial_id=trial.id, label=label or _target_label(defn, parsed),
+                         attribute_key=attribute_key or None, value=parsed, min_count=min_count,
+                         max_count=max_count, position=pos)
+    session.add(target)
+    session.flush()
+    audit.record(session, actor, "quota.target_add", "quota_target", target.id,
+                 {"trial": trial.code, "label": target.label, "min": min_count, "max": max_count})
+    return target
+
+
+def delete_target(session: Session, trial: Trial, target_id: int, *, actor: Actor = "cli") -> None:
+    target = session.get(QuotaTarget, target_id)
+    if target is None or target.trial_id != trial.id:
+        raise NotFound(f"Trial {trial.code} has no quota target {target_id}.", code="unknown_target")
+    audit.record(session, actor, "quota.target_delete", "quota_target", target.id, {"label": target.label})
+    session.execute(delete(QuotaTarget).where(QuotaTarget.id == target_id))
+    session.flush()
+
+
+def set_counting_states(session: Session, trial: Trial, states: Iterable[str], *, actor: Actor = "cli"
+                        ) -> list[str]:
+    chosen = [s for s in HomeState.all if s in set(states)]
+    bad = set(states) - set(HomeState.all)
+    if bad or not chosen:
+        raise ValidationFailed("Pick at least one home state that counts toward the quota.",
+                               {"states": "Pick at least one state."})
+    trial.quota_states = chosen
+    session.flush()
+    audit.record(session, actor, "quota.states", "trial", trial.id, {"states": chosen})
+    return chosen
+
+
+def home_facts(session: Session, trial: Trial) -> list[quota.HomeFacts]:
+    rows = session.execute(select(Home.code, Home.state, Home.attributes).where(Home.trial_id == trial.id))
+    return [quota.HomeFacts(c, s, a or {}) for c, s, a in rows]
+
+
+def quota_targets(session: Session, trial: Trial) -> list[quota.Target]:
+    return [quota.Target(t.id, t.label, t.attribute_key, t.value, t.min_count, t.max_count)
+            for t in list_targets(session, trial)]
+
+
+def quota_report(session: Session, trial: Trial) -> quota.QuotaReport:
+    return quota.evaluate(quota_targets(session, trial), home_facts(session, trial), trial.quota_states)
+
+
+def departures(session: Session, trial: Trial) -> list[tuple[str, dt.datetime, dict[str, Any]]]:
+    """Homes that left the counted states by withdrawal or pause and are still out: (code, at, attributes)."""
+    counting = set(trial.quota_states)
+    rows = session.execute(
+        select(Home.code, HomeStateChange.at, Home.attributes, HomeStateChange.from_state, Home.state)
+        .join(Home, Home.id == HomeStateChange.home_id)
+        .where(Home.trial_id == trial.id, HomeStateChange.to_state.in_([HomeState.withdrawn, HomeState.paused]))
+        .order_by(HomeStateChange.at.desc()))
+    out = []
+    seen = set()
+    for code, at, attrs, from_state, now_state in rows:
+        if code in seen or from_state not in counting or now_state in counting:
+            continue
+        seen.add(code)
+        out.append((code, at, attrs or {}))
+    return out
+
+
+def get_trial_or_default(session: Session, code: str | None) -> Trial:
+    from server.trials import service as trials_service
+
+    if code:
+        return trials_service.get_trial(session, code)
+    trials = trials_service.list_trials(session)
+    if not trials:
+        raise NotFound("There is no trial yet; add one with `trialhouse trial add`.", code="unknown_trial")
+    return trials[0]
+
+
+def home_count(session: Session, trial: Trial) -> int:
+    return session.scalar(select(func.count(Home.id)).where(Home.trial_id == trial.id)) or 0
