@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import hmac
 import secrets
-from collections.abc import Callable, Iterator
+from collections.abc import AsyncIterator, Callable
 from typing import Annotated
 
 from fastapi import Depends, Request
 from sqlalchemy.orm import Session
+from starlette.concurrency import run_in_threadpool
 
 from server.auth import service as auth_service
 from server.auth.models import User
@@ -21,22 +22,30 @@ from server.tokens import STAFF_PREFIX
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 
 
-def get_session(request: Request) -> Iterator[Session]:
-    """One session per request. It only opens and closes: handlers commit before they return."""
+async def get_session(request: Request) -> AsyncIterator[Session]:
+    """One session per request. It only opens and closes: handlers commit before they return.
+
+    Opening a Session touches no database, and closing one that is not inside a transaction only
+    drops references, so both stay on the event loop (a sync dependency would cost two thread-pool
+    hops per request); a session left mid-transaction (an error path) rolls back in a worker thread.
+    """
     state = request.app.state
     factory = state.session_factory if request.method in SAFE_METHODS else state.writer_session_factory
     session = factory()
     try:
         yield session
     finally:
-        session.close()
+        if session.in_transaction():
+            await run_in_threadpool(session.close)
+        else:
+            session.close()
 
 
-def get_settings(request: Request) -> Settings:
-    return request.app.state.settings
+async def get_settings(request: Request) -> Settings:
+    return request.app.state.settings  # async: nothing blocks, so no thread-pool hop
 
 
-def get_clip_store(request: Request) -> ClipStore:
+async def get_clip_store(request: Request) -> ClipStore:
     return request.app.state.clip_store
 
 

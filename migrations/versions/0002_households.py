@@ -3,6 +3,7 @@
 Revision ID: 0002
 Revises: 0001
 """
+
 from collections.abc import Sequence
 
 import sqlalchemy as sa

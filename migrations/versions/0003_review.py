@@ -1,4 +1,4 @@
-"""review: schema changes owned by the review domain (empty until it needs one)
+"""review: index on the alert's claim holder, for the review queue
 
 Revision ID: 0003
 Revises: 0002
@@ -6,7 +6,7 @@ Revises: 0002
 from collections.abc import Sequence
 
 import sqlalchemy as sa  # noqa: F401
-from alembic import op  # noqa: F401
+from alembic import op
 
 import server.db  # noqa: F401
 
@@ -17,8 +17,10 @@ depends_on: str | Sequence[str] | None = None
 
 
 def upgrade() -> None:
-    pass
+    with op.batch_alter_table("alert", schema=None) as batch_op:
+        batch_op.create_index("ix_alert_claimed_by_id", ["claimed_by_id"], unique=False)
 
 
 def downgrade() -> None:
-    pass
+    with op.batch_alter_table("alert", schema=None) as batch_op:
+        batch_op.drop_index("ix_alert_claimed_by_id")

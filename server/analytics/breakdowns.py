@@ -50,8 +50,11 @@ def rates_by(counts: pd.DataFrame, key: str, *, confidence_level: float = 0.95) 
     """
     g = counts.groupby(key, as_index=False, dropna=False)[["false_alarms", "home_months"]].sum()
     g = g.sort_values(["home_months", key], ascending=[False, True], kind="mergesort").reset_index(drop=True)
-    r = rates.poisson_rates(g["false_alarms"].to_numpy(), g["home_months"].to_numpy(dtype=np.float64),
-                            confidence_level=confidence_level)
+    r = rates.poisson_rates(
+        g["false_alarms"].to_numpy(),
+        g["home_months"].to_numpy(dtype=np.float64),
+        confidence_level=confidence_level,
+    )
     g["false_alarms"] = r["events"].to_numpy()
     g["rate"], g["low"], g["high"] = r["estimate"].to_numpy(), r["low"].to_numpy(), r["high"].to_numpy()
     g["reason"] = pd.Series(r["reason"].to_numpy(), dtype=object)
@@ -78,9 +81,17 @@ def heterogeneity(
     k = len(t)
     method = "monte-carlo exact conditional chi-square"
     if k < 2 or x.sum() == 0:
-        return Heterogeneity(groups=k, statistic=math.nan, df=max(k - 1, 0), p_value=math.nan, draws=0,
-                             spread=math.nan, flagged=False, method=method,
-                             reason=TOO_FEW_GROUPS if k < 2 else rates.NO_EVENTS)
+        return Heterogeneity(
+            groups=k,
+            statistic=math.nan,
+            df=max(k - 1, 0),
+            p_value=math.nan,
+            draws=0,
+            spread=math.nan,
+            flagged=False,
+            method=method,
+            reason=TOO_FEW_GROUPS if k < 2 else rates.NO_EVENTS,
+        )
     n = int(x.sum())
     p = t / t.sum()
     expected = n * p
@@ -92,18 +103,31 @@ def heterogeneity(
     p_value = (1 + hits) / (1 + draws)
     r = x / t
     spread = math.inf if r.min() == 0 else float(r.max() / r.min())
-    return Heterogeneity(groups=k, statistic=observed, df=k - 1, p_value=p_value, draws=draws, spread=spread,
-                         flagged=bool(p_value < SHARP_P and spread >= SHARP_SPREAD), method=method)
+    return Heterogeneity(
+        groups=k,
+        statistic=observed,
+        df=k - 1,
+        p_value=p_value,
+        draws=draws,
+        spread=spread,
+        flagged=bool(p_value < SHARP_P and spread >= SHARP_SPREAD),
+        method=method,
+    )
 
 
 def firmware_ratio(
-    table: pd.DataFrame, version_a: str, version_b: str, *, key: str = "firmware",
+    table: pd.DataFrame,
+    version_a: str,
+    version_b: str,
+    *,
+    key: str = "firmware",
     confidence_level: float = 0.95,
 ) -> rates.RatioEstimate:
     """Rate ratio (a over b) of two firmware versions from a `rates_by` table, exact conditional.
 
     A version missing from the table counts as no events in no monitored time.
     """
+
     def pick(v: str) -> tuple[int, float]:
         row = table[table[key] == v]
         return (int(row["false_alarms"].sum()), float(row["home_months"].sum()))

@@ -41,9 +41,13 @@ def home_intervals(
     home_id, started_at, ended_at for the monitored states (adjacent stretches merged).
     """
     if changes.empty:
-        return pd.DataFrame({"home_id": pd.Series(dtype=np.int64),
-                             "started_at": pd.Series(dtype="datetime64[ns, UTC]"),
-                             "ended_at": pd.Series(dtype="datetime64[ns, UTC]")})
+        return pd.DataFrame(
+            {
+                "home_id": pd.Series(dtype=np.int64),
+                "started_at": pd.Series(dtype="datetime64[ns, UTC]"),
+                "ended_at": pd.Series(dtype="datetime64[ns, UTC]"),
+            }
+        )
     c = as_utc(changes, "at").sort_values(["home_id", "at"], kind="mergesort").reset_index(drop=True)
     nxt = c.groupby("home_id")["at"].shift(-1)
     c["ended_at"] = nxt.fillna(pd.Timestamp(until))
@@ -79,7 +83,8 @@ def monitored_windows(
     """
     start_ts, end_ts = pd.Timestamp(start).tz_convert("UTC"), pd.Timestamp(end).tz_convert("UTC")
     inst = as_utc(installations, "installed_at", "removed_at").sort_values(
-        ["device_id", "installed_at", "installation_id"], kind="mergesort")
+        ["device_id", "installed_at", "installation_id"], kind="mergesort"
+    )
     nxt = inst.groupby("device_id")["installed_at"].shift(-1)
     removed = inst["removed_at"].fillna(end_ts)
     inst["until"] = removed.where(nxt.isna() | (removed <= nxt), nxt)
@@ -112,25 +117,53 @@ def spread_over_buckets(
     """
     p = pieces
     same = p[p["first_bucket"] == p["last_bucket"]]
-    parts = [pd.DataFrame({"window_id": same["window_id"].to_numpy(), "bucket": same["first_bucket"].to_numpy(),
-                           "seconds": (same["sum_end_s"] - same["sum_start_s"]).to_numpy(dtype=np.float64)})]
+    parts = [
+        pd.DataFrame(
+            {
+                "window_id": same["window_id"].to_numpy(),
+                "bucket": same["first_bucket"].to_numpy(),
+                "seconds": (same["sum_end_s"] - same["sum_start_s"]).to_numpy(dtype=np.float64),
+            }
+        )
+    ]
     span = p[p["first_bucket"] < p["last_bucket"]]
     if len(span):
         first = span["first_bucket"].to_numpy(dtype=np.int64)
         last = span["last_bucket"].to_numpy(dtype=np.int64)
         n = span["pieces"].to_numpy(dtype=np.float64)
         wid = span["window_id"].to_numpy()
-        parts.append(pd.DataFrame({"window_id": wid, "bucket": first,
-                                   "seconds": n * bucket_start_s(first + 1) - span["sum_start_s"].to_numpy()}))
-        parts.append(pd.DataFrame({"window_id": wid, "bucket": last,
-                                   "seconds": span["sum_end_s"].to_numpy() - n * bucket_start_s(last)}))
+        parts.append(
+            pd.DataFrame(
+                {
+                    "window_id": wid,
+                    "bucket": first,
+                    "seconds": n * bucket_start_s(first + 1) - span["sum_start_s"].to_numpy(),
+                }
+            )
+        )
+        parts.append(
+            pd.DataFrame(
+                {
+                    "window_id": wid,
+                    "bucket": last,
+                    "seconds": span["sum_end_s"].to_numpy() - n * bucket_start_s(last),
+                }
+            )
+        )
         gaps = last - first - 1
         if gaps.sum() > 0:
             rep = np.repeat(np.arange(len(span)), gaps)
             offs = np.concatenate([np.arange(1, g + 1) for g in gaps if g > 0])
             mid = first[rep] + offs
-            parts.append(pd.DataFrame({"window_id": wid[rep], "bucket": mid,
-                                       "seconds": n[rep] * (bucket_start_s(mid + 1) - bucket_start_s(mid))}))
+            parts.append(
+                pd.DataFrame(
+                    {
+                        "window_id": wid[rep],
+                        "bucket": mid,
+                        "seconds": n[rep] * (bucket_start_s(mid + 1) - bucket_start_s(mid)),
+                    }
+                )
+            )
     out = pd.concat(parts, ignore_index=True)
     out = out.groupby(["window_id", "bucket"], as_index=False, sort=True)["seconds"].sum()
     out["bucket"] = out["bucket"].astype(np.int64)
@@ -160,8 +193,11 @@ def monitored_time(
     data = by_bucket if buckets is None else by_bucket[by_bucket["bucket"].isin(list(buckets))]
     merged = data.merge(windows, on="window_id")
     keys = list(by)
-    out = merged.groupby(keys, as_index=False, dropna=False)["seconds"].sum() if keys else \
-        pd.DataFrame({"seconds": [float(merged["seconds"].sum())]})
+    out = (
+        merged.groupby(keys, as_index=False, dropna=False)["seconds"].sum()
+        if keys
+        else pd.DataFrame({"seconds": [float(merged["seconds"].sum())]})
+    )
     if keys and "bucket" not in keys:
         every = windows[keys].drop_duplicates()
         out = every.merge(out, on=keys, how="left").fillna({"seconds": 0.0})

@@ -23,12 +23,13 @@ Frames of `PilotData` (all times aware UTC; epoch values are UTC seconds):
 - staged_alerts: one row per alert that may detect a staged event, with alert_id, device_id,
   sound_class, detected_at (clock skew corrected), score, window_id, counted (bool), period,
   week_index, outcome, cause, resemblance, score_milli.
+
+A missing cause or resemblance grade is "" in every frame.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -103,7 +104,8 @@ def _minus_seconds(dialect: str, col: Any, seconds: Any) -> Expr:
     """A UTCDateTime column moved back by `seconds` (float), comparable with other such columns."""
     if dialect == "sqlite":
         return sa.func.strftime("%Y-%m-%d %H:%M:%f", col, sa.func.printf("%+.3f seconds", -seconds))
-    return col - sa.func.make_interval(0, 0, 0, 0, 0, 0, seconds)
+    shifted: Expr = col - sa.func.make_interval(0, 0, 0, 0, 0, 0, seconds)
+    return shifted
 
 
 # ---------------------------------------------------------------------------------------
@@ -115,7 +117,9 @@ def _local_week(dialect: str, epoch: Any, steps: list[trend.OffsetStep]) -> Expr
     if len(steps) == 1:
         local = epoch + steps[0].offset_s
     else:
-        whens = [(epoch < nxt.from_s, epoch + cur.offset_s) for cur, nxt in zip(steps, steps[1:], strict=False)]
+        whens = [
+            (epoch < nxt.from_s, epoch + cur.offset_s) for cur, nxt in zip(steps, steps[1:], strict=False)
+        ]
         local = sa.case(*whens, else_=epoch + steps[-1].offset_s)
     return _floor_int(dialect, (local + trend.MONDAY_SHIFT_S) / float(trend.WEEK_S))
 
@@ -126,17 +130,25 @@ def _windows_cte(windows: pd.DataFrame) -> Any:
     Every value is an int or float we computed, rendered with repr(), so nothing from users is
     spliced into the SQL.
     """
-    rows = [(int(r.window_id), int(r.device_id), float(r.ws), float(r.we)) for r in
-            windows.assign(ws=trend.epoch_s(windows["started_at"]),
-                           we=trend.epoch_s(windows["ended_at"])).itertuples()]
+    rows = [
+        (int(r.window_id), int(r.device_id), float(r.ws), float(r.we))
+        for r in windows.assign(
+            ws=trend.epoch_s(windows["started_at"]), we=trend.epoch_s(windows["ended_at"])
+        ).itertuples()
+    ]
     if not rows:
         rows = [(-1, -1, 0.0, 0.0)]  # matches no device; VALUES cannot be empty
     values = ", ".join(f"({w}, {d}, {a!r}, {b!r})" for w, d, a, b in rows)
     text = sa.text(
         "SELECT v.column1 AS window_id, v.column2 AS device_id, CAST(v.column3 AS FLOAT) AS ws, "
-        f"CAST(v.column4 AS FLOAT) AS we FROM (VALUES {values}) AS v")
-    return text.columns(sa.column("window_id", sa.Integer), sa.column("device_id", sa.Integer),
-                        sa.column("ws", sa.Float), sa.column("we", sa.Float)).cte("w")
+        f"CAST(v.column4 AS FLOAT) AS we FROM (VALUES {values}) AS v"
+    )
+    return text.columns(
+        sa.column("window_id", sa.Integer),
+        sa.column("device_id", sa.Integer),
+        sa.column("ws", sa.Float),
+        sa.column("we", sa.Float),
+    ).cte("w")
 
 
 def _frame(result: sa.Result[Any], columns: list[str]) -> pd.DataFrame:
@@ -156,37 +168,84 @@ def trial_window(trial: Trial, week: trend.Week, now: dt.datetime) -> tuple[dt.d
     return start_at, max(end, start_at)
 
 
-def load_pilot(session: Session, trial: Trial, week: trend.Week, *, now: dt.datetime,
-               staged_tolerance_s: float) -> PilotData:
+def load_pilot(
+    session: Session, trial: Trial, week: trend.Week, *, now: dt.datetime, staged_tolerance_s: float
+) -> PilotData:
     """Everything the weekly summary needs for `trial`, from its start to the end of `week`."""
     dialect = session.get_bind().dialect.name
     start, end = trial_window(trial, week, now)
     tz = trial.timezone
-    homes = _frame(session.execute(sa.select(Home.id, Home.code, Home.state).where(Home.trial_id == trial.id)
-                                   .order_by(Home.code)), ["home_id", "home_code", "state"])
-    devices = _frame(session.execute(
-        sa.select(Device.id, Device.serial, Device.hardware_model, sa.func.coalesce(Device.firmware, "unknown"),
-                  Device.last_seen_at, Device.clock_skew_s).where(Device.trial_id == trial.id)),
-        ["device_id", "serial", "hardware_model", "firmware", "last_seen_at", "clock_skew_s"])
-    installations = trend.as_utc(_frame(session.execute(
-        sa.select(Installation.id, Installation.device_id, Installation.home_id, Installation.room,
-                  Installation.installed_at, Installation.removed_at)
-        .join(Home, Home.id == Installation.home_id).where(Home.trial_id == trial.id)),
-        ["installation_id", "device_id", "home_id", "room", "installed_at", "removed_at"]),
-        "installed_at", "removed_at")
-    changes = _frame(session.execute(
-        sa.select(HomeStateChange.home_id, HomeStateChange.at, HomeStateChange.to_state,
-                  HomeStateChange.listening, HomeStateChange.id)
-        .join(Home, Home.id == HomeStateChange.home_id).where(Home.trial_id == trial.id)
-        .order_by(HomeStateChange.home_id, HomeStateChange.at, HomeStateChange.id)),
-        ["home_id", "at", "to_state", "listening", "id"])
+    homes = _frame(
+        session.execute(
+            sa.select(Home.id, Home.code, Home.state).where(Home.trial_id == trial.id).order_by(Home.code)
+        ),
+        ["home_id", "home_code", "state"],
+    )
+    devices = _frame(
+        session.execute(
+            sa.select(
+                Device.id,
+                Device.serial,
+                Device.hardware_model,
+                sa.func.coalesce(Device.firmware, "unknown"),
+                Device.last_seen_at,
+                Device.clock_skew_s,
+            ).where(Device.trial_id == trial.id)
+        ),
+        ["device_id", "serial", "hardware_model", "firmware", "last_seen_at", "clock_skew_s"],
+    )
+    devices["clock_skew_s"] = pd.to_numeric(devices["clock_skew_s"], errors="coerce").astype(np.float64)
+    installations = trend.as_utc(
+        _frame(
+            session.execute(
+                sa.select(
+                    Installation.id,
+                    Installation.device_id,
+                    Installation.home_id,
+                    Installation.room,
+                    Installation.installed_at,
+                    Installation.removed_at,
+                )
+                .join(Home, Home.id == Installation.home_id)
+                .where(Home.trial_id == trial.id)
+            ),
+            ["installation_id", "device_id", "home_id", "room", "installed_at", "removed_at"],
+        ),
+        "installed_at",
+        "removed_at",
+    )
+    changes = _frame(
+        session.execute(
+            sa.select(
+                HomeStateChange.home_id,
+                HomeStateChange.at,
+                HomeStateChange.to_state,
+                HomeStateChange.listening,
+                HomeStateChange.id,
+            )
+            .join(Home, Home.id == HomeStateChange.home_id)
+            .where(Home.trial_id == trial.id)
+            .order_by(HomeStateChange.home_id, HomeStateChange.at, HomeStateChange.id)
+        ),
+        ["home_id", "at", "to_state", "listening", "id"],
+    )
     # A home without a recorded history has been in its current state since it was created.
     silent = homes[~homes["home_id"].isin(changes["home_id"])]
     if len(silent):
-        created = dict(session.execute(sa.select(Home.id, Home.created_at)
-                                       .where(Home.id.in_(silent["home_id"].tolist()))).all())
-        extra = pd.DataFrame({"home_id": silent["home_id"], "at": silent["home_id"].map(created),
-                              "to_state": silent["state"], "listening": True, "id": 0})
+        created = dict(
+            session.execute(
+                sa.select(Home.id, Home.created_at).where(Home.id.in_(silent["home_id"].tolist()))
+            ).all()
+        )
+        extra = pd.DataFrame(
+            {
+                "home_id": silent["home_id"],
+                "at": silent["home_id"].map(created),
+                "to_state": silent["state"],
+                "listening": True,
+                "id": 0,
+            }
+        )
         changes = pd.concat([changes, extra], ignore_index=True) if len(changes) else extra
     intervals = exposure.home_intervals(changes, until=end, monitored_states=HomeState.monitored)
     windows = exposure.monitored_windows(installations, intervals, start=start, end=end)
@@ -196,50 +255,119 @@ def load_pilot(session: Session, trial: Trial, week: trend.Week, *, now: dt.date
     w = _windows_cte(windows)
     monitored = _monitored(session, dialect, w, steps, tz)
     parts = _alert_parts(session, dialect, trial, w, steps, start, end, week)
-    staged_events = trend.as_utc(_frame(session.execute(
-        sa.select(StagedEvent.id, StagedEvent.home_id, StagedEvent.sound_class, StagedEvent.started_at,
-                  StagedEvent.ended_at, StagedEvent.source)
-        .where(StagedEvent.trial_id == trial.id, StagedEvent.started_at < end, StagedEvent.ended_at > start)
-        .order_by(StagedEvent.started_at, StagedEvent.id)),
-        ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]),
-        "started_at", "ended_at")
-    staged_alerts = _staged_alerts(session, dialect, trial, w, steps, start, end, week,
-                                   margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0)
+    staged_events = trend.as_utc(
+        _frame(
+            session.execute(
+                sa.select(
+                    StagedEvent.id,
+                    StagedEvent.home_id,
+                    StagedEvent.sound_class,
+                    StagedEvent.started_at,
+                    StagedEvent.ended_at,
+                    StagedEvent.source,
+                )
+                .where(
+                    StagedEvent.trial_id == trial.id,
+                    StagedEvent.started_at < end,
+                    StagedEvent.ended_at > start,
+                )
+                .order_by(StagedEvent.started_at, StagedEvent.id)
+            ),
+            ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"],
+        ),
+        "started_at",
+        "ended_at",
+    )
+    staged_alerts = _staged_alerts(
+        session,
+        dialect,
+        trial,
+        w,
+        steps,
+        start,
+        end,
+        week,
+        margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
+    )
     return PilotData(
-        trial=trial, week=week, start=start, end=end, homes=homes,
-        devices=trend.as_utc(devices, "last_seen_at"), installations=installations, windows=windows,
-        monitored=monitored, counted=parts["counted"], by_week=parts["by_week"], fa_scores=parts["fa_scores"],
-        score_floors=parts["score_floors"], not_counted=parts["not_counted"], staged_events=staged_events,
-        staged_alerts=staged_alerts, max_skew_s=parts["max_skew_s"])
+        trial=trial,
+        week=week,
+        start=start,
+        end=end,
+        homes=homes,
+        devices=trend.as_utc(devices, "last_seen_at"),
+        installations=installations,
+        windows=windows,
+        monitored=monitored,
+        counted=parts["counted"],
+        by_week=parts["by_week"],
+        fa_scores=parts["fa_scores"],
+        score_floors=parts["score_floors"],
+        not_counted=parts["not_counted"],
+        staged_events=staged_events,
+        staged_alerts=staged_alerts,
+        max_skew_s=parts["max_skew_s"],
+    )
 
 
-def _monitored(session: Session, dialect: str, w: Any, steps: list[trend.OffsetStep], tz: str) -> pd.DataFrame:
+def _monitored(
+    session: Session, dialect: str, w: Any, steps: list[trend.OffsetStep], tz: str
+) -> pd.DataFrame:
     """Listening seconds per window and local week: segments clipped to the windows, in SQL."""
     s = ListeningSegment.__table__.c
     a = sql_greatest(dialect, _epoch_s(dialect, s.started_at), w.c.ws)
     b = sql_least(dialect, _epoch_s(dialect, s.ended_at), w.c.we)
-    pieces = (sa.select(w.c.window_id, a.label("a"), b.label("b"))
-              .select_from(w.join(ListeningSegment.__table__, s.device_id == w.c.device_id))
-              # Index-friendly bounds (a second of slack each side); the clip above is exact.
-              .where(s.started_at < _from_epoch(dialect, w.c.we + 1.0),
-                     s.ended_at > _from_epoch(dialect, w.c.ws - 1.0))
-              # OFFSET 0 keeps the subquery from being merged into the outer query (both SQLite and
-              # PostgreSQL), so a and b are computed once per piece rather than once per use.
-              .offset(0).subquery("pieces"))
+    pieces = (
+        sa.select(w.c.window_id, a.label("a"), b.label("b"))
+        .select_from(w.join(ListeningSegment.__table__, s.device_id == w.c.device_id))
+        # Index-friendly bounds (a second of slack each side); the clip above is exact.
+        .where(
+            s.started_at < _from_epoch(dialect, w.c.we + 1.0), s.ended_at > _from_epoch(dialect, w.c.ws - 1.0)
+        )
+        # OFFSET 0 keeps the subquery from being merged into the outer query (both SQLite and
+        # PostgreSQL), so a and b are computed once per piece rather than once per use.
+        .offset(0)
+        .subquery("pieces")
+    )
     first = _local_week(dialect, pieces.c.a, steps)
     last = _local_week(dialect, pieces.c.b, steps)
     rows = session.execute(
-        sa.select(pieces.c.window_id, first.label("first_bucket"), last.label("last_bucket"),
-                  sa.func.count().label("pieces"), sa.func.sum(pieces.c.a), sa.func.sum(pieces.c.b))
-        .where(pieces.c.b > pieces.c.a).group_by(pieces.c.window_id, first, last))
+        sa.select(
+            pieces.c.window_id,
+            first.label("first_bucket"),
+            last.label("last_bucket"),
+            sa.func.count().label("pieces"),
+            sa.func.sum(pieces.c.a),
+            sa.func.sum(pieces.c.b),
+        )
+        .where(pieces.c.b > pieces.c.a)
+        .group_by(pieces.c.window_id, first, last)
+    )
     agg = _frame(rows, ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"])
-    agg = agg.astype({"window_id": np.int64, "first_bucket": np.int64, "last_bucket": np.int64,
-                      "pieces": np.int64, "sum_start_s": np.float64, "sum_end_s": np.float64})
+    agg = agg.astype(
+        {
+            "window_id": np.int64,
+            "first_bucket": np.int64,
+            "last_bucket": np.int64,
+            "pieces": np.int64,
+            "sum_start_s": np.float64,
+            "sum_end_s": np.float64,
+        }
+    )
     return exposure.spread_over_buckets(agg, lambda k: trend.week_start_s(k, tz))
 
 
-def _alert_rows(dialect: str, trial: Trial, w: Any, steps: list[trend.OffsetStep], start: dt.datetime,
-                end: dt.datetime, week: trend.Week, *where: Any, in_windows_only: bool) -> Any:
+def _alert_rows(
+    dialect: str,
+    trial: Trial,
+    w: Any,
+    steps: list[trend.OffsetStep],
+    start: dt.datetime,
+    end: dt.datetime,
+    week: trend.Week,
+    *where: Any,
+    in_windows_only: bool,
+) -> Any:
     """Per-alert derived columns as a SELECT: effective time t (clock skew corrected, epoch s), the
     monitored window holding it, whether the device was listening then (counted), period, local
     week, outcome and score in thousandths.
@@ -249,26 +377,61 @@ def _alert_rows(dialect: str, trial: Trial, w: Any, steps: list[trend.OffsetStep
     """
     a = Alert.__table__.c
     t = _epoch_s(dialect, a.detected_at) - sa.func.coalesce(a.clock_skew_s, 0.0)
-    t_at = sa.case((a.clock_skew_s.is_(None), a.detected_at),
-                   else_=_minus_seconds(dialect, a.detected_at, a.clock_skew_s))
-    al = (sa.select(a.id, a.device_id, a.home_id, a.sound_class, a.score, a.firmware, a.clock_skew_s,
-                    _outcome().label("outcome"), a.final_cause.label("cause"),
-                    a.final_resemblance.label("resemblance"), t.label("t"), t_at.label("t_at"))
-          .where(a.trial_id == trial.id, *where).subquery("al"))
+    t_at = sa.case(
+        (a.clock_skew_s.is_(None), a.detected_at),
+        else_=_minus_seconds(dialect, a.detected_at, a.clock_skew_s),
+    )
+    al = (
+        sa.select(
+            a.id,
+            a.device_id,
+            a.home_id,
+            a.sound_class,
+            a.score,
+            a.firmware,
+            a.clock_skew_s,
+            _outcome().label("outcome"),
+            a.final_cause.label("cause"),
+            a.final_resemblance.label("resemblance"),
+            t.label("t"),
+            t_at.label("t_at"),
+        )
+        .where(a.trial_id == trial.id, *where)
+        .subquery("al")
+    )
     seg = ListeningSegment.__table__.c
     # The segment that started last at or before the alert: the only one that can hold it
     # (a device's segments do not overlap). One index seek per alert.
-    seg_end = (sa.select(_epoch_s(dialect, seg.ended_at))
-               .where(seg.device_id == al.c.device_id, seg.started_at <= al.c.t_at)
-               .order_by(seg.started_at.desc()).limit(1).scalar_subquery())
+    seg_end = (
+        sa.select(_epoch_s(dialect, seg.ended_at))
+        .where(seg.device_id == al.c.device_id, seg.started_at <= al.c.t_at)
+        .order_by(seg.started_at.desc())
+        .limit(1)
+        .scalar_subquery()
+    )
     listening = sa.case((w.c.window_id.is_(None), 0), (seg_end >= al.c.t, 1), else_=0)
     on = (w.c.device_id == al.c.device_id) & (al.c.t >= w.c.ws) & (al.c.t < w.c.we)
     joined = w.join(al, on) if in_windows_only else al.outerjoin(w, on)
-    return (sa.select(al.c.id, al.c.device_id, al.c.home_id, al.c.sound_class, al.c.score, al.c.firmware,
-                      al.c.clock_skew_s, al.c.outcome, al.c.cause, al.c.resemblance, al.c.t,
-                      w.c.window_id, listening.label("counted"), *_period_columns(dialect, al.c, steps, week))
-            .select_from(joined)
-            .where(al.c.t >= start.timestamp(), al.c.t < end.timestamp()))
+    return (
+        sa.select(
+            al.c.id,
+            al.c.device_id,
+            al.c.home_id,
+            al.c.sound_class,
+            al.c.score,
+            al.c.firmware,
+            al.c.clock_skew_s,
+            al.c.outcome,
+            al.c.cause,
+            al.c.resemblance,
+            al.c.t,
+            w.c.window_id,
+            listening.label("counted"),
+            *_period_columns(dialect, al.c, steps, week),
+        )
+        .select_from(joined)
+        .where(al.c.t >= start.timestamp(), al.c.t < end.timestamp())
+    )
 
 
 def _outcome() -> Expr:
@@ -277,40 +440,71 @@ def _outcome() -> Expr:
 
 
 def _period_columns(dialect: str, c: Any, steps: list[trend.OffsetStep], week: trend.Week) -> list[Expr]:
-    return [sa.case((c.t >= week.start_at.timestamp(), "week"), else_="before").label("period"),
-            _local_week(dialect, c.t, steps).label("week_index"),
-            # The epsilon keeps a score like 0.57 (569.99999... in binary) in bucket 570.
-            _floor_int(dialect, c.score * 1000.0 + 1e-6).label("score_milli")]
+    return [
+        sa.case((c.t >= week.start_at.timestamp(), "week"), else_="before").label("period"),
+        _local_week(dialect, c.t, steps).label("week_index"),
+        # The epsilon keeps a score like 0.57 (569.99999... in binary) in bucket 570.
+        _floor_int(dialect, c.score * 1000.0 + 1e-6).label("score_milli"),
+    ]
 
 
 # The grouping keys of every part of the alert statement (a part leaves the others NULL).
 _PART_KEYS: dict[str, Any] = {
-    "window_id": sa.Integer, "period": sa.String, "week_index": sa.BigInteger, "sound_class": sa.String,
-    "outcome": sa.String, "cause": sa.String, "resemblance": sa.String, "firmware": sa.String,
-    "score_milli": sa.BigInteger, "assigned": sa.Integer, "counted": sa.Integer}
+    "window_id": sa.Integer,
+    "period": sa.String,
+    "week_index": sa.BigInteger,
+    "sound_class": sa.String,
+    "outcome": sa.String,
+    "cause": sa.String,
+    "resemblance": sa.String,
+    "firmware": sa.String,
+    "score_milli": sa.BigInteger,
+    "assigned": sa.Integer,
+    "counted": sa.Integer,
+}
 
 
-def _alert_parts(session: Session, dialect: str, trial: Trial, w: Any, steps: list[trend.OffsetStep],
-                 start: dt.datetime, end: dt.datetime, week: trend.Week) -> dict[str, Any]:
+def _alert_parts(
+    session: Session,
+    dialect: str,
+    trial: Trial,
+    w: Any,
+    steps: list[trend.OffsetStep],
+    start: dt.datetime,
+    end: dt.datetime,
+    week: trend.Week,
+) -> dict[str, Any]:
     """The alert aggregates in one statement, so the per-alert work (listening check) runs once.
 
     `base` holds alerts inside a monitored window; `every` all of the trial's alerts in the period
     (cheap: no window, no listening check). Alerts outside every window are the difference.
     """
-    base = (_alert_rows(dialect, trial, w, steps, start, end, week, in_windows_only=True)
-            .cte("base").prefix_with("MATERIALIZED"))
+    base = (
+        _alert_rows(dialect, trial, w, steps, start, end, week, in_windows_only=True)
+        .cte("base")
+        .prefix_with("MATERIALIZED")
+    )
     a = Alert.__table__.c
     t = (_epoch_s(dialect, a.detected_at) - sa.func.coalesce(a.clock_skew_s, 0.0)).label("t")
-    ev = (sa.select(a.home_id, a.sound_class, a.score, a.clock_skew_s, t)
-          .where(a.trial_id == trial.id).subquery("ev"))
+    ev = (
+        sa.select(a.home_id, a.sound_class, a.score, a.clock_skew_s, t)
+        .where(a.trial_id == trial.id)
+        .subquery("ev")
+    )
 
     def part(name: str, src: Any, keys: dict[str, Any], where: Any = None) -> Any:
-        cols = [sa.literal(name).label("part")]
-        cols += [keys[k].label(k) if k in keys else sa.cast(sa.null(), typ).label(k)
-                 for k, typ in _PART_KEYS.items()]
-        cols += [sa.func.count().label("alerts"), sa.cast(sa.func.min(src.c.score), sa.Float).label("min_score"),
-                 sa.cast(sa.func.max(sa.func.abs(sa.func.coalesce(src.c.clock_skew_s, 0.0))), sa.Float)
-                 .label("max_skew")]
+        cols: list[Any] = [sa.literal(name).label("part")]
+        cols += [
+            keys[k].label(k) if k in keys else sa.cast(sa.null(), typ).label(k)
+            for k, typ in _PART_KEYS.items()
+        ]
+        cols += [
+            sa.func.count().label("alerts"),
+            sa.cast(sa.func.min(src.c.score), sa.Float).label("min_score"),
+            sa.cast(sa.func.max(sa.func.abs(sa.func.coalesce(src.c.clock_skew_s, 0.0))), sa.Float).label(
+                "max_skew"
+            ),
+        ]
         q = sa.select(*cols).select_from(src)
         if where is not None:
             q = q.where(where)
@@ -320,16 +514,43 @@ def _alert_parts(session: Session, dialect: str, trial: Trial, w: Any, steps: li
     assigned = sa.case((c.home_id.is_(None), 0), else_=1)
     period = _period_columns(dialect, ev.c, steps, week)[0]
     stmt = sa.union_all(
-        part("main", base, {"window_id": c.window_id, "period": c.period, "sound_class": c.sound_class,
-                            "outcome": c.outcome, "cause": c.cause, "resemblance": c.resemblance,
-                            "firmware": c.firmware, "assigned": assigned, "counted": c.counted}),
-        part("by_week", base, {"week_index": c.week_index, "sound_class": c.sound_class, "outcome": c.outcome},
-             c.counted == 1),
-        part("fa_scores", base, {"period": c.period, "sound_class": c.sound_class, "score_milli": c.score_milli},
-             (c.counted == 1) & (c.outcome == "false_alarm")),
-        part("every", ev, {"period": period, "sound_class": ev.c.sound_class,
-                           "assigned": sa.case((ev.c.home_id.is_(None), 0), else_=1)},
-             (ev.c.t >= start.timestamp()) & (ev.c.t < end.timestamp())),
+        part(
+            "main",
+            base,
+            {
+                "window_id": c.window_id,
+                "period": c.period,
+                "sound_class": c.sound_class,
+                "outcome": c.outcome,
+                "cause": c.cause,
+                "resemblance": c.resemblance,
+                "firmware": c.firmware,
+                "assigned": assigned,
+                "counted": c.counted,
+            },
+        ),
+        part(
+            "by_week",
+            base,
+            {"week_index": c.week_index, "sound_class": c.sound_class, "outcome": c.outcome},
+            c.counted == 1,
+        ),
+        part(
+            "fa_scores",
+            base,
+            {"period": c.period, "sound_class": c.sound_class, "score_milli": c.score_milli},
+            (c.counted == 1) & (c.outcome == "false_alarm"),
+        ),
+        part(
+            "every",
+            ev,
+            {
+                "period": period,
+                "sound_class": ev.c.sound_class,
+                "assigned": sa.case((ev.c.home_id.is_(None), 0), else_=1),
+            },
+            (ev.c.t >= start.timestamp()) & (ev.c.t < end.timestamp()),
+        ),
     )
     df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score", "max_skew"])
 
@@ -340,12 +561,32 @@ def _alert_parts(session: Session, dialect: str, trial: Trial, w: Any, steps: li
                 out[col] = out[col].astype(np.int64)
         return out
 
-    main = _with_object_nulls(pick("main", ["window_id", "period", "sound_class", "outcome", "cause", "resemblance",
-                                            "firmware", "assigned", "counted", "alerts", "min_score",
-                                            "max_skew"]), ["cause", "resemblance"])
+    main = _blank_missing(
+        pick(
+            "main",
+            [
+                "window_id",
+                "period",
+                "sound_class",
+                "outcome",
+                "cause",
+                "resemblance",
+                "firmware",
+                "assigned",
+                "counted",
+                "alerts",
+                "min_score",
+                "max_skew",
+            ],
+        ),
+        ["cause", "resemblance"],
+    )
     counted = main[main["counted"] == 1]
-    floors = (main.groupby(["sound_class", "firmware"], as_index=False)["min_score"].min()
-              .astype({"min_score": np.float64}))
+    floors = (
+        main.groupby(["sound_class", "firmware"], as_index=False)["min_score"]
+        .min()
+        .astype({"min_score": np.float64})
+    )
     keys = ["period", "sound_class", "assigned"]
     every = pick("every", [*keys, "alerts"]).set_index(keys)["alerts"]
     inside = main.groupby(keys)["alerts"].sum()
@@ -354,15 +595,24 @@ def _alert_parts(session: Session, dialect: str, trial: Trial, w: Any, steps: li
     outside = every.sub(inside, fill_value=0).reset_index()
     outside["reason"] = np.where(outside["assigned"] == 1, "not_monitored", "unassigned")
     offline = main[main["counted"] == 0].assign(
-        reason=lambda f: np.where(f["assigned"] == 1, "offline", "unassigned"))
+        reason=lambda f: np.where(f["assigned"] == 1, "offline", "unassigned")
+    )
     reasons = ["period", "sound_class", "reason"]
-    not_counted = (pd.concat([outside[[*reasons, "alerts"]], offline[[*reasons, "alerts"]]], ignore_index=True)
-                   .groupby(reasons, as_index=False)["alerts"].sum())
+    not_counted = (
+        pd.concat([outside[[*reasons, "alerts"]], offline[[*reasons, "alerts"]]], ignore_index=True)
+        .groupby(reasons, as_index=False)["alerts"]
+        .sum()
+    )
     not_counted = not_counted[not_counted["alerts"] > 0].astype({"alerts": np.int64}).reset_index(drop=True)
     skew = main["max_skew"].max() if len(main) else 0.0
     return {
-        "counted": (counted.groupby(["window_id", "period", "sound_class", "outcome", "cause", "resemblance"],
-                                    as_index=False, dropna=False)["alerts"].sum()),
+        "counted": (
+            counted.groupby(
+                ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"],
+                as_index=False,
+                dropna=False,
+            )["alerts"].sum()
+        ),
         "by_week": pick("by_week", ["week_index", "sound_class", "outcome", "alerts"]),
         "fa_scores": pick("fa_scores", ["period", "sound_class", "score_milli", "alerts"]),
         "score_floors": floors,
@@ -371,34 +621,95 @@ def _alert_parts(session: Session, dialect: str, trial: Trial, w: Any, steps: li
     }
 
 
-def _with_object_nulls(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
-    """Missing causes and grades as None (object columns), not NaN."""
+def _blank_missing(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+    """Missing causes and grades as "" (a NULL would drop out of, or split, pandas group keys)."""
     for col in columns:
-        frame[col] = pd.Series([None if pd.isna(v) else v for v in frame[col]], dtype=object, index=frame.index)
+        frame[col] = frame[col].fillna("").astype(str)
     return frame
 
 
-def _staged_alerts(session: Session, dialect: str, trial: Trial, w: Any, steps: list[trend.OffsetStep],
-                   start: dt.datetime, end: dt.datetime, week: trend.Week, *, margin_s: float) -> pd.DataFrame:
+def _staged_alerts(
+    session: Session,
+    dialect: str,
+    trial: Trial,
+    w: Any,
+    steps: list[trend.OffsetStep],
+    start: dt.datetime,
+    end: dt.datetime,
+    week: trend.Week,
+    *,
+    margin_s: float,
+) -> pd.DataFrame:
     """Alerts near a staged event of their class from a device installed in the event's home."""
     a, e, i = Alert.__table__.c, StagedEvent.__table__.c, Installation.__table__.c
-    bounds = (sa.select(e.id, e.home_id, e.sound_class,
-                        _from_epoch(dialect, _epoch_s(dialect, e.started_at) - margin_s).label("lo"),
-                        _from_epoch(dialect, _epoch_s(dialect, e.ended_at) + margin_s).label("hi"))
-              .where(e.trial_id == trial.id).offset(0).subquery("bounds"))
+    bounds = (
+        sa.select(
+            e.id,
+            e.home_id,
+            e.sound_class,
+            _from_epoch(dialect, _epoch_s(dialect, e.started_at) - margin_s).label("lo"),
+            _from_epoch(dialect, _epoch_s(dialect, e.ended_at) + margin_s).label("hi"),
+        )
+        .where(e.trial_id == trial.id)
+        .offset(0)
+        .subquery("bounds")
+    )
     # Walk the events and each one's short time range on the (trial, detected_at) index.
     installed = sa.exists().where(i.device_id == a.device_id, i.home_id == bounds.c.home_id)
-    near = (sa.select(a.id)
-            .select_from(bounds.join(Alert.__table__, (a.trial_id == trial.id) & (a.detected_at >= bounds.c.lo)
-                                     & (a.detected_at <= bounds.c.hi)))
-            .where(a.sound_class == bounds.c.sound_class, installed))
-    rows = _alert_rows(dialect, trial, w, steps, start, end, week, a.id.in_(near), in_windows_only=False).subquery()
-    frame = _frame(session.execute(sa.select(rows.c.id, rows.c.device_id, rows.c.home_id, rows.c.sound_class,
-                                             rows.c.t, rows.c.score, rows.c.window_id, rows.c.counted,
-                                             rows.c.period, rows.c.week_index, rows.c.outcome, rows.c.cause,
-                                             rows.c.resemblance, rows.c.score_milli)),
-                   ["alert_id", "device_id", "home_id", "sound_class", "t", "score", "window_id", "counted",
-                    "period", "week_index", "outcome", "cause", "resemblance", "score_milli"])
-    frame["detected_at"] = pd.to_datetime(frame["t"].astype(np.float64), unit="s", utc=True)
+    near = (
+        sa.select(a.id)
+        .select_from(
+            bounds.join(
+                Alert.__table__,
+                (a.trial_id == trial.id) & (a.detected_at >= bounds.c.lo) & (a.detected_at <= bounds.c.hi),
+            )
+        )
+        .where(a.sound_class == bounds.c.sound_class, installed)
+    )
+    rows = _alert_rows(
+        dialect, trial, w, steps, start, end, week, a.id.in_(near), in_windows_only=False
+    ).subquery()
+    frame = _frame(
+        session.execute(
+            sa.select(
+                rows.c.id,
+                rows.c.device_id,
+                rows.c.home_id,
+                rows.c.sound_class,
+                a.detected_at,
+                rows.c.clock_skew_s,
+                rows.c.score,
+                rows.c.window_id,
+                rows.c.counted,
+                rows.c.period,
+                rows.c.week_index,
+                rows.c.outcome,
+                rows.c.cause,
+                rows.c.resemblance,
+                rows.c.score_milli,
+            ).join_from(rows, Alert.__table__, a.id == rows.c.id)
+        ),
+        [
+            "alert_id",
+            "device_id",
+            "home_id",
+            "sound_class",
+            "detected_at",
+            "clock_skew_s",
+            "score",
+            "window_id",
+            "counted",
+            "period",
+            "week_index",
+            "outcome",
+            "cause",
+            "resemblance",
+            "score_milli",
+        ],
+    )
+    # Matching happens at the window edges, so the time comes exact from the column (the epoch
+    # seconds computed in SQL carry SQLite's julianday rounding, some tens of microseconds).
+    skew = pd.to_numeric(frame["clock_skew_s"], errors="coerce").fillna(0.0).astype(np.float64)
+    frame["detected_at"] = pd.to_datetime(frame["detected_at"], utc=True) - pd.to_timedelta(skew, unit="s")
     frame["counted"] = frame["counted"].astype(bool)
-    return _with_object_nulls(frame.drop(columns="t"), ["cause", "resemblance"])
+    return _blank_missing(frame.drop(columns="clock_skew_s"), ["cause", "resemblance"])

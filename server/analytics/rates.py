@@ -201,7 +201,7 @@ def poisson_rates(
             "confidence_level": confidence_level,
             "method": method,
             # object dtype keeps None (pandas would turn it into NaN in a string column).
-            "reason": pd.Series(np.where(has_time, None, NO_MONITORED_TIME), dtype=object),
+            "reason": pd.Series([None if h else NO_MONITORED_TIME for h in has_time], dtype=object),
         }
     )
 
@@ -340,19 +340,28 @@ def rate_ratio(
     _check_level(confidence_level)
     method = "exact-conditional"
     total = events_a + events_b
-    common = dict(
-        events_a=int(events_a),
-        home_months_a=float(home_months_a),
-        events_b=int(events_b),
-        home_months_b=float(home_months_b),
-        confidence_level=confidence_level,
-        method=method,
-    )
+
+    def result(
+        estimate: float, low: float, high: float, p_value: float, reason: str | None = None
+    ) -> RatioEstimate:
+        return RatioEstimate(
+            events_a=int(events_a),
+            home_months_a=float(home_months_a),
+            events_b=int(events_b),
+            home_months_b=float(home_months_b),
+            estimate=estimate,
+            low=low,
+            high=high,
+            confidence_level=confidence_level,
+            method=method,
+            p_value=p_value,
+            reason=reason,
+        )
+
     if home_months_a <= 0 or home_months_b <= 0:
-        return RatioEstimate(**common, estimate=math.nan, low=math.nan, high=math.nan, p_value=math.nan,
-                             reason=NO_MONITORED_TIME)
+        return result(math.nan, math.nan, math.nan, math.nan, NO_MONITORED_TIME)
     if total == 0:
-        return RatioEstimate(**common, estimate=math.nan, low=0.0, high=math.inf, p_value=1.0, reason=NO_EVENTS)
+        return result(math.nan, 0.0, math.inf, 1.0, NO_EVENTS)
     lim = proportion_limits([events_a], [total], confidence_level=confidence_level, method="clopper-pearson")
     scale = home_months_b / home_months_a
 
@@ -361,8 +370,7 @@ def rate_ratio(
 
     estimate = math.inf if events_b == 0 else (events_a / home_months_a) / (events_b / home_months_b)
     p_value = rate_ratio_test(events_a, home_months_a, events_b, home_months_b).p_value
-    return RatioEstimate(**common, estimate=estimate, low=to_ratio(float(lim.low[0])),
-                         high=to_ratio(float(lim.high[0])), p_value=p_value)
+    return result(estimate, to_ratio(float(lim.low[0])), to_ratio(float(lim.high[0])), p_value)
 
 
 def rate_ratio_test(
@@ -521,12 +529,28 @@ def home_bootstrap(
     if len(t) < 2:
         reason = NO_MONITORED_TIME if len(t) == 0 else TOO_FEW_HOMES
         est = float(x.sum() / t.sum()) if len(t) else math.nan
-        return BootstrapRate(estimate=est, low=math.nan, high=math.nan, confidence_level=confidence_level,
-                             method=name, homes=len(t), resamples=resamples, reason=reason)
-    lim = home_bootstrap_limits(x, t, rng=rng, resamples=resamples, confidence_level=confidence_level,
-                                method=method)
-    return BootstrapRate(estimate=float(lim.estimate[0]), low=float(lim.low[0]), high=float(lim.high[0]),
-                         confidence_level=confidence_level, method=name, homes=len(t), resamples=resamples)
+        return BootstrapRate(
+            estimate=est,
+            low=math.nan,
+            high=math.nan,
+            confidence_level=confidence_level,
+            method=name,
+            homes=len(t),
+            resamples=resamples,
+            reason=reason,
+        )
+    lim = home_bootstrap_limits(
+        x, t, rng=rng, resamples=resamples, confidence_level=confidence_level, method=method
+    )
+    return BootstrapRate(
+        estimate=float(lim.estimate[0]),
+        low=float(lim.low[0]),
+        high=float(lim.high[0]),
+        confidence_level=confidence_level,
+        method=name,
+        homes=len(t),
+        resamples=resamples,
+    )
 
 
 def overdispersion(events: ArrayLike, home_months: ArrayLike) -> Overdispersion:
@@ -544,25 +568,30 @@ def overdispersion(events: ArrayLike, home_months: ArrayLike) -> Overdispersion:
     homes = len(t)
     if homes < 2:
         reason = NO_MONITORED_TIME if homes == 0 else TOO_FEW_HOMES
-        return Overdispersion(homes=homes, statistic=math.nan, df=0, ratio=math.nan, p_value=math.nan,
-                              reason=reason)
+        return Overdispersion(
+            homes=homes, statistic=math.nan, df=0, ratio=math.nan, p_value=math.nan, reason=reason
+        )
     if x.sum() == 0:
-        return Overdispersion(homes=homes, statistic=math.nan, df=homes - 1, ratio=math.nan,
-                              p_value=math.nan, reason=NO_EVENTS)
+        return Overdispersion(
+            homes=homes, statistic=math.nan, df=homes - 1, ratio=math.nan, p_value=math.nan, reason=NO_EVENTS
+        )
     expected = x.sum() / t.sum() * t
     statistic = float(((x - expected) ** 2 / expected).sum())
     df = homes - 1
-    return Overdispersion(homes=homes, statistic=statistic, df=df, ratio=statistic / df,
-                          p_value=float(stats.chi2.sf(statistic, df)))
+    return Overdispersion(
+        homes=homes,
+        statistic=statistic,
+        df=df,
+        ratio=statistic / df,
+        p_value=float(stats.chi2.sf(statistic, df)),
+    )
 
 
 # ---------------------------------------------------------------------------------------
 # Readiness
 
 
-def readiness(
-    events: int, home_months: float, target: float, *, confidence_level: float = 0.95
-) -> Readiness:
+def readiness(events: int, home_months: float, target: float, *, confidence_level: float = 0.95) -> Readiness:
     """Whether the false-alarm rate is shown to be at or below `target` per home-month.
 
     Uses the two-sided exact interval (the one printed beside the rate): "met" when its upper
@@ -575,17 +604,28 @@ def readiness(
     if target <= 0:
         raise ValueError("the target must be positive")
     rate = poisson_rate(events, home_months, confidence_level=confidence_level)
-    common = dict(target=target, estimate=rate.estimate, low=rate.low, high=rate.high,
-                  confidence_level=confidence_level)
+
+    def result(state: str, more: float | None, reason: str | None = None) -> Readiness:
+        return Readiness(
+            state=state,
+            target=target,
+            estimate=rate.estimate,
+            low=rate.low,
+            high=rate.high,
+            confidence_level=confidence_level,
+            more_home_months=more,
+            reason=reason,
+        )
+
     if rate.reason is not None:
-        return Readiness(state="not_yet_shown", more_home_months=None, reason=rate.reason, **common)
+        return result("not_yet_shown", None, rate.reason)
     if rate.high <= target:
-        return Readiness(state="met", more_home_months=0.0, **common)
+        return result("met", 0.0)
     if rate.low > target:
-        return Readiness(state="not_met", more_home_months=None, **common)
+        return result("not_met", None)
     r = rate.estimate
     if r >= target:
-        return Readiness(state="not_yet_shown", more_home_months=None, reason=RATE_NOT_BELOW_TARGET, **common)
+        return result("not_yet_shown", None, RATE_NOT_BELOW_TARGET)
     q = 1 - (1 - confidence_level) / 2
 
     def excess(total: float) -> float:
@@ -595,4 +635,4 @@ def readiness(
     while excess(hi) > 0:
         hi *= 2.0
     needed = float(optimize.brentq(excess, home_months, hi, xtol=1e-9, rtol=1e-12))
-    return Readiness(state="not_yet_shown", more_home_months=needed - home_months, **common)
+    return result("not_yet_shown", needed - home_months)

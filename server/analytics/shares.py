@@ -66,7 +66,7 @@ def gini(counts: ArrayLike) -> float:
     # sum_i sum_j |x_i - x_j| = 2 sum_i (2i - n - 1) x_(i) over the sorted values, i = 1..n.
     i = np.arange(1, n + 1)
     mean_difference_sum = 2.0 * float(((2 * i - n - 1) * x).sum())
-    return mean_difference_sum / (2.0 * n * (n - 1) * x.mean())
+    return mean_difference_sum / (2.0 * n * (n - 1) * float(x.mean()))
 
 
 def home_pareto(homes: pd.DataFrame, *, confidence_level: float = 0.95) -> pd.DataFrame:
@@ -86,11 +86,16 @@ def home_pareto(homes: pd.DataFrame, *, confidence_level: float = 0.95) -> pd.Da
     out = homes.loc[:, ["home_code", "false_alarms", "home_months"]].copy()
     out["false_alarms"] = out["false_alarms"].astype(np.int64)
     out["home_months"] = out["home_months"].astype(np.float64)
-    r = rates.poisson_rates(out["false_alarms"].to_numpy(), out["home_months"].to_numpy(),
-                            confidence_level=confidence_level)
+    r = rates.poisson_rates(
+        out["false_alarms"].to_numpy(), out["home_months"].to_numpy(), confidence_level=confidence_level
+    )
     out["rate"], out["low"], out["high"] = r["estimate"].to_numpy(), r["low"].to_numpy(), r["high"].to_numpy()
-    out = out.sort_values(["false_alarms", "rate", "home_code"], ascending=[False, False, True],
-                          na_position="last", kind="mergesort").reset_index(drop=True)
+    out = out.sort_values(
+        ["false_alarms", "rate", "home_code"],
+        ascending=[False, False, True],
+        na_position="last",
+        kind="mergesort",
+    ).reset_index(drop=True)
     total = int(out["false_alarms"].sum())
     if total > 0:
         out["share"] = out["false_alarms"] / total
@@ -113,17 +118,23 @@ def concentration(homes: pd.DataFrame, *, confidence_level: float = 0.95) -> Con
     total_t = float(table["home_months"].sum())
     if total == 0 or table.empty:
         return Concentration(
-            homes=len(table), false_alarms=total, top_home=None, top_home_share=math.nan,
+            homes=len(table),
+            false_alarms=total,
+            top_home=None,
+            top_home_share=math.nan,
             rate_without_top=rates.poisson_rate(0, total_t, confidence_level=confidence_level),
-            gini=math.nan, reason=NO_FALSE_ALARMS)
+            gini=math.nan,
+            reason=NO_FALSE_ALARMS,
+        )
     top = table.iloc[0]
     return Concentration(
         homes=len(table),
         false_alarms=total,
         top_home=str(top.home_code),
         top_home_share=float(top.false_alarms) / total,
-        rate_without_top=rates.poisson_rate(total - int(top.false_alarms), total_t - float(top.home_months),
-                                            confidence_level=confidence_level),
+        rate_without_top=rates.poisson_rate(
+            total - int(top.false_alarms), total_t - float(top.home_months), confidence_level=confidence_level
+        ),
         gini=gini(table["false_alarms"].to_numpy()),
     )
 
@@ -142,17 +153,28 @@ def category_shares(
     -------
     Columns <category>, false_alarms, share, cumulative_share, rate, low, high; most first.
     """
-    grouped = (counts.groupby(category, dropna=False, sort=False)["false_alarms"].sum()
-               .astype(np.int64).reset_index())
-    grouped = grouped.sort_values(["false_alarms", category], ascending=[False, True],
-                                  kind="mergesort").reset_index(drop=True)
+    grouped = (
+        counts.groupby(category, dropna=False, sort=False)["false_alarms"]
+        .sum()
+        .astype(np.int64)
+        .reset_index()
+    )
+    grouped = grouped.sort_values(
+        ["false_alarms", category], ascending=[False, True], kind="mergesort"
+    ).reset_index(drop=True)
     total = int(grouped["false_alarms"].sum())
     grouped["share"] = grouped["false_alarms"] / total if total else np.nan
     grouped["cumulative_share"] = grouped["false_alarms"].cumsum() / total if total else np.nan
-    r = rates.poisson_rates(grouped["false_alarms"].to_numpy(), np.full(len(grouped), home_months),
-                            confidence_level=confidence_level)
-    grouped["rate"], grouped["low"], grouped["high"] = (r["estimate"].to_numpy(), r["low"].to_numpy(),
-                                                        r["high"].to_numpy())
+    r = rates.poisson_rates(
+        grouped["false_alarms"].to_numpy(),
+        np.full(len(grouped), home_months),
+        confidence_level=confidence_level,
+    )
+    grouped["rate"], grouped["low"], grouped["high"] = (
+        r["estimate"].to_numpy(),
+        r["low"].to_numpy(),
+        r["high"].to_numpy(),
+    )
     return grouped
 
 

@@ -74,11 +74,19 @@ def match(
     if tolerance_s < 0:
         raise ValueError("the tolerance must not be negative")
     tol = pd.Timedelta(seconds=tolerance_s)
-    ev = as_utc(events.loc[:, ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]],
-              "started_at", "ended_at")
-    inst = as_utc(installations.loc[:, ["device_id", "home_id", "installed_at", "removed_at"]],
-                "installed_at", "removed_at")
-    al = as_utc(alerts.loc[:, ["alert_id", "device_id", "sound_class", "detected_at", "score"]], "detected_at")
+    ev = as_utc(
+        events.loc[:, ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]],
+        "started_at",
+        "ended_at",
+    )
+    inst = as_utc(
+        installations.loc[:, ["device_id", "home_id", "installed_at", "removed_at"]],
+        "installed_at",
+        "removed_at",
+    )
+    al = as_utc(
+        alerts.loc[:, ["alert_id", "device_id", "sound_class", "detected_at", "score"]], "detected_at"
+    )
     pairs = ev.merge(inst, on="home_id").merge(al, on=["device_id", "sound_class"])
     t = pairs["detected_at"]
     inside = (
@@ -90,8 +98,9 @@ def match(
     hits = pairs.loc[inside, ["staged_event_id", "started_at", "alert_id", "detected_at", "score"]]
     hits = hits.drop_duplicates(["staged_event_id", "alert_id"])
 
-    first = (hits.sort_values(["staged_event_id", "detected_at", "alert_id"], kind="mergesort")
-             .drop_duplicates("staged_event_id"))
+    first = hits.sort_values(
+        ["staged_event_id", "detected_at", "alert_id"], kind="mergesort"
+    ).drop_duplicates("staged_event_id")
     first = first.assign(latency_s=(first["detected_at"] - first["started_at"]).dt.total_seconds())
     best = hits.groupby("staged_event_id")["score"].max().rename("best_score")
     out = ev.merge(first[["staged_event_id", "alert_id", "latency_s"]], on="staged_event_id", how="left")
@@ -102,8 +111,11 @@ def match(
     out["detected"] = out["alert_id"].notna().to_numpy(dtype=bool)
     out = out.sort_values(["started_at", "staged_event_id"], kind="mergesort").reset_index(drop=True)
 
-    matches = (hits.sort_values(["alert_id", "started_at", "staged_event_id"], kind="mergesort")
-               .drop_duplicates("alert_id")[["alert_id", "staged_event_id"]].reset_index(drop=True))
+    matches = (
+        hits.sort_values(["alert_id", "started_at", "staged_event_id"], kind="mergesort")
+        .drop_duplicates("alert_id")[["alert_id", "staged_event_id"]]
+        .reset_index(drop=True)
+    )
     return StagedMatch(events=out, matches=matches)
 
 
@@ -116,14 +128,18 @@ def detection(events: pd.DataFrame, *, confidence_level: float = 0.95) -> Detect
     n = len(events)
     detected = int(events["detected"].sum()) if n else 0
     latency = events.loc[events["detected"], "latency_s"].to_numpy(dtype=np.float64)
-    median, p90 = (np.quantile(latency, [0.5, 0.9]) if len(latency) else (math.nan, math.nan))
-    missed = events.loc[~events["detected"].astype(bool),
-                        ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]]
+    median, p90 = np.quantile(latency, [0.5, 0.9]) if len(latency) else (math.nan, math.nan)
+    missed = events.loc[
+        ~events["detected"].astype(bool),
+        ["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"],
+    ]
     return Detection(
         events=n,
         detected=detected,
         share=rates.proportion(detected, n, confidence_level=confidence_level, method="wilson"),
-        share_exact=rates.proportion(detected, n, confidence_level=confidence_level, method="clopper-pearson"),
+        share_exact=rates.proportion(
+            detected, n, confidence_level=confidence_level, method="clopper-pearson"
+        ),
         latency_median_s=float(median),
         latency_p90_s=float(p90),
         missed=missed.reset_index(drop=True),

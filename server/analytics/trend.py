@@ -71,7 +71,8 @@ def local_midnight(day: dt.date, tz: str | ZoneInfo) -> dt.datetime:
     """The first instant (aware, UTC) whose local wall time in `tz` is 00:00 or later on `day`."""
     zone = tz if isinstance(tz, ZoneInfo) else ZoneInfo(tz)
     ts = pd.Timestamp(day).tz_localize(zone, ambiguous=True, nonexistent="shift_forward")
-    return ts.tz_convert("UTC").to_pydatetime()
+    out: dt.datetime = ts.tz_convert("UTC").to_pydatetime()
+    return out
 
 
 def week_from_index(index: int, tz: str) -> Week:
@@ -109,8 +110,9 @@ def week_start_s(index: ArrayLike, tz: str) -> NDArray[np.float64]:
     """UTC epoch seconds at which each local week index begins."""
     k = np.asarray(index, dtype=np.int64)
     mondays = pd.to_datetime(EPOCH_MONDAY) + pd.to_timedelta(7 * k, unit="D")
-    local = pd.DatetimeIndex(mondays).tz_localize(ZoneInfo(tz), ambiguous=np.ones(len(k), dtype=bool),
-                                                   nonexistent="shift_forward")
+    local = pd.DatetimeIndex(mondays).tz_localize(
+        ZoneInfo(tz), ambiguous=np.ones(len(k), dtype=bool), nonexistent="shift_forward"
+    )
     return epoch_s(local)
 
 
@@ -129,10 +131,15 @@ def utc_offset_steps(tz: str, start: dt.datetime, end: dt.datetime) -> list[Offs
     Found by sampling every 15 minutes (every zone in use changes offset on a quarter hour).
     """
     zone = ZoneInfo(tz)
-    grid = pd.date_range(pd.Timestamp(start).tz_convert("UTC").floor("15min") - pd.Timedelta(minutes=15),
-                         pd.Timestamp(end).tz_convert("UTC").ceil("15min"), freq="15min")
-    offsets = np.asarray(((grid.tz_convert(zone).tz_localize(None) - grid.tz_localize(None))
-                          / pd.Timedelta(seconds=1)), dtype=np.float64)
+    grid = pd.date_range(
+        pd.Timestamp(start).tz_convert("UTC").floor("15min") - pd.Timedelta(minutes=15),
+        pd.Timestamp(end).tz_convert("UTC").ceil("15min"),
+        freq="15min",
+    )
+    offsets = np.asarray(
+        ((grid.tz_convert(zone).tz_localize(None) - grid.tz_localize(None)) / pd.Timedelta(seconds=1)),
+        dtype=np.float64,
+    )
     change = np.flatnonzero(np.diff(offsets) != 0) + 1
     steps = [OffsetStep(from_s=-np.inf, offset_s=float(offsets[0]))]
     starts = epoch_s(grid)
@@ -160,18 +167,22 @@ def weekly_rates(
     without monitored time has NaN rate and reason "no_monitored_time".
     """
     idx = np.arange(first_index, last_index + 1)
-    full = (weeks.groupby("week_index")[["false_alarms", "home_months"]].sum()
-            .reindex(idx, fill_value=0))
-    r = rates.poisson_rates(full["false_alarms"].to_numpy(), full["home_months"].to_numpy(dtype=np.float64),
-                            confidence_level=confidence_level)
+    full = weeks.groupby("week_index")[["false_alarms", "home_months"]].sum().reindex(idx, fill_value=0)
+    r = rates.poisson_rates(
+        full["false_alarms"].to_numpy(),
+        full["home_months"].to_numpy(dtype=np.float64),
+        confidence_level=confidence_level,
+    )
     labels = [week_from_index(int(k), tz) for k in idx]
-    return pd.DataFrame({
-        "week": [w.label for w in labels],
-        "starts_on": [w.starts_on for w in labels],
-        "false_alarms": r["events"].to_numpy(),
-        "home_months": r["home_months"].to_numpy(),
-        "rate": r["estimate"].to_numpy(),
-        "low": r["low"].to_numpy(),
-        "high": r["high"].to_numpy(),
-        "reason": pd.Series(r["reason"].to_numpy(), dtype=object),
-    })
+    return pd.DataFrame(
+        {
+            "week": [w.label for w in labels],
+            "starts_on": [w.starts_on for w in labels],
+            "false_alarms": r["events"].to_numpy(),
+            "home_months": r["home_months"].to_numpy(),
+            "rate": r["estimate"].to_numpy(),
+            "low": r["low"].to_numpy(),
+            "high": r["high"].to_numpy(),
+            "reason": pd.Series(r["reason"].to_numpy(), dtype=object),
+        }
+    )

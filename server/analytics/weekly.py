@@ -29,8 +29,12 @@ OUTCOMES = ("false_alarm", "confirmed", "unsure", "unusable", "pending")
 # Review grades of a false alarm: the sound resembles the target (forgivable) or not.
 GRADE_NAMES = {"resembles": "forgivable", "unrelated": "unforgivable"}
 NOT_GRADED = "not graded"
-NOT_RECORDED = "not recorded"
-DIMENSIONS = (("firmware", "Firmware (device's current)"), ("hardware_model", "Hardware model"), ("room", "Room"))
+NOT_RECORDED = "not_recorded"
+DIMENSIONS = (
+    ("firmware", "Firmware (device's current)"),
+    ("hardware_model", "Hardware model"),
+    ("room", "Room"),
+)
 DEFAULT_SEED = 20261123
 WHATIF_STEP_MILLI = 20  # threshold grid step: 0.02 on the score scale
 SILENT_AFTER_S = 24 * 3600.0
@@ -207,10 +211,14 @@ def choose_week(trial: Trial, week: str | None, now: dt.datetime) -> trend.Week:
     if chosen.end_at <= start:
         if not week:  # the trial is in its first week: show that week so far
             return trend.week_of(start, trial.timezone)
-        raise ValidationFailed(f"Trial {trial.code} starts on {trial.starts_on}, after {chosen.label}.",
-                               {"week": "Pick a week from the trial's start on."})
+        raise ValidationFailed(
+            f"Trial {trial.code} starts on {trial.starts_on}, after {chosen.label}.",
+            {"week": "Pick a week from the trial's start on."},
+        )
     if chosen.start_at > now:
-        raise ValidationFailed(f"{chosen.label} has not started yet.", {"week": "Pick a past or current week."})
+        raise ValidationFailed(
+            f"{chosen.label} has not started yet.", {"week": "Pick a past or current week."}
+        )
     return chosen
 
 
@@ -233,18 +241,36 @@ def build_summary(
     data = load.load_pilot(session, trial, chosen, now=now, staged_tolerance_s=staged_tolerance_s)
     ctx = _Context(data, confidence_level, staged_tolerance_s, resamples, seed, firmware_pair)
     classes = tuple(
-        ClassSummary(sound_class=c, week=ctx.figures(i, c, "week"), to_date=ctx.figures(i, c, "to_date"),
-                     trend=ctx.trend(c))
-        for i, c in enumerate(trial.sound_classes))
+        ClassSummary(
+            sound_class=c,
+            week=ctx.figures(i, c, "week"),
+            to_date=ctx.figures(i, c, "to_date"),
+            trend=ctx.trend(c),
+        )
+        for i, c in enumerate(trial.sound_classes)
+    )
     notes: list[str] = []
     ops = _operations(session, ctx, now=now, skew_limit_s=skew_limit_s, notes=notes)
     return WeeklySummary(
-        trial_code=trial.code, trial_name=trial.name, timezone=trial.timezone,
-        target=float(trial.fa_target_per_home_month), confidence_level=confidence_level, week=chosen,
-        trial_start=data.start, report_end=data.end, generated_at=now, staged_tolerance_s=staged_tolerance_s,
-        bootstrap_resamples=resamples, seed=seed, classes=classes, operations=ops,
-        definitions=tuple(d.format(tol=staged_tolerance_s) for d in DEFINITIONS), cautions=CAUTIONS,
-        limits=LIMITS, notes=tuple(notes))
+        trial_code=trial.code,
+        trial_name=trial.name,
+        timezone=trial.timezone,
+        target=float(trial.fa_target_per_home_month),
+        confidence_level=confidence_level,
+        week=chosen,
+        trial_start=data.start,
+        report_end=data.end,
+        generated_at=now,
+        staged_tolerance_s=staged_tolerance_s,
+        bootstrap_resamples=resamples,
+        seed=seed,
+        classes=classes,
+        operations=ops,
+        definitions=tuple(d.format(tol=staged_tolerance_s) for d in DEFINITIONS),
+        cautions=CAUTIONS,
+        limits=LIMITS,
+        notes=tuple(notes),
+    )
 
 
 def _subtract(frame: pd.DataFrame, removed: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
@@ -260,8 +286,15 @@ def _subtract(frame: pd.DataFrame, removed: pd.DataFrame, keys: list[str]) -> pd
 class _Context:
     """Frames prepared once (staged detections taken out) for every class and scope."""
 
-    def __init__(self, data: load.PilotData, confidence_level: float, tolerance_s: float, resamples: int,
-                 seed: int, firmware_pair: tuple[str, str] | None) -> None:
+    def __init__(
+        self,
+        data: load.PilotData,
+        confidence_level: float,
+        tolerance_s: float,
+        resamples: int,
+        seed: int,
+        firmware_pair: tuple[str, str] | None,
+    ) -> None:
         self.data = data
         self.level = confidence_level
         self.resamples = resamples
@@ -272,20 +305,25 @@ class _Context:
         self.windows = data.windows.assign(home_code=data.windows["home_id"].map(codes))
         self.causes = {c["code"]: c["label"] for c in (data.trial.causes or [])}
 
-        self.match = staged.match(data.staged_events, data.staged_alerts, data.installations,
-                                  tolerance_s=tolerance_s)
+        self.match = staged.match(
+            data.staged_events, data.staged_alerts, data.installations, tolerance_s=tolerance_s
+        )
         matched = data.staged_alerts[data.staged_alerts["alert_id"].isin(self.match.matches["alert_id"])]
         self.matched = matched
         m = matched[matched["counted"]]
-        self.counted = _subtract(data.counted, m, ["window_id", "period", "sound_class", "outcome", "cause",
-                                                   "resemblance"])
+        self.counted = _subtract(
+            data.counted, m, ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]
+        )
         self.by_week = _subtract(data.by_week, m, ["week_index", "sound_class", "outcome"])
-        self.fa_scores = _subtract(data.fa_scores, m[m["outcome"] == "false_alarm"],
-                                   ["period", "sound_class", "score_milli"])
+        self.fa_scores = _subtract(
+            data.fa_scores, m[m["outcome"] == "false_alarm"], ["period", "sound_class", "score_milli"]
+        )
         week_index = data.week.index
         mon = data.monitored
-        self.seconds = {"week": mon[mon["bucket"] == week_index].groupby("window_id")["seconds"].sum(),
-                        "to_date": mon.groupby("window_id")["seconds"].sum()}
+        self.seconds = {
+            "week": mon[mon["bucket"] == week_index].groupby("window_id")["seconds"].sum(),
+            "to_date": mon.groupby("window_id")["seconds"].sum(),
+        }
         self.firmware_pair = firmware_pair or self._busiest_firmware()
 
     def _busiest_firmware(self) -> tuple[str, str] | None:
@@ -308,37 +346,62 @@ class _Context:
         fa = counted[counted["outcome"] == "false_alarm"]
         per_window = self.windows.assign(
             seconds=self.windows["window_id"].map(self.seconds[scope]).fillna(0.0),
-            false_alarms=self.windows["window_id"].map(fa.groupby("window_id")["alerts"].sum()).fillna(0)
-            .astype(np.int64))
+            false_alarms=self.windows["window_id"]
+            .map(fa.groupby("window_id")["alerts"].sum())
+            .fillna(0)
+            .astype(np.int64),
+        )
         per_window["home_months"] = per_window["seconds"] / rates.HOME_MONTH_S
-        homes = (per_window.groupby("home_code", as_index=False)[["false_alarms", "home_months"]].sum())
+        homes = per_window.groupby("home_code", as_index=False)[["false_alarms", "home_months"]].sum()
         homes = homes[(homes["home_months"] > 0) | (homes["false_alarms"] > 0)]
         total_fa = int(homes["false_alarms"].sum())
         total_hm = float(homes["home_months"].sum())
         rate = rates.poisson_rate(total_fa, total_hm, confidence_level=level)
-        boot = rates.home_bootstrap(homes["false_alarms"].to_numpy(), homes["home_months"].to_numpy(),
-                                    rng=self._rng(class_index, s_index), resamples=self.resamples,
-                                    confidence_level=level)
+        boot = rates.home_bootstrap(
+            homes["false_alarms"].to_numpy(),
+            homes["home_months"].to_numpy(),
+            rng=self._rng(class_index, s_index),
+            resamples=self.resamples,
+            confidence_level=level,
+        )
         disp = rates.overdispersion(homes["false_alarms"].to_numpy(), homes["home_months"].to_numpy())
         pareto = shares.home_pareto(homes, confidence_level=level)
 
         causes = shares.category_shares(
-            fa.assign(cause=[self.causes.get(c, c) if c is not None else NOT_RECORDED for c in fa["cause"]])
-            .rename(columns={"alerts": "false_alarms"}), total_hm, category="cause", confidence_level=level)
-        grade_counts = fa.assign(grade=[GRADE_NAMES.get(g, NOT_GRADED) if g is not None else NOT_GRADED
-                                        for g in fa["resemblance"]]).rename(columns={"alerts": "false_alarms"})
+            fa.assign(cause=[c or NOT_RECORDED for c in fa["cause"]]).rename(
+                columns={"alerts": "false_alarms"}
+            ),
+            total_hm,
+            category="cause",
+            confidence_level=level,
+        )
+        causes.insert(1, "label", [self.causes.get(c, c.replace("_", " ")) for c in causes["cause"]])
+        grade_counts = fa.assign(grade=[GRADE_NAMES.get(g, NOT_GRADED) for g in fa["resemblance"]]).rename(
+            columns={"alerts": "false_alarms"}
+        )
         grades = shares.category_shares(
-            pd.concat([grade_counts[["grade", "false_alarms"]],
-                       pd.DataFrame({"grade": list(GRADE_NAMES.values()), "false_alarms": 0})]),
-            total_hm, category="grade", confidence_level=level)
+            pd.concat(
+                [
+                    grade_counts[["grade", "false_alarms"]],
+                    pd.DataFrame({"grade": list(GRADE_NAMES.values()), "false_alarms": 0}),
+                ]
+            ),
+            total_hm,
+            category="grade",
+            confidence_level=level,
+        )
 
         parts = []
         for dim_index, (dim, title) in enumerate(DIMENSIONS):
-            table = breakdowns.rates_by(per_window[[dim, "false_alarms", "home_months"]], dim,
-                                        confidence_level=level)
+            table = breakdowns.rates_by(
+                per_window[[dim, "false_alarms", "home_months"]], dim, confidence_level=level
+            )
             table = table[table["home_months"] > 0].reset_index(drop=True)
-            test = breakdowns.heterogeneity(table["false_alarms"].to_numpy(), table["home_months"].to_numpy(),
-                                            rng=self._rng(class_index, s_index, 10 + dim_index))
+            test = breakdowns.heterogeneity(
+                table["false_alarms"].to_numpy(),
+                table["home_months"].to_numpy(),
+                rng=self._rng(class_index, s_index, 10 + dim_index),
+            )
             parts.append(Breakdown(dimension=dim, title=title, table=table, test=test))
         comparison = None
         if self.firmware_pair is not None:
@@ -359,20 +422,39 @@ class _Context:
         if scope == "week":
             matched = matched[matched["period"] == "week"]
         by_outcome = counted.groupby("outcome")["alerts"].sum()
-        tally = AlertTally(**{o: int(by_outcome.get(o, 0)) for o in OUTCOMES},
-                           staged_detections=len(matched), outside_monitored_time=int(outside))
+        tally = AlertTally(
+            **{o: int(by_outcome.get(o, 0)) for o in OUTCOMES},
+            staged_detections=len(matched),
+            outside_monitored_time=int(outside),
+        )
         return ClassFigures(
-            sound_class=sound_class, scope=scope, label=d.week.label if scope == "week" else "trial to date",
-            alerts=tally, homes_monitored=int((homes["home_months"] > 0).sum()), home_months=total_hm,
-            rate=rate, upper_one_sided=rates.upper_bound_one_sided(total_fa, total_hm, confidence_level=level),
-            bootstrap=boot, overdispersion=disp, homes_note=_homes_note(rate, boot, disp),
-            homes=pareto, concentration=shares.concentration(homes, confidence_level=level), causes=causes,
-            grades=grades, above_target=shares.homes_above_target(pareto, target), breakdowns=tuple(parts),
-            firmware_comparison=comparison, detection=detection, whatif=table, whatif_floor=floor,
-            readiness=rates.readiness(total_fa, total_hm, target, confidence_level=level))
+            sound_class=sound_class,
+            scope=scope,
+            label=d.week.label if scope == "week" else "trial to date",
+            alerts=tally,
+            homes_monitored=int((homes["home_months"] > 0).sum()),
+            home_months=total_hm,
+            rate=rate,
+            upper_one_sided=rates.upper_bound_one_sided(total_fa, total_hm, confidence_level=level),
+            bootstrap=boot,
+            overdispersion=disp,
+            homes_note=_homes_note(rate, boot, disp),
+            homes=pareto,
+            concentration=shares.concentration(homes, confidence_level=level),
+            causes=causes,
+            grades=grades,
+            above_target=shares.homes_above_target(pareto, target),
+            breakdowns=tuple(parts),
+            firmware_comparison=comparison,
+            detection=detection,
+            whatif=table,
+            whatif_floor=floor,
+            readiness=rates.readiness(total_fa, total_hm, target, confidence_level=level),
+        )
 
-    def _whatif(self, sound_class: str, scope: str, home_months: float,
-                events: pd.DataFrame) -> tuple[pd.DataFrame, float]:
+    def _whatif(
+        self, sound_class: str, scope: str, home_months: float, events: pd.DataFrame
+    ) -> tuple[pd.DataFrame, float]:
         floors = self.data.score_floors
         floor = whatif.score_floor(floors.loc[floors["sound_class"] == sound_class, "min_score"])
         if math.isnan(floor):
@@ -383,23 +465,40 @@ class _Context:
         s = self._scoped(self.fa_scores, scope)
         s = s[s["sound_class"] == sound_class]
         best = np.floor(events["best_score"].to_numpy(dtype=np.float64) * 1000.0 + 1e-6)
-        table = whatif.at_thresholds(s["score_milli"].to_numpy(dtype=np.float64), home_months, best, grid,
-                                     floor=floor_milli, target=self.target, fa_counts=s["alerts"].to_numpy(),
-                                     confidence_level=self.level)
+        table = whatif.at_thresholds(
+            s["score_milli"].to_numpy(dtype=np.float64),
+            home_months,
+            best,
+            grid,
+            floor=floor_milli,
+            target=self.target,
+            fa_counts=s["alerts"].to_numpy(),
+            confidence_level=self.level,
+        )
         table["threshold"] = table["threshold"] / 1000.0
         return table, floor_milli / 1000.0
 
     def trend(self, sound_class: str) -> pd.DataFrame:
         d = self.data
-        fa = self.by_week[(self.by_week["sound_class"] == sound_class) & (self.by_week["outcome"] == "false_alarm")]
+        fa = self.by_week[
+            (self.by_week["sound_class"] == sound_class) & (self.by_week["outcome"] == "false_alarm")
+        ]
         hm = d.monitored.groupby("bucket")["seconds"].sum() / rates.HOME_MONTH_S
-        weeks = pd.concat([
-            fa.groupby("week_index")["alerts"].sum().rename("false_alarms").reset_index(),
-            pd.DataFrame({"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}),
-        ], ignore_index=True).fillna(0.0)
+        weeks = pd.concat(
+            [
+                fa.groupby("week_index")["alerts"].sum().rename("false_alarms").reset_index(),
+                pd.DataFrame({"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}),
+            ],
+            ignore_index=True,
+        ).fillna(0.0)
         first = trend.week_of(d.start, d.trial.timezone).index
-        out = trend.weekly_rates(weeks, first_index=first, last_index=d.week.index, tz=d.trial.timezone,
-                                 confidence_level=self.level)
+        out = trend.weekly_rates(
+            weeks,
+            first_index=first,
+            last_index=d.week.index,
+            tz=d.trial.timezone,
+            confidence_level=self.level,
+        )
         out["target"] = self.target
         return out
 
@@ -411,26 +510,36 @@ def _with_codes(detection: staged.Detection, codes: pd.Series) -> staged.Detecti
     return dataclasses.replace(detection, missed=missed[cols])
 
 
-def _homes_note(rate: rates.RateEstimate, boot: rates.BootstrapRate, disp: rates.Overdispersion) -> str | None:
+def _homes_note(
+    rate: rates.RateEstimate, boot: rates.BootstrapRate, disp: rates.Overdispersion
+) -> str | None:
     """One line on why the two intervals differ (or agree)."""
     if boot.reason is not None or disp.reason is not None or rate.reason is not None:
         return None
     if disp.p_value < 0.05 and disp.ratio > 1.5:
-        return (f"Homes are not alike (overdispersion {disp.ratio:.1f}, chi-square p = {disp.p_value:.2g}): the home "
-                "bootstrap interval resamples whole homes and is wider than the Poisson interval, which treats "
-                "every home-month as interchangeable.")
-    return (f"Homes look alike (overdispersion {disp.ratio:.1f}), so the home bootstrap and Poisson intervals "
-            "are close.")
+        return (
+            f"Homes are not alike (overdispersion {disp.ratio:.1f}, chi-square p = {disp.p_value:.2g}): "
+            "the home bootstrap interval resamples whole homes and is wider than the Poisson interval, "
+            "which treats every home-month as interchangeable."
+        )
+    return (
+        f"Homes look alike (overdispersion {disp.ratio:.1f}), so the home bootstrap and Poisson intervals "
+        "are close."
+    )
 
 
-def _operations(session: Session, ctx: _Context, *, now: dt.datetime, skew_limit_s: float,
-                notes: list[str]) -> Operations:
+def _operations(
+    session: Session, ctx: _Context, *, now: dt.datetime, skew_limit_s: float, notes: list[str]
+) -> Operations:
     d = ctx.data
     week_s = ctx.seconds["week"]
     w = ctx.windows
-    span = (w["ended_at"].clip(upper=pd.Timestamp(d.end)) - w["started_at"].clip(lower=pd.Timestamp(d.week.start_at)))
-    w = w.assign(window_s=span.dt.total_seconds().clip(lower=0.0),
-                 listening_s=w["window_id"].map(week_s).fillna(0.0))
+    span = w["ended_at"].clip(upper=pd.Timestamp(d.end)) - w["started_at"].clip(
+        lower=pd.Timestamp(d.week.start_at)
+    )
+    w = w.assign(
+        window_s=span.dt.total_seconds().clip(lower=0.0), listening_s=w["window_id"].map(week_s).fillna(0.0)
+    )
     in_week = w[w["window_s"] > 0]
     listening = in_week.groupby("device_id")["listening_s"].sum()
     installed_now = set(w.loc[w["ended_at"] >= pd.Timestamp(d.end), "device_id"])
@@ -448,7 +557,9 @@ def _operations(session: Session, ctx: _Context, *, now: dt.datetime, skew_limit
         devices_installed=int(in_week["device_id"].nunique()),
         uptime_share=float(in_week["listening_s"].sum()) / window_total if window_total > 0 else math.nan,
         silent_devices=tuple(sorted(silent["serial"])),
-        skewed_devices=tuple((str(r.serial), float(r.clock_skew_s)) for r in skewed.sort_values("serial").itertuples()),
+        skewed_devices=tuple(
+            (str(r.serial), float(r.clock_skew_s)) for r in skewed.sort_values("serial").itertuples()
+        ),
         skew_limit_s=skew_limit_s,
         outside_monitored_time=outside,
         review=_review(session, d.trial, now, notes),
@@ -464,9 +575,15 @@ def _review(session: Session, trial: Trial, now: dt.datetime, notes: list[str]) 
         return None
     ov = overview.review_overview(session, trial.id, now=now)
     return ReviewFigures(
-        backlog=ov.backlog.count, oldest_age_s=ov.backlog.oldest_age_s, median_age_s=ov.backlog.median_age_s,
-        double_reviewed=ov.double_reviewed, percent_agreement=ov.percent_agreement.estimate,
-        kappa=ov.kappa_overall.estimate, kappa_reason=ov.kappa_overall.reason, alpha=ov.alpha.estimate)
+        backlog=ov.backlog.count,
+        oldest_age_s=ov.backlog.oldest_age_s,
+        median_age_s=ov.backlog.median_age_s,
+        double_reviewed=ov.double_reviewed,
+        percent_agreement=ov.percent_agreement.estimate,
+        kappa=ov.kappa_overall.estimate,
+        kappa_reason=ov.kappa_overall.reason,
+        alpha=ov.alpha.estimate,
+    )
 
 
 def _quota(session: Session, trial: Trial, notes: list[str]) -> tuple[QuotaLine, ...] | None:
@@ -476,8 +593,16 @@ def _quota(session: Session, trial: Trial, notes: list[str]) -> tuple[QuotaLine,
         notes.append("Quota status is unavailable: the household register is not installed.")
         return None
     report = households_service.quota_report(session, trial)
-    return tuple(QuotaLine(label=s.target.label, count=s.count, min_count=s.target.min_count,
-                           max_count=s.target.max_count, status=s.status) for s in report.targets)
+    return tuple(
+        QuotaLine(
+            label=s.target.label,
+            count=s.count,
+            min_count=s.target.min_count,
+            max_count=s.target.max_count,
+            status=s.status,
+        )
+        for s in report.targets
+    )
 
 
 # ---------------------------------------------------------------------------------------
@@ -505,8 +630,9 @@ def _plain(value: Any) -> Any:
         return None if pd.isna(value) else value.isoformat()
     if isinstance(value, dt.datetime | dt.date):
         return value.isoformat()
-    if value is pd.NaT or (value is not None and not isinstance(value, str) and pd.api.types.is_scalar(value)
-                           and pd.isna(value)):
+    if value is pd.NaT or (
+        value is not None and not isinstance(value, str) and pd.api.types.is_scalar(value) and pd.isna(value)
+    ):
         return None
     return value
 
@@ -523,17 +649,34 @@ def summary_tables(summary: WeeklySummary) -> dict[str, pd.DataFrame]:
     rows = []
     for cs in summary.classes:
         for f in (cs.week, cs.to_date):
-            rows.append({
-                "sound_class": f.sound_class, "scope": f.label, "false_alarms": f.rate.events,
-                "home_months": f.home_months, "rate": f.rate.estimate, "low": f.rate.low, "high": f.rate.high,
-                "upper_one_sided": f.upper_one_sided, "bootstrap_low": f.bootstrap.low,
-                "bootstrap_high": f.bootstrap.high, "overdispersion": f.overdispersion.ratio,
-                "target": summary.target, "readiness": f.readiness.state,
-                "more_home_months": f.readiness.more_home_months, "staged_events": f.detection.events,
-                "staged_detected": f.detection.detected, "detected_share": f.detection.share.estimate,
-                "detected_low": f.detection.share.low, "detected_high": f.detection.share.high,
-                "confirmed": f.alerts.confirmed, "unsure": f.alerts.unsure, "unusable": f.alerts.unusable,
-                "pending": f.alerts.pending, "outside_monitored_time": f.alerts.outside_monitored_time})
+            rows.append(
+                {
+                    "sound_class": f.sound_class,
+                    "scope": f.label,
+                    "false_alarms": f.rate.events,
+                    "home_months": f.home_months,
+                    "rate": f.rate.estimate,
+                    "low": f.rate.low,
+                    "high": f.rate.high,
+                    "upper_one_sided": f.upper_one_sided,
+                    "bootstrap_low": f.bootstrap.low,
+                    "bootstrap_high": f.bootstrap.high,
+                    "overdispersion": f.overdispersion.ratio,
+                    "target": summary.target,
+                    "readiness": f.readiness.state,
+                    "more_home_months": f.readiness.more_home_months,
+                    "staged_events": f.detection.events,
+                    "staged_detected": f.detection.detected,
+                    "detected_share": f.detection.share.estimate,
+                    "detected_low": f.detection.share.low,
+                    "detected_high": f.detection.share.high,
+                    "confirmed": f.alerts.confirmed,
+                    "unsure": f.alerts.unsure,
+                    "unusable": f.alerts.unusable,
+                    "pending": f.alerts.pending,
+                    "outside_monitored_time": f.alerts.outside_monitored_time,
+                }
+            )
             prefix = f"{f.sound_class}-{f.scope}"
             tables[f"{prefix}-homes"] = f.homes
             tables[f"{prefix}-causes"] = f.causes

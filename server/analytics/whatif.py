@@ -82,17 +82,19 @@ def at_thresholds(
     n = np.full(len(t), len(best), dtype=np.int64)
     lim = rates.proportion_limits(detected, n, confidence_level=confidence_level, method="wilson")
     share = np.divide(detected, n, out=np.full(len(t), np.nan), where=n > 0)
-    return pd.DataFrame({
-        "threshold": t,
-        "false_alarms": fa,
-        "rate": r["estimate"].to_numpy(),
-        "low": r["low"].to_numpy(),
-        "high": r["high"].to_numpy(),
-        "events": n,
-        "detected": detected,
-        "detected_share": share,
-        "detected_low": lim.low,
-        "detected_high": lim.high,
-        "miss_share": 1.0 - share,
-        "meets_target": r["high"].to_numpy() <= target,
-    })
+    return pd.DataFrame(
+        {
+            "threshold": t,
+            "false_alarms": fa,
+            "rate": r["estimate"].to_numpy(),
+            "low": r["low"].to_numpy(),
+            "high": r["high"].to_numpy(),
+            "events": n,
+            "detected": detected,
+            "detected_share": share,
+            "detected_low": lim.low,
+            "detected_high": lim.high,
+            "miss_share": 1.0 - share,
+            "meets_target": r["high"].to_numpy() <= target,
+        }
+    )

@@ -24,11 +24,13 @@ def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersActio
     p.add_argument("--homes", type=int, default=36,
                    help=f"installed homes, {scenario.MIN_HOMES} to {scenario.MAX_HOMES} (default 36)")
     p.add_argument("--weeks", type=int, default=10,
-                   help=f"length of the pilot, {scenario.MIN_WEEKS} to {scenario.MAX_WEEKS} weeks (default 10)")
-    p.add_argument("--starts-on", help="the pilot's first day, YYYY-MM-DD (default: the Monday that makes "
-                                       "last week the pilot's last)")
+                   help=f"length of the pilot, {scenario.MIN_WEEKS} to {scenario.MAX_WEEKS} weeks "
+                        "(default 10)")
+    p.add_argument("--starts-on", help="the pilot's first day, YYYY-MM-DD; it then runs whole weeks "
+                                       "(default: it began --weeks weeks ago and runs until now)")
     p.add_argument("--no-serve", action="store_true", help="seed only")
-    p.add_argument("--keep", action="store_true", help="serve the demo already in --data-dir, without seeding")
+    p.add_argument("--keep", action="store_true",
+                   help="serve the demo already in --data-dir, without seeding it again")
     p.add_argument("--host", default="127.0.0.1")
     p.add_argument("--port", type=int, default=8000)
     p.add_argument("--log-level", default="warning")
@@ -70,7 +72,8 @@ def cmd_demo(args: argparse.Namespace, _settings: object) -> int:
         print()
         sign_ins = result.sign_ins
     url = f"http://{args.host}:{args.port}/"
-    print(("Sign in at " + url if not args.no_serve else "Sign-ins (serve with `trialhouse demo --keep`)") + ":")
+    heading = f"Sign in at {url}" if not args.no_serve else "Sign-ins (serve with `trialhouse demo --keep`)"
+    print(f"{heading}:")
     width = max(len(s.email) for s in sign_ins)
     for s in sign_ins:
         print(f"  {s.label:<23} {s.email:<{width}}  {s.password}")

@@ -20,7 +20,7 @@ import os
 import secrets
 import shutil
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -186,7 +186,8 @@ class _ClipMaker:
         self.futures: dict[int, cf.Future[tuple[bytes, float]]] = {}
         self.submitted = 0
         if workers > 0 and len(self.jobs) >= 16 and "fork" in multiprocessing.get_all_start_methods():
-            self.pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("fork"))
+            self.pool = cf.ProcessPoolExecutor(max_workers=workers,
+                                               mp_context=multiprocessing.get_context("fork"))
             self._top_up(0)
 
     def _top_up(self, i: int) -> None:
@@ -267,7 +268,8 @@ def seed_demo(data_dir: Path, *, seed: int = 1, homes: int = 36, weeks: int = 10
     _write_marker(Path(data_dir), {
         "kind": MARKER_KIND, "complete": True, "seed": seed, "homes": homes, "weeks": weeks,
         "starts_on": plan.starts_on.isoformat(), "seeded_at": dt.datetime.now(dt.UTC).isoformat(),
-        "seconds": round(timings["total"], 2), "counts": counts,
+        "seconds": round(timings["total"], 2), "timings": {k: round(v, 2) for k, v in timings.items()},
+        "counts": counts,
         "sign_ins": [s.__dict__ for s in sign_ins]})
     return result
 
@@ -309,7 +311,8 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
         actor=admin)
     households_service.seed_default_catalogue(s, trial)
     for line in plan.quota:
-        key, value = None, None
+        key: str | None = None
+        value: str | bool | None = None
         if line.trait is not None and line.trait.startswith("dwelling:"):
             key, value = DWELLING_ATTRIBUTE, line.trait.split(":", 1)[1]
         elif line.trait is not None:
@@ -329,8 +332,8 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
     today = plan.end.date() + dt.timedelta(days=1)
     for hh in plan.households:
         first = hh.steps[0]
-        home = households_service.create_home(s, trial, attributes=_attributes(s, trial, hh), actor=coordinator,
-                                              at=first.at, note=first.note)
+        home = households_service.create_home(s, trial, attributes=_attributes(s, trial, hh),
+                                              actor=coordinator, at=first.at, note=first.note)
         homes[hh.key] = home
         c = hh.contact
         households_service.set_contact(s, home, actor=coordinator, names=c.names, address=c.address,
@@ -391,7 +394,8 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
     alert_ids: dict[str, int] = {}
     try:
         with TestClient(app, base_url="http://demo.invalid") as client:
-            sims = {serial: DeviceSimulator("http://demo.invalid", token, client=client, retries=0)
+            sims = {serial: DeviceSimulator("http://demo.invalid", token, client=client,  # type: ignore[arg-type]
+                                        retries=0)
                     for serial, token in tokens.items()}
             for at, kind, serial, i in events:
                 clock.at = at
@@ -406,8 +410,8 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
                 clip, offset = clips.get(i)
                 d = plan.detections[i]
                 r = sim.send_alert(clip=clip, sound_class=d.sound_class, score=d.score,
-                                   detected_at=d.at + offsets[serial], clip_offset_s=offset, event_id=d.event_id,
-                                   firmware=d.firmware)
+                                   detected_at=d.at + offsets[serial], clip_offset_s=offset,
+                                   event_id=d.event_id, firmware=d.firmware)
                 if r.status != 201:
                     raise DemoError(f"alert {d.event_id} of {serial} got {r.status}: {r.body}")
                 alert_ids[d.event_id] = int(r.body["alert_id"])
@@ -472,7 +476,10 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
         seq += 1
         heapq.heappush(tasks, _Task(at, seq, kind, alert_id, d))
 
-    for d in plan.detections:
+    # The newest clips wait for the demo's reviewers: a queue of at least a few.
+    backlog = max(4, round(0.04 * len(plan.detections)))
+    by_receipt = sorted(plan.detections, key=lambda d: d.at + dt.timedelta(seconds=d.received_delay_s))
+    for d in by_receipt[:-backlog] if len(by_receipt) > backlog else []:
         received = d.at + dt.timedelta(seconds=d.received_delay_s)
         at = received + dt.timedelta(hours=float(rng.uniform(0.5, 30.0)))
         if at < plan.end:
@@ -509,14 +516,17 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
         if erased_home_id is not None and alert.home_id == erased_home_id:
             continue  # its clip is gone; the record stays as it was
         if task.kind == "first":
-            reviewer = first_pool[int(rng.choice(3, p=[0.45, 0.4, 0.15]))]
             label, cause, resemblance = _answer(d)
-            if d.ambiguous and unsure_left > 0 and rng.random() < 0.6:
+            if d.ambiguous and unsure_left > 0:
+                # Not the adjudicator: the disagreement this starts is hers to settle.
+                reviewer = second_pool[int(rng.integers(0, 2))]
                 label, cause, resemblance = "unsure", None, None
                 unsure_left -= 1
                 counts["unsure"] += 1
-            elif rng.random() < 0.02:
-                label, cause, resemblance = _other_answer(d, rng)
+            else:
+                reviewer = first_pool[int(rng.choice(3, p=[0.45, 0.4, 0.15]))]
+                if rng.random() < 0.02:
+                    label, cause, resemblance = _other_answer(d, rng)
             note = _NOTES.get(d.source) if rng.random() < 0.3 or d.private else None
             review_service.record_verdict(s, reviewer=reviewer, alert_id=alert.id, label=label, cause=cause,
                                           resemblance=resemblance, note=note, private=d.private, key=key,
@@ -525,13 +535,13 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
             counts["private"] += int(d.private)
             first_of[alert.id] = reviewer.id
             if alert.state == AlertState.second_review:
-                at = task.at + dt.timedelta(hours=float(rng.uniform(2.0, 48.0)))
+                at = task.at + dt.timedelta(hours=float(rng.uniform(2.0, 48.0 if not d.ambiguous else 12.0)))
                 if at < plan.end:
                     push(at, "second", alert.id)
         elif task.kind == "second":
             reviewer = next(r for r in second_pool[int(rng.integers(0, 2)):] + second_pool
                             if r.id != first_of[alert.id])
-            disagree = rng.random() < 0.3
+            disagree = rng.random() < 0.2
             label, cause, resemblance = _other_answer(d, rng) if disagree else _answer(d)
             review_service.record_verdict(s, reviewer=reviewer, alert_id=alert.id, label=label, cause=cause,
                                           resemblance=resemblance, key=key, now=task.at)
@@ -545,9 +555,9 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
                     push(at, "adjudicate", alert.id)
         elif task.kind == "adjudicate":
             label, cause, resemblance = _answer(d)
-            review_service.adjudicate(s, adjudicator=adjudicator, alert_id=alert.id, label=label, cause=cause,
-                                      resemblance=resemblance, note="Listened twice; the spectrogram settles it.",
-                                      now=task.at)
+            review_service.adjudicate(s, adjudicator=adjudicator, alert_id=alert.id, label=label,
+                                      cause=cause, resemblance=resemblance,
+                                      note="Listened twice; the spectrogram settles it.", now=task.at)
     s.flush()
     states = dict(s.execute(select(Alert.state, func.count(Alert.id)).group_by(Alert.state)).all())
     counts["pending"] = int(states.get(AlertState.pending, 0))

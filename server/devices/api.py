@@ -64,7 +64,7 @@ async def _read_limited(request: Request, limit: int) -> bytes:
              summary="Report that the device is alive and whether it is listening",
              responses={401: {}, 403: {}, 422: {}})
 async def post_heartbeat(request: Request, device: CurrentDevice, session: DbSession,
-                         settings: SettingsDep) -> HeartbeatOut:
+                         settings: SettingsDep) -> JSONResponse:
     raw = await _read_limited(request, HEARTBEAT_BODY_LIMIT)
     try:
         beat = HeartbeatIn.model_validate_json(raw)
@@ -75,11 +75,12 @@ async def post_heartbeat(request: Request, device: CurrentDevice, session: DbSes
                                else f"Heartbeat body: {err.get('msg')}.", field=loc or None,
                                code="invalid_request") from exc
 
-    def work() -> HeartbeatOut:
+    def work() -> JSONResponse:
         received_at, next_s = service.record_heartbeat(session, device=device, beat=beat, settings=settings,
                                                         now=request.app.state.clock())
         session.commit()
-        return HeartbeatOut(received_at=received_at, next_heartbeat_s=next_s)
+        # A ready response: FastAPI would otherwise validate and encode the model a second time.
+        return JSONResponse(HeartbeatOut(received_at=received_at, next_heartbeat_s=next_s).model_dump(mode="json"))
 
     return await run_in_threadpool(work)
 

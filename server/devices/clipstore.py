@@ -36,20 +36,36 @@ class ClipStore:
 
     def spool(self) -> SpooledUpload:
         """A temporary file in the store's own filesystem, for streaming an upload into."""
-        self.ensure()
-        return SpooledUpload(self)
+        try:
+            return SpooledUpload(self)
+        except FileNotFoundError:  # the spool directory was removed since start-up
+            self.ensure()
+            return SpooledUpload(self)
 
     def put_file(self, tmp_path: Path, sha256: str) -> str:
         """Move an fsynced temporary file into place under its content key; return the key."""
         key = self.key_for(sha256)
         final = self.path(key)
-        final.parent.mkdir(parents=True, exist_ok=True)
         if final.exists():
             tmp_path.unlink(missing_ok=True)
             return key
+        self._make_dirs(final.parent)
         os.replace(tmp_path, final)
         _fsync_dir(final.parent)
         return key
+
+    def _make_dirs(self, path: Path) -> None:
+        """Create missing directories and fsync the parent of each, so the new entries survive a crash."""
+        missing = []
+        while not path.is_dir():
+            missing.append(path)
+            path = path.parent
+        for d in reversed(missing):
+            try:
+                d.mkdir()
+            except FileExistsError:
+                pass
+            _fsync_dir(d.parent)
 
     def put_bytes(self, data: bytes) -> tuple[str, str]:
         sha = hashlib.sha256(data).hexdigest()

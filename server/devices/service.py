@@ -20,6 +20,7 @@ from server.devices.clipstore import ClipStore, SpooledUpload
 from server.devices.models import Alert, Clip, Device, ListeningSegment
 from server.devices.schemas import AlertMeta, EventIdOnly, HeartbeatIn
 from server.errors import (
+    AppError,
     ClipDigestMismatch,
     Conflict,
     DeviceRevoked,
@@ -29,6 +30,9 @@ from server.errors import (
     InvalidToken,
     NotFound,
     UnknownSoundClass,
+    UnreadableAudio,
+    UnsupportedAudio,
+    UnsupportedChannels,
     ValidationFailed,
 )
 from server.households.models import Installation
@@ -121,13 +125,14 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     # invalid_request, like every other heartbeat body error.
     _check_time_window(beat.sent_at, now, settings, "sent_at", InvalidRequest)
     _lock_device(session, device)
-    device.last_seen_at = now
-    device.firmware = beat.firmware
-    device.clock_skew_s = round((beat.sent_at - now).total_seconds(), 3)
+    # Read before changing the device, so that all the changes go out in one flush.
     seg = session.scalar(
         select(ListeningSegment)
         .where(ListeningSegment.device_id == device.id, ListeningSegment.is_open.is_(True))
         .order_by(ListeningSegment.started_at.desc()).limit(1))
+    device.last_seen_at = now
+    device.firmware = beat.firmware
+    device.clock_skew_s = round((beat.sent_at - now).total_seconds(), 3)
     gap = dt.timedelta(seconds=device.heartbeat_interval_s * settings.heartbeat_gap_factor)
     if beat.listening:
         if seg is not None and dt.timedelta(0) <= now - seg.ended_at <= gap:
@@ -227,6 +232,11 @@ def find_alert_by_event(session: Session, device_id: int, event_id: str) -> Aler
     return session.scalar(select(Alert).where(Alert.device_id == device_id, Alert.event_id == event_id))
 
 
+def _stored_event(session: Session, device_id: int, event_id: str) -> int | None:
+    """The id of the device's alert with this event_id, without loading it (the usual answer is none)."""
+    return session.scalar(select(Alert.id).where(Alert.device_id == device_id, Alert.event_id == event_id))
+
+
 def _duplicate_or_conflict(existing: Alert, sha: str) -> IngestResult:
     if existing.clip.sha256 == sha:
         return IngestResult(existing, True)
@@ -241,24 +251,35 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
     now = now or utcnow()
     event_id, data = _parse_meta(meta_raw)
     sha = upload.sha256
-    existing = find_alert_by_event(session, device.id, event_id)
-    if existing is not None:
+    # What needs no database comes before the first query: on SQLite that query takes the write
+    # lock for the rest of the transaction, and the fsync and the full decode would hold it for
+    # every other device. An audio error is kept and raised in its documented place below.
+    upload.finish()
+    info: audio.ClipInfo | None = None
+    audio_error: AppError | None = None
+    try:
+        info = audio.probe(upload.path, min_rate_hz=settings.min_rate_hz, max_rate_hz=settings.max_rate_hz,
+                           min_duration_s=settings.min_clip_s, max_duration_s=settings.max_clip_s)
+    except (UnreadableAudio, UnsupportedAudio, UnsupportedChannels) as exc:
+        audio_error = exc
+    if _stored_event(session, device.id, event_id) is not None:
+        existing = find_alert_by_event(session, device.id, event_id)
+        assert existing is not None
         return _duplicate_or_conflict(existing, sha)
     try:
         meta = AlertMeta.model_validate_json(meta_raw)
     except ValidationError as exc:
         raise InvalidMeta(_first_error(exc)) from exc
-    trial = session.get(Trial, device.trial_id)
-    assert trial is not None
-    if meta.sound_class not in trial.sound_classes:
+    classes = session.scalar(select(Trial.sound_classes).where(Trial.id == device.trial_id)) or []
+    if meta.sound_class not in classes:
         raise UnknownSoundClass(f"sound_class '{meta.sound_class}' is not one of this trial's classes: "
-                                f"{', '.join(trial.sound_classes)}.", field="sound_class")
+                                f"{', '.join(classes)}.", field="sound_class")
     _check_time_window(meta.detected_at, now, settings, "detected_at", InvalidMeta)
     if meta.clip_sha256 is not None and meta.clip_sha256 != sha:
         raise ClipDigestMismatch(f"clip_sha256 says {meta.clip_sha256} but the clip's SHA-256 is {sha}.")
-    upload.finish()
-    info = audio.probe(upload.path, min_rate_hz=settings.min_rate_hz, max_rate_hz=settings.max_rate_hz,
-                       min_duration_s=settings.min_clip_s, max_duration_s=settings.max_clip_s)
+    if audio_error is not None:
+        raise audio_error
+    assert info is not None
     if meta.clip_offset_s > info.duration_s:
         raise InvalidMeta(f"clip_offset_s is {meta.clip_offset_s} s but the clip lasts only "
                           f"{info.duration_s:.3f} s.", field="clip_offset_s")
@@ -271,9 +292,13 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
                   detected_at_text=str(data.get("detected_at"))[:64], clock_skew_s=skew,
                   received_at=now, firmware=meta.firmware, clip_id=clip.id,
                   clip_offset_s=meta.clip_offset_s)
-    inst = installation_at(session, device.id, alert.effective_at)
-    if inst is not None:
-        alert.installation_id, alert.home_id = inst.id, inst.home_id
+    placed = session.execute(
+        select(Installation.id, Installation.home_id)
+        .where(Installation.device_id == device.id, Installation.installed_at <= alert.effective_at,
+               (Installation.removed_at.is_(None)) | (Installation.removed_at > alert.effective_at))
+        .order_by(Installation.installed_at.desc()).limit(1)).first()  # as installation_at, columns only
+    if placed is not None:
+        alert.installation_id, alert.home_id = placed.id, placed.home_id
     try:
         with session.begin_nested():
             session.add(alert)
@@ -289,7 +314,8 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
 
 
 def _get_or_create_clip(session: Session, sha: str, key: str, info: audio.ClipInfo, size: int) -> Clip:
-    clip = session.scalar(select(Clip).where(Clip.sha256 == sha))
+    clip_id = session.scalar(select(Clip.id).where(Clip.sha256 == sha))  # usually none: new bytes
+    clip = session.get(Clip, clip_id) if clip_id is not None else None
     if clip is not None:
         if clip.erased_at is not None:
             clip.erased_at, clip.erased_reason, clip.storage_key = None, None, key

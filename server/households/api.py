@@ -33,9 +33,16 @@ def _trial(session: Session, code: str | None) -> Trial:
 def home_out(session: Session, home: Home) -> schemas.HomeOut:
     row = views.register_rows(session, [home])[0]
     trial = service.trial_of(session, home)
-    return schemas.HomeOut(code=row.code, trial=trial.code, state=row.state,
-                           state_changed_at=row.state_changed_at, attributes=row.attributes,
-                           devices_installed=row.devices, consented=row.consented, erased=row.erased)
+    return schemas.HomeOut(
+        code=row.code,
+        trial=trial.code,
+        state=row.state,
+        state_changed_at=row.state_changed_at,
+        attributes=row.attributes,
+        devices_installed=row.devices,
+        consented=row.consented,
+        erased=row.erased,
+    )
 
 
 def installation_out(session: Session, inst: Installation) -> schemas.InstallationOut:
@@ -43,26 +50,47 @@ def installation_out(session: Session, inst: Installation) -> schemas.Installati
 
     device = session.get(Device, inst.device_id)
     assert device is not None
-    return schemas.InstallationOut(id=inst.id, device=device.serial, home=inst.home.code, room=inst.room,
-                                   installed_at=inst.installed_at, removed_at=inst.removed_at,
-                                   last_seen_at=device.last_seen_at)
+    return schemas.InstallationOut(
+        id=inst.id,
+        device=device.serial,
+        home=inst.home.code,
+        room=inst.room,
+        installed_at=inst.installed_at,
+        removed_at=inst.removed_at,
+        last_seen_at=device.last_seen_at,
+    )
 
 
 def staged_out(session: Session, ev: StagedEvent) -> schemas.StagedEventOut:
     home = session.get(Home, ev.home_id)
     trial = session.get(Trial, ev.trial_id)
     assert home is not None and trial is not None
-    return schemas.StagedEventOut(id=ev.id, trial=trial.code, home=home.code, sound_class=ev.sound_class,
-                                  started_at=ev.started_at, ended_at=ev.ended_at, source=ev.source,
-                                  level_db=ev.level_db)
+    return schemas.StagedEventOut(
+        id=ev.id,
+        trial=trial.code,
+        home=home.code,
+        sound_class=ev.sound_class,
+        started_at=ev.started_at,
+        ended_at=ev.ended_at,
+        source=ev.source,
+        level_db=ev.level_db,
+    )
 
 
 # --- homes --------------------------------------------------------------------------------------
 
+
 @router.get("/homes", response_model=list[schemas.HomeOut])
-def api_list_homes(session: DbSession, trial: str | None = None, state: str | None = None,
-                   attribute: str | None = None, value: str | None = None, sort: str = "code",
-                   descending: bool = False, user: User = Depends(require("homes.view"))) -> list[schemas.HomeOut]:
+def api_list_homes(
+    session: DbSession,
+    trial: str | None = None,
+    state: str | None = None,
+    attribute: str | None = None,
+    value: str | None = None,
+    sort: str = "code",
+    descending: bool = False,
+    user: User = Depends(require("homes.view")),
+) -> list[schemas.HomeOut]:
     t = _trial(session, trial)
     parsed: Any = None
     if attribute:
@@ -73,43 +101,76 @@ def api_list_homes(session: DbSession, trial: str | None = None, state: str | No
             parsed = catalogue.parse_value(spec, value)
         except ValueError as exc:
             raise InvalidRequest(str(exc), field="value") from None
-    homes = service.list_homes(session, t, state=state, attribute=attribute, value=parsed, sort=sort,
-                               descending=descending)
+    homes = service.list_homes(
+        session, t, state=state, attribute=attribute, value=parsed, sort=sort, descending=descending
+    )
     rows = views.register_rows(session, homes)
-    return [schemas.HomeOut(code=r.code, trial=t.code, state=r.state, state_changed_at=r.state_changed_at,
-                            attributes=r.attributes, devices_installed=r.devices, consented=r.consented,
-                            erased=r.erased) for r in rows]
+    return [
+        schemas.HomeOut(
+            code=r.code,
+            trial=t.code,
+            state=r.state,
+            state_changed_at=r.state_changed_at,
+            attributes=r.attributes,
+            devices_installed=r.devices,
+            consented=r.consented,
+            erased=r.erased,
+        )
+        for r in rows
+    ]
 
 
 @router.post("/homes", response_model=schemas.HomeOut, status_code=201)
-def api_create_home(body: schemas.HomeIn, request: Request, session: DbSession,
-                    user: User = Depends(require("homes.manage"))) -> schemas.HomeOut:
-    home = service.create_home(session, _trial(session, body.trial), attributes=body.attributes, code=body.code,
-                               actor=user, note=body.note, at=body.at or _now(request))
+def api_create_home(
+    body: schemas.HomeIn, request: Request, session: DbSession, user: User = Depends(require("homes.manage"))
+) -> schemas.HomeOut:
+    home = service.create_home(
+        session,
+        _trial(session, body.trial),
+        attributes=body.attributes,
+        code=body.code,
+        actor=user,
+        note=body.note,
+        at=body.at or _now(request),
+    )
     session.commit()
     return home_out(session, home)
 
 
-@router.get("/homes/export.csv", response_class=Response,
-            summary="The register as CSV, without personal data")
-def api_export(session: DbSession, trial: str | None = None,
-               user: User = Depends(require("homes.view"))) -> Response:
+@router.get(
+    "/homes/export.csv", response_class=Response, summary="The register as CSV, without personal data"
+)
+def api_export(
+    session: DbSession, trial: str | None = None, user: User = Depends(require("homes.view"))
+) -> Response:
     t = _trial(session, trial)
     text = transfer.export_csv(session, t, with_personal_data=False, actor=user)
-    return Response(text, media_type="text/csv; charset=utf-8",
-                    headers={"Content-Disposition": f'attachment; filename="register-{t.code}.csv"'})
+    return Response(
+        text,
+        media_type="text/csv; charset=utf-8",
+        headers={"Content-Disposition": f'attachment; filename="register-{t.code}.csv"'},
+    )
 
 
-@router.get("/homes/export-personal.csv", response_class=Response,
-            summary="The register as CSV with contact details (audited)")
-def api_export_personal(session: DbSession, trial: str | None = None,
-                        user: User = Depends(require("personal.view"))) -> Response:
+@router.get(
+    "/homes/export-personal.csv",
+    response_class=Response,
+    summary="The register as CSV with contact details (audited)",
+)
+def api_export_personal(
+    session: DbSession, trial: str | None = None, user: User = Depends(require("personal.view"))
+) -> Response:
     t = _trial(session, trial)
     text = transfer.export_csv(session, t, with_personal_data=True, actor=user)
     session.commit()
-    return Response(text, media_type="text/csv; charset=utf-8", headers={
-        "Content-Disposition": f'attachment; filename="register-{t.code}-personal.csv"',
-        "Cache-Control": "no-store"})
+    return Response(
+        text,
+        media_type="text/csv; charset=utf-8",
+        headers={
+            "Content-Disposition": f'attachment; filename="register-{t.code}-personal.csv"',
+            "Cache-Control": "no-store",
+        },
+    )
 
 
 async def _csv_body(request: Request) -> bytes:
@@ -122,210 +183,377 @@ async def _csv_body(request: Request) -> bytes:
 
 
 def import_rejected_response(exc: transfer.ImportRejected) -> JSONResponse:
-    problems = [schemas.ImportProblemOut(row=p.row, code=p.code, column=p.column, problem=p.problem).model_dump()
-                for p in exc.report.problems]
-    return JSONResponse(error_body(exc.code, exc.message, problems=problems, rows=exc.report.rows),
-                        status_code=exc.status)
+    problems = [
+        schemas.ImportProblemOut(row=p.row, code=p.code, column=p.column, problem=p.problem).model_dump()
+        for p in exc.report.problems
+    ]
+    return JSONResponse(
+        error_body(exc.code, exc.message, problems=problems, rows=exc.report.rows), status_code=exc.status
+    )
 
 
-@router.post("/homes/import", response_model=schemas.ImportOut, status_code=201,
-             summary="Import homes from a CSV body (all rows or none)",
-             responses={422: {"description": "import_rejected, with 'problems' per row"}})
-def api_import(session: DbSession, trial: str | None = None, data: bytes = Depends(_csv_body),
-               user: User = Depends(require("homes.manage"))) -> Any:
+@router.post(
+    "/homes/import",
+    response_model=schemas.ImportOut,
+    status_code=201,
+    summary="Import homes from a CSV body (all rows or none)",
+    responses={422: {"description": "import_rejected, with 'problems' per row"}},
+)
+def api_import(
+    session: DbSession,
+    trial: str | None = None,
+    data: bytes = Depends(_csv_body),
+    user: User = Depends(require("homes.manage")),
+) -> Any:
     t = _trial(session, trial)
     try:
         report = transfer.import_csv(session, t, data, actor=user)
     except transfer.ImportRejected as exc:
         return import_rejected_response(exc)  # nothing was written
     session.commit()
-    return JSONResponse(schemas.ImportOut(rows=report.rows, created=list(report.created)).model_dump(),
-                        status_code=201)
+    return JSONResponse(
+        schemas.ImportOut(rows=report.rows, created=list(report.created)).model_dump(), status_code=201
+    )
 
 
 @router.get("/homes/{code}", response_model=schemas.HomeOut)
-def api_get_home(code: str, session: DbSession, user: User = Depends(require("homes.view"))) -> schemas.HomeOut:
+def api_get_home(
+    code: str, session: DbSession, user: User = Depends(require("homes.view"))
+) -> schemas.HomeOut:
     return home_out(session, service.get_home(session, code))
 
 
 @router.patch("/homes/{code}", response_model=schemas.HomeOut)
-def api_patch_home(code: str, body: schemas.HomePatch, session: DbSession,
-                   user: User = Depends(require("homes.manage"))) -> schemas.HomeOut:
-    home = service.update_attributes(session, service.get_home(session, code), body.attributes, actor=user,
-                                     merge=True)
+def api_patch_home(
+    code: str, body: schemas.HomePatch, session: DbSession, user: User = Depends(require("homes.manage"))
+) -> schemas.HomeOut:
+    home = service.update_attributes(
+        session, service.get_home(session, code), body.attributes, actor=user, merge=True
+    )
     session.commit()
     return home_out(session, home)
 
 
 @router.get("/homes/{code}/timeline", response_model=list[schemas.TimelineOut])
-def api_timeline(code: str, session: DbSession,
-                 user: User = Depends(require("homes.view"))) -> list[schemas.TimelineOut]:
+def api_timeline(
+    code: str, session: DbSession, user: User = Depends(require("homes.view"))
+) -> list[schemas.TimelineOut]:
     home = service.get_home(session, code)
     # Free-text notes are for the people who run the register.
     notes = allowed(user.role, "personal.view")
-    return [schemas.TimelineOut(at=c.at, from_state=c.from_state, to_state=c.to_state,
-                                author=u.name if u else "system", note=c.note if notes else None,
-                                listening=c.listening) for c, u in service.timeline_of(session, home)]
+    return [
+        schemas.TimelineOut(
+            at=c.at,
+            from_state=c.from_state,
+            to_state=c.to_state,
+            author=u.name if u else "system",
+            note=c.note if notes else None,
+            listening=c.listening,
+        )
+        for c, u in service.timeline_of(session, home)
+    ]
 
 
 @router.post("/homes/{code}/transitions", response_model=schemas.TransitionOut)
-def api_transition(code: str, body: schemas.TransitionIn, request: Request, session: DbSession,
-                   user: User = Depends(require("homes.manage"))) -> schemas.TransitionOut:
+def api_transition(
+    code: str,
+    body: schemas.TransitionIn,
+    request: Request,
+    session: DbSession,
+    user: User = Depends(require("homes.manage")),
+) -> schemas.TransitionOut:
     home = service.get_home(session, code)
-    result = service.transition(session, home, body.to_state, actor=user, at=body.at or _now(request),
-                                note=body.note, listening=body.listening)
+    result = service.transition(
+        session,
+        home,
+        body.to_state,
+        actor=user,
+        at=body.at or _now(request),
+        note=body.note,
+        listening=body.listening,
+    )
     session.commit()
-    return schemas.TransitionOut(home=home_out(session, home), warnings=list(result.warnings),
-                                 closed_installations=[i.id for i in result.closed])
+    return schemas.TransitionOut(
+        home=home_out(session, home),
+        warnings=list(result.warnings),
+        closed_installations=[i.id for i in result.closed],
+    )
 
 
 @router.get("/homes/{code}/consents", response_model=list[schemas.ConsentOut])
-def api_consents(code: str, session: DbSession,
-                 user: User = Depends(require("homes.view"))) -> list[schemas.ConsentOut]:
+def api_consents(
+    code: str, session: DbSession, user: User = Depends(require("homes.view"))
+) -> list[schemas.ConsentOut]:
     ov = views.home_overview(session, service.get_home(session, code))
-    return [schemas.ConsentOut(form_version=c.form_version, consented_on=c.consented_on,
-                               staff_may_listen=c.staff_may_listen, retention_days=c.retention_days,
-                               recorded_at=c.recorded_at) for c in ov.consents]
+    return [
+        schemas.ConsentOut(
+            form_version=c.form_version,
+            consented_on=c.consented_on,
+            staff_may_listen=c.staff_may_listen,
+            retention_days=c.retention_days,
+            recorded_at=c.recorded_at,
+        )
+        for c in ov.consents
+    ]
 
 
 @router.post("/homes/{code}/consents", response_model=schemas.ConsentOut, status_code=201)
-def api_record_consent(code: str, body: schemas.ConsentIn, request: Request, session: DbSession,
-                       user: User = Depends(require("homes.manage"))) -> schemas.ConsentOut:
+def api_record_consent(
+    code: str,
+    body: schemas.ConsentIn,
+    request: Request,
+    session: DbSession,
+    user: User = Depends(require("homes.manage")),
+) -> schemas.ConsentOut:
     home = service.get_home(session, code)
-    c = service.record_consent(session, home, form_version=body.form_version, consented_on=body.consented_on,
-                               staff_may_listen=body.staff_may_listen, retention_days=body.retention_days,
-                               actor=user, mark_consented=body.mark_consented, at=body.at,
-                               today=_now(request).date())
+    c = service.record_consent(
+        session,
+        home,
+        form_version=body.form_version,
+        consented_on=body.consented_on,
+        staff_may_listen=body.staff_may_listen,
+        retention_days=body.retention_days,
+        actor=user,
+        mark_consented=body.mark_consented,
+        at=body.at,
+        today=_now(request).date(),
+    )
     session.commit()
-    return schemas.ConsentOut(form_version=c.form_version, consented_on=c.consented_on,
-                              staff_may_listen=c.staff_may_listen, retention_days=c.retention_days,
-                              recorded_at=c.recorded_at)
+    return schemas.ConsentOut(
+        form_version=c.form_version,
+        consented_on=c.consented_on,
+        staff_may_listen=c.staff_may_listen,
+        retention_days=c.retention_days,
+        recorded_at=c.recorded_at,
+    )
 
 
 # --- personal data ------------------------------------------------------------------------------
 
+
 def _contact_out(home: Home, contact: Any) -> schemas.ContactOut:
     if contact is None:
         return schemas.ContactOut(code=home.code)
-    return schemas.ContactOut(code=home.code, names=contact.names, address=contact.address, phone=contact.phone,
-                              email=contact.email, access_notes=contact.access_notes,
-                              updated_at=contact.updated_at)
+    return schemas.ContactOut(
+        code=home.code,
+        names=contact.names,
+        address=contact.address,
+        phone=contact.phone,
+        email=contact.email,
+        access_notes=contact.access_notes,
+        updated_at=contact.updated_at,
+    )
 
 
-@router.get("/homes/{code}/contact", response_model=schemas.ContactOut,
-            summary="The household's contact details (personal data; the view is audited)")
-def api_get_contact(code: str, session: DbSession,
-                    user: User = Depends(require("personal.view"))) -> JSONResponse:
+@router.get(
+    "/homes/{code}/contact",
+    response_model=schemas.ContactOut,
+    summary="The household's contact details (personal data; the view is audited)",
+)
+def api_get_contact(
+    code: str, session: DbSession, user: User = Depends(require("personal.view"))
+) -> JSONResponse:
     home = service.get_home(session, code)
     contact = service.view_contact(session, home, actor=user, via="api")
     session.commit()
-    return JSONResponse(_contact_out(home, contact).model_dump(mode="json"), headers={"Cache-Control": "no-store"})
+    return JSONResponse(
+        _contact_out(home, contact).model_dump(mode="json"), headers={"Cache-Control": "no-store"}
+    )
 
 
 @router.put("/homes/{code}/contact", response_model=schemas.ContactOut)
-def api_put_contact(code: str, body: schemas.ContactIn, session: DbSession,
-                    user: User = Depends(require("personal.manage"))) -> JSONResponse:
+def api_put_contact(
+    code: str, body: schemas.ContactIn, session: DbSession, user: User = Depends(require("personal.manage"))
+) -> JSONResponse:
     home = service.get_home(session, code)
     contact = service.set_contact(session, home, actor=user, **body.model_dump())
     session.commit()
-    return JSONResponse(_contact_out(home, contact).model_dump(mode="json"), headers={"Cache-Control": "no-store"})
+    return JSONResponse(
+        _contact_out(home, contact).model_dump(mode="json"), headers={"Cache-Control": "no-store"}
+    )
 
 
 # --- erasure ------------------------------------------------------------------------------------
 
-@router.get("/homes/{code}/erasure", response_model=schemas.ErasurePlanOut,
-            summary="Step 1 of withdrawal with erasure: what will be erased and kept, and a ticket")
-def api_erasure_plan(code: str, request: Request, session: DbSession, settings: SettingsDep,
-                     user: User = Depends(require("homes.erase"))) -> schemas.ErasurePlanOut:
+
+@router.get(
+    "/homes/{code}/erasure",
+    response_model=schemas.ErasurePlanOut,
+    summary="Step 1 of withdrawal with erasure: what will be erased and kept, and a ticket",
+)
+def api_erasure_plan(
+    code: str,
+    request: Request,
+    session: DbSession,
+    settings: SettingsDep,
+    user: User = Depends(require("homes.erase")),
+) -> schemas.ErasurePlanOut:
     home = service.get_home(session, code)
     plan = erasure.plan_erasure(session, home)
     ticket = erasure.erasure_ticket(settings.resolved_secret_key(), home, now=_now(request))
-    return schemas.ErasurePlanOut(code=home.code, will_erase=list(plan.will_erase), will_keep=list(plan.will_keep),
-                                  clips_to_delete=plan.clips_to_delete, alerts_kept=plan.alerts_kept,
-                                  ticket=ticket, expires_in_s=int(erasure.TICKET_TTL.total_seconds()))
+    return schemas.ErasurePlanOut(
+        code=home.code,
+        will_erase=list(plan.will_erase),
+        will_keep=list(plan.will_keep),
+        clips_to_delete=plan.clips_to_delete,
+        alerts_kept=plan.alerts_kept,
+        ticket=ticket,
+        expires_in_s=int(erasure.TICKET_TTL.total_seconds()),
+    )
 
 
-@router.post("/homes/{code}/erasure", response_model=schemas.ErasureOut,
-             summary="Step 2: erase, with the ticket and the home code typed again (irreversible)")
-def api_erase(code: str, body: schemas.ErasureIn, request: Request, session: DbSession, settings: SettingsDep,
-              store: ClipStoreDep, user: User = Depends(require("homes.erase"))) -> schemas.ErasureOut:
+@router.post(
+    "/homes/{code}/erasure",
+    response_model=schemas.ErasureOut,
+    summary="Step 2: erase, with the ticket and the home code typed again (irreversible)",
+)
+def api_erase(
+    code: str,
+    body: schemas.ErasureIn,
+    request: Request,
+    session: DbSession,
+    settings: SettingsDep,
+    store: ClipStoreDep,
+    user: User = Depends(require("homes.erase")),
+) -> schemas.ErasureOut:
     home = service.get_home(session, code)
-    r = erasure.erase_home(session, store, home, secret=settings.resolved_secret_key(), ticket=body.ticket,
-                           confirm_code=body.confirm_code, actor=user, now=_now(request),
-                           cache_dir=settings.cache_dir, note=body.note)
+    r = erasure.erase_home(
+        session,
+        store,
+        home,
+        secret=settings.resolved_secret_key(),
+        ticket=body.ticket,
+        confirm_code=body.confirm_code,
+        actor=user,
+        now=_now(request),
+        cache_dir=settings.cache_dir,
+        note=body.note,
+    )
     session.commit()
-    return schemas.ErasureOut(code=r.code, complete=r.complete, contact_erased=r.contact_erased,
-                              clips_deleted=r.clips_deleted, clips_shared_kept=r.clips_shared,
-                              alerts_kept=r.alerts_kept)
+    return schemas.ErasureOut(
+        code=r.code,
+        complete=r.complete,
+        contact_erased=r.contact_erased,
+        clips_deleted=r.clips_deleted,
+        clips_shared_kept=r.clips_shared,
+        alerts_kept=r.alerts_kept,
+    )
 
 
 # --- installations ------------------------------------------------------------------------------
 
+
 @router.get("/installations", response_model=list[schemas.InstallationOut])
-def api_installations(session: DbSession, home: str | None = None, device: str | None = None,
-                      user: User = Depends(require("homes.view"))) -> list[schemas.InstallationOut]:
+def api_installations(
+    session: DbSession,
+    home: str | None = None,
+    device: str | None = None,
+    user: User = Depends(require("homes.view")),
+) -> list[schemas.InstallationOut]:
     h = service.get_home(session, home) if home else None
     d = devices_service.get_device(session, device) if device else None
     return [installation_out(session, i) for i in service.list_installations(session, home=h, device=d)]
 
 
 @router.post("/installations", response_model=schemas.InstallationResult, status_code=201)
-def api_install(body: schemas.InstallationIn, session: DbSession,
-                user: User = Depends(require("installations.manage"))) -> schemas.InstallationResult:
-    r = service.install_device(session, home=service.get_home(session, body.home),
-                               device=devices_service.get_device(session, body.device), room=body.room,
-                               installed_at=body.installed_at, actor=user, move=body.move)
+def api_install(
+    body: schemas.InstallationIn, session: DbSession, user: User = Depends(require("installations.manage"))
+) -> schemas.InstallationResult:
+    r = service.install_device(
+        session,
+        home=service.get_home(session, body.home),
+        device=devices_service.get_device(session, body.device),
+        room=body.room,
+        installed_at=body.installed_at,
+        actor=user,
+        move=body.move,
+    )
     session.commit()
-    return schemas.InstallationResult(installation=installation_out(session, r.installation),
-                                      closed=installation_out(session, r.closed) if r.closed else None,
-                                      alerts_reattributed=r.reattributed)
+    return schemas.InstallationResult(
+        installation=installation_out(session, r.installation),
+        closed=installation_out(session, r.closed) if r.closed else None,
+        alerts_reattributed=r.reattributed,
+    )
 
 
 @router.post("/installations/{installation_id}/removal", response_model=schemas.InstallationOut)
-def api_remove(installation_id: int, body: schemas.RemovalIn, session: DbSession,
-               user: User = Depends(require("installations.manage"))) -> schemas.InstallationOut:
-    inst = service.remove_installation(session, service.get_installation(session, installation_id),
-                                       removed_at=body.removed_at, actor=user)
+def api_remove(
+    installation_id: int,
+    body: schemas.RemovalIn,
+    session: DbSession,
+    user: User = Depends(require("installations.manage")),
+) -> schemas.InstallationOut:
+    inst = service.remove_installation(
+        session, service.get_installation(session, installation_id), removed_at=body.removed_at, actor=user
+    )
     session.commit()
     return installation_out(session, inst)
 
 
-@router.patch("/installations/{installation_id}", response_model=schemas.InstallationResult,
-              summary="Correct an installation's dates or room; alerts are re-attributed (audited)")
-def api_correct(installation_id: int, body: schemas.InstallationPatch, session: DbSession,
-                user: User = Depends(require("installations.manage"))) -> schemas.InstallationResult:
+@router.patch(
+    "/installations/{installation_id}",
+    response_model=schemas.InstallationResult,
+    summary="Correct an installation's dates or room; alerts are re-attributed (audited)",
+)
+def api_correct(
+    installation_id: int,
+    body: schemas.InstallationPatch,
+    session: DbSession,
+    user: User = Depends(require("installations.manage")),
+) -> schemas.InstallationResult:
     inst = service.get_installation(session, installation_id)
     removed = None if body.reopen else (body.removed_at or inst.removed_at)
-    r = service.correct_installation(session, inst, installed_at=body.installed_at or inst.installed_at,
-                                     removed_at=removed, room=body.room or inst.room, actor=user)
+    r = service.correct_installation(
+        session,
+        inst,
+        installed_at=body.installed_at or inst.installed_at,
+        removed_at=removed,
+        room=body.room or inst.room,
+        actor=user,
+    )
     session.commit()
-    return schemas.InstallationResult(installation=installation_out(session, r.installation),
-                                      alerts_reattributed=r.reattributed)
+    return schemas.InstallationResult(
+        installation=installation_out(session, r.installation), alerts_reattributed=r.reattributed
+    )
 
 
 # --- staged events ------------------------------------------------------------------------------
 
+
 @router.get("/staged-events", response_model=list[schemas.StagedEventOut])
-def api_staged_events(session: DbSession, trial: str | None = None, home: str | None = None,
-                      user: User = Depends(require("homes.view"))) -> list[schemas.StagedEventOut]:
+def api_staged_events(
+    session: DbSession,
+    trial: str | None = None,
+    home: str | None = None,
+    user: User = Depends(require("homes.view")),
+) -> list[schemas.StagedEventOut]:
     h = service.get_home(session, home) if home else None
     t = _trial(session, trial) if (trial or h is None) else None
     return [staged_out(session, e) for e in service.list_staged_events(session, trial=t, home=h)]
 
 
 @router.post("/staged-events", response_model=schemas.StagedEventOut, status_code=201)
-def api_log_staged(body: schemas.StagedEventIn, session: DbSession,
-                   user: User = Depends(require("staged.manage"))) -> schemas.StagedEventOut:
-    ev = service.log_staged_event(session, home=service.get_home(session, body.home), sound_class=body.sound_class,
-                                  started_at=body.started_at, ended_at=body.ended_at, source=body.source,
-                                  level_db=body.level_db, actor=user)
+def api_log_staged(
+    body: schemas.StagedEventIn, session: DbSession, user: User = Depends(require("staged.manage"))
+) -> schemas.StagedEventOut:
+    ev = service.log_staged_event(
+        session,
+        home=service.get_home(session, body.home),
+        sound_class=body.sound_class,
+        started_at=body.started_at,
+        ended_at=body.ended_at,
+        source=body.source,
+        level_db=body.level_db,
+        actor=user,
+    )
     session.commit()
     return staged_out(session, ev)
 
 
 @router.delete("/staged-events/{event_id}", status_code=204, response_class=Response)
-def api_delete_staged(event_id: int, session: DbSession,
-                      user: User = Depends(require("staged.manage"))) -> Response:
+def api_delete_staged(
+    event_id: int, session: DbSession, user: User = Depends(require("staged.manage"))
+) -> Response:
     service.delete_staged_event(session, service.get_staged_event(session, event_id), actor=user)
     session.commit()
     return Response(status_code=204)
@@ -333,23 +561,40 @@ def api_delete_staged(event_id: int, session: DbSession,
 
 # --- catalogue and quota ------------------------------------------------------------------------
 
+
 def _attr_out(d: Any) -> schemas.AttributeOut:
-    return schemas.AttributeOut(key=d.key, label=d.label, kind=d.kind, options=list(d.options or []),
-                                min_value=d.min_value, max_value=d.max_value)
+    return schemas.AttributeOut(
+        key=d.key,
+        label=d.label,
+        kind=d.kind,
+        options=list(d.options or []),
+        min_value=d.min_value,
+        max_value=d.max_value,
+    )
 
 
 @router.get("/attributes", response_model=list[schemas.AttributeOut])
-def api_attributes(session: DbSession, trial: str | None = None,
-                   user: User = Depends(require("homes.view"))) -> list[schemas.AttributeOut]:
+def api_attributes(
+    session: DbSession, trial: str | None = None, user: User = Depends(require("homes.view"))
+) -> list[schemas.AttributeOut]:
     return [_attr_out(d) for d in catalogue.list_catalogue(session, _trial(session, trial))]
 
 
 @router.post("/attributes", response_model=schemas.AttributeOut, status_code=201)
-def api_add_attribute(body: schemas.AttributeIn, session: DbSession,
-                      user: User = Depends(require("attributes.manage"))) -> schemas.AttributeOut:
-    d = catalogue.add_attribute(session, _trial(session, body.trial), key=body.key, label=body.label,
-                                kind=body.kind, options=body.options, min_value=body.min_value,
-                                max_value=body.max_value, actor=user)
+def api_add_attribute(
+    body: schemas.AttributeIn, session: DbSession, user: User = Depends(require("attributes.manage"))
+) -> schemas.AttributeOut:
+    d = catalogue.add_attribute(
+        session,
+        _trial(session, body.trial),
+        key=body.key,
+        label=body.label,
+        kind=body.kind,
+        options=body.options,
+        min_value=body.min_value,
+        max_value=body.max_value,
+        actor=user,
+    )
     session.commit()
     return _attr_out(d)
 
@@ -357,41 +602,76 @@ def api_add_attribute(body: schemas.AttributeIn, session: DbSession,
 def quota_out(view: views.QuotaView) -> schemas.QuotaOut:
     r = view.report
     labels = {s.target.id: s.target.label for s in r.targets}
-    warnings = [f"'{labels[tid]}' is below its minimum after "
-                + ", ".join(f"{d.code} left on {d.at:%Y-%m-%d}" for d in ds) + "."
-                for tid, ds in view.departures.items()]
+    warnings = [
+        f"'{labels[tid]}' is below its minimum after "
+        + ", ".join(f"{d.code} left on {d.at:%Y-%m-%d}" for d in ds)
+        + "."
+        for tid, ds in view.departures.items()
+    ]
     return schemas.QuotaOut(
-        trial=view.trial.code, counting_states=list(r.counting_states), counted=r.counted,
+        trial=view.trial.code,
+        counting_states=list(r.counting_states),
+        counted=r.counted,
         by_state=dict(r.by_state),
-        targets=[schemas.TargetOut(id=s.target.id, label=s.target.label, attribute_key=s.target.attribute_key,
-                                   value=s.target.value, min_count=s.target.min_count,
-                                   max_count=s.target.max_count, count=s.count, status=s.status,
-                                   shortfall=s.shortfall, excess=s.excess, homes=list(s.homes))
-                 for s in r.targets],
-        suggestions=[schemas.SuggestionOut(code=s.code, state=s.state, helps=view.suggestion_labels(s))
-                     for s in r.suggestions],
-        remaining_after={labels[k]: v for k, v in r.remaining_after.items()}, rule=view.rule, warnings=warnings)
+        targets=[
+            schemas.TargetOut(
+                id=s.target.id,
+                label=s.target.label,
+                attribute_key=s.target.attribute_key,
+                value=s.target.value,
+                min_count=s.target.min_count,
+                max_count=s.target.max_count,
+                count=s.count,
+                status=s.status,
+                shortfall=s.shortfall,
+                excess=s.excess,
+                homes=list(s.homes),
+            )
+            for s in r.targets
+        ],
+        suggestions=[
+            schemas.SuggestionOut(code=s.code, state=s.state, helps=view.suggestion_labels(s))
+            for s in r.suggestions
+        ],
+        remaining_after={labels[k]: v for k, v in r.remaining_after.items()},
+        rule=view.rule,
+        warnings=warnings,
+    )
 
 
 @router.get("/quota", response_model=schemas.QuotaOut)
-def api_quota(session: DbSession, trial: str | None = None,
-              user: User = Depends(require("quota.view"))) -> schemas.QuotaOut:
+def api_quota(
+    session: DbSession, trial: str | None = None, user: User = Depends(require("quota.view"))
+) -> schemas.QuotaOut:
     return quota_out(views.quota_view(session, _trial(session, trial)))
 
 
 @router.post("/quota/targets", response_model=schemas.QuotaOut, status_code=201)
-def api_add_target(body: schemas.TargetIn, session: DbSession,
-                   user: User = Depends(require("quota.manage"))) -> schemas.QuotaOut:
+def api_add_target(
+    body: schemas.TargetIn, session: DbSession, user: User = Depends(require("quota.manage"))
+) -> schemas.QuotaOut:
     t = _trial(session, body.trial)
-    service.add_target(session, t, attribute_key=body.attribute_key, value=body.value, min_count=body.min_count,
-                       max_count=body.max_count, label=body.label, actor=user)
+    service.add_target(
+        session,
+        t,
+        attribute_key=body.attribute_key,
+        value=body.value,
+        min_count=body.min_count,
+        max_count=body.max_count,
+        label=body.label,
+        actor=user,
+    )
     session.commit()
     return quota_out(views.quota_view(session, t))
 
 
 @router.delete("/quota/targets/{target_id}", response_model=schemas.QuotaOut)
-def api_delete_target(target_id: int, session: DbSession, trial: str | None = Query(None),
-                      user: User = Depends(require("quota.manage"))) -> schemas.QuotaOut:
+def api_delete_target(
+    target_id: int,
+    session: DbSession,
+    trial: str | None = Query(None),
+    user: User = Depends(require("quota.manage")),
+) -> schemas.QuotaOut:
     t = _trial(session, trial)
     service.delete_target(session, t, target_id, actor=user)
     session.commit()
@@ -399,8 +679,9 @@ def api_delete_target(target_id: int, session: DbSession, trial: str | None = Qu
 
 
 @router.put("/quota/states", response_model=schemas.QuotaOut)
-def api_quota_states(body: schemas.QuotaStatesIn, session: DbSession,
-                     user: User = Depends(require("quota.manage"))) -> schemas.QuotaOut:
+def api_quota_states(
+    body: schemas.QuotaStatesIn, session: DbSession, user: User = Depends(require("quota.manage"))
+) -> schemas.QuotaOut:
     t = _trial(session, body.trial)
     service.set_counting_states(session, t, body.states, actor=user)
     session.commit()

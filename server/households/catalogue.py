@@ -14,6 +14,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server import audit
+from server.auth.models import User
 from server.errors import Conflict, ValidationFailed
 from server.households.models import AttributeDefinition
 from server.trials.models import Trial
@@ -32,10 +33,19 @@ DEFAULT_CATALOGUE: tuple[dict[str, Any], ...] = (
     {"key": "building_works_nearby", "label": "Building works nearby", "kind": "yes_no"},
     {"key": "major_road_50m", "label": "Major road within 50 m", "kind": "yes_no"},
     {"key": "under_flight_path", "label": "Under a flight path", "kind": "yes_no"},
-    {"key": "dwelling_type", "label": "Dwelling type", "kind": "one_of",
-     "options": ["flat", "terraced house", "semi-detached house", "detached house", "other"]},
-    {"key": "occupants", "label": "Number of occupants", "kind": "whole_number",
-     "min_value": 1, "max_value": 30},
+    {
+        "key": "dwelling_type",
+        "label": "Dwelling type",
+        "kind": "one_of",
+        "options": ["flat", "terraced house", "semi-detached house", "detached house", "other"],
+    },
+    {
+        "key": "occupants",
+        "label": "Number of occupants",
+        "kind": "whole_number",
+        "min_value": 1,
+        "max_value": 30,
+    },
 )
 
 _KEY = re.compile(r"^[a-z][a-z0-9_]{0,59}$")
@@ -53,6 +63,7 @@ class AttrSpec(Protocol):
 
 
 # --- pure checks --------------------------------------------------------------------------------
+
 
 def parse_value(spec: AttrSpec, raw: Any) -> Any:
     """The stored value for ``raw`` (bool, option text or int), None for "not answered".
@@ -96,8 +107,9 @@ def parse_value(spec: AttrSpec, raw: Any) -> Any:
     raise ValueError(f"{spec.label}: unknown attribute kind '{spec.kind}'.")
 
 
-def validate_attributes(specs: Sequence[AttrSpec], raw: Mapping[str, Any]
-                        ) -> tuple[dict[str, Any], dict[str, str]]:
+def validate_attributes(
+    specs: Sequence[AttrSpec], raw: Mapping[str, Any]
+) -> tuple[dict[str, Any], dict[str, str]]:
     """Clean values for every answered attribute, and a sentence per bad or unknown key."""
     by_key = {s.key: s for s in specs}
     clean: dict[str, Any] = {}
@@ -127,9 +139,15 @@ def format_value(value: Any) -> str:
 
 # --- the stored catalogue -----------------------------------------------------------------------
 
+
 def list_catalogue(session: Session, trial: Trial) -> list[AttributeDefinition]:
-    return list(session.scalars(select(AttributeDefinition).where(AttributeDefinition.trial_id == trial.id)
-                                .order_by(AttributeDefinition.position, AttributeDefinition.id)))
+    return list(
+        session.scalars(
+            select(AttributeDefinition)
+            .where(AttributeDefinition.trial_id == trial.id)
+            .order_by(AttributeDefinition.position, AttributeDefinition.id)
+        )
+    )
 
 
 def seed_default_catalogue(session: Session, trial: Trial) -> list[AttributeDefinition]:
@@ -138,17 +156,34 @@ def seed_default_catalogue(session: Session, trial: Trial) -> list[AttributeDefi
     for pos, item in enumerate(DEFAULT_CATALOGUE):
         if item["key"] in have:
             continue
-        session.add(AttributeDefinition(trial_id=trial.id, key=item["key"], label=item["label"],
-                                        kind=item["kind"], options=list(item.get("options", [])),
-                                        min_value=item.get("min_value"), max_value=item.get("max_value"),
-                                        position=pos))
+        session.add(
+            AttributeDefinition(
+                trial_id=trial.id,
+                key=item["key"],
+                label=item["label"],
+                kind=item["kind"],
+                options=list(item.get("options", [])),
+                min_value=item.get("min_value"),
+                max_value=item.get("max_value"),
+                position=pos,
+            )
+        )
     session.flush()
     return list_catalogue(session, trial)
 
 
-def add_attribute(session: Session, trial: Trial, *, key: str, label: str, kind: str,
-                  options: Sequence[str] = (), min_value: int | None = None, max_value: int | None = None,
-                  actor: object = "cli") -> AttributeDefinition:
+def add_attribute(
+    session: Session,
+    trial: Trial,
+    *,
+    key: str,
+    label: str,
+    kind: str,
+    options: Sequence[str] = (),
+    min_value: int | None = None,
+    max_value: int | None = None,
+    actor: User | str = "cli",
+) -> AttributeDefinition:
     key = key.strip().lower()
     label = label.strip()
     opts = [o.strip() for o in options if o.strip()]
@@ -169,16 +204,39 @@ def add_attribute(session: Session, trial: Trial, *, key: str, label: str, kind:
         errors["max_value"] = "The largest value cannot be below the smallest."
     if errors:
         raise ValidationFailed(next(iter(errors.values())), errors)
-    if session.scalar(select(AttributeDefinition.id).where(AttributeDefinition.trial_id == trial.id,
-                                                           AttributeDefinition.key == key)) is not None:
+    if (
+        session.scalar(
+            select(AttributeDefinition.id).where(
+                AttributeDefinition.trial_id == trial.id, AttributeDefinition.key == key
+            )
+        )
+        is not None
+    ):
         raise Conflict(f"Trial {trial.code} already has an attribute '{key}'.", code="attribute_exists")
-    pos = (session.scalar(select(func.max(AttributeDefinition.position))
-                          .where(AttributeDefinition.trial_id == trial.id)) or 0) + 1
-    defn = AttributeDefinition(trial_id=trial.id, key=key, label=label, kind=kind,
-                               options=opts if kind == "one_of" else [], min_value=min_value,
-                               max_value=max_value, position=pos)
+    pos = (
+        session.scalar(
+            select(func.max(AttributeDefinition.position)).where(AttributeDefinition.trial_id == trial.id)
+        )
+        or 0
+    ) + 1
+    defn = AttributeDefinition(
+        trial_id=trial.id,
+        key=key,
+        label=label,
+        kind=kind,
+        options=opts if kind == "one_of" else [],
+        min_value=min_value,
+        max_value=max_value,
+        position=pos,
+    )
     session.add(defn)
     session.flush()
-    audit.record(session, actor, "attribute.add", "attribute_definition", defn.id,  # type: ignore[arg-type]
-                 {"trial": trial.code, "key": key, "kind": kind})
+    audit.record(
+        session,
+        actor,
+        "attribute.add",
+        "attribute_definition",
+        defn.id,  # type: ignore[arg-type]
+        {"trial": trial.code, "key": key, "kind": kind},
+    )
     return defn

@@ -48,8 +48,10 @@ def cmd_home_export(args: argparse.Namespace, settings: Settings) -> int:
         text = transfer.export_csv(s, trial, with_personal_data=args.with_personal_data, actor="cli")
     if args.output:
         Path(args.output).write_text(text, encoding="utf-8")
-        print(f"register of {trial.code} written to {args.output}"
-              + (" (with personal data; recorded in the audit trail)" if args.with_personal_data else ""))
+        print(
+            f"register of {trial.code} written to {args.output}"
+            + (" (with personal data; recorded in the audit trail)" if args.with_personal_data else "")
+        )
     else:
         sys.stdout.write(text)
     return 0
@@ -71,20 +73,37 @@ def cmd_quota_show(args: argparse.Namespace, settings: Settings) -> int:
         print(f"quota of {trial.code}: {r.counted} home(s) counted (states: {', '.join(r.counting_states)})")
         for st in r.targets:
             t = st.target
-            bounds = (f"{t.min_count}..{t.max_count}" if t.min_count is not None and t.max_count is not None
-                      else f">= {t.min_count}" if t.min_count is not None else f"<= {t.max_count}")
-            extra = (f"short by {st.shortfall}" if st.status == "short"
-                     else f"{st.excess} over" if st.status == "over" else "met")
-            print(f"  {t.label}: {st.count} ({bounds}) {extra}" + (f" [{', '.join(st.homes)}]" if st.homes else ""))
+            bounds = (
+                f"{t.min_count}..{t.max_count}"
+                if t.min_count is not None and t.max_count is not None
+                else f">= {t.min_count}"
+                if t.min_count is not None
+                else f"<= {t.max_count}"
+            )
+            extra = (
+                f"short by {st.shortfall}"
+                if st.status == "short"
+                else f"{st.excess} over"
+                if st.status == "over"
+                else "met"
+            )
+            print(
+                f"  {t.label}: {st.count} ({bounds}) {extra}"
+                + (f" [{', '.join(st.homes)}]" if st.homes else "")
+            )
         print("by state: " + ", ".join(f"{k} {v}" for k, v in sorted(r.by_state.items())))
         if r.suggestions:
-            print("recruit next: " + "; ".join(f"{sg.code} ({', '.join(qv.suggestion_labels(sg))})"
-                                               for sg in r.suggestions))
+            print(
+                "recruit next: "
+                + "; ".join(f"{sg.code} ({', '.join(qv.suggestion_labels(sg))})" for sg in r.suggestions)
+            )
             print(f"  ({qv.rule})")
         for tid, gone in qv.departures.items():
             label = next(s.target.label for s in r.targets if s.target.id == tid)
-            print(f"warning: '{label}' is below its minimum after " + ", ".join(
-                f"{d.code} left on {d.at:%Y-%m-%d}" for d in gone))
+            print(
+                f"warning: '{label}' is below its minimum after "
+                + ", ".join(f"{d.code} left on {d.at:%Y-%m-%d}" for d in gone)
+            )
     return 0
 
 
@@ -94,40 +113,71 @@ def cmd_storage_purge(args: argparse.Namespace, settings: Settings) -> int:
     from server.households import erasure
 
     with session_scope(_factory(settings)) as s:
-        report = erasure.purge_clips(s, ClipStore(settings.clip_dir), apply=args.apply, actor="cli",
-                                     cache_dir=settings.cache_dir)
+        report = erasure.purge_clips(
+            s, ClipStore(settings.clip_dir), apply=args.apply, actor="cli", cache_dir=settings.cache_dir
+        )
     if args.json:
-        print(json.dumps({"applied": report.applied, "deleted": report.deleted, "failed": list(report.failed),
-                          "kept_without_consent": report.kept_without_consent,
-                          "items": [{"clip_id": i.clip_id, "reason": i.reason, "homes": list(i.homes),
-                                     "received_at": i.received_at.isoformat()} for i in report.items]}))
+        print(
+            json.dumps(
+                {
+                    "applied": report.applied,
+                    "deleted": report.deleted,
+                    "failed": list(report.failed),
+                    "kept_without_consent": report.kept_without_consent,
+                    "items": [
+                        {
+                            "clip_id": i.clip_id,
+                            "reason": i.reason,
+                            "homes": list(i.homes),
+                            "received_at": i.received_at.isoformat(),
+                        }
+                        for i in report.items
+                    ],
+                }
+            )
+        )
     else:
         for i in report.items:
-            print(f"{'removed' if report.applied else 'would remove'} clip {i.clip_id} ({i.reason}; "
-                  f"homes {', '.join(i.homes) or '-'}; last received {i.received_at:%Y-%m-%d})")
+            print(
+                f"{'removed' if report.applied else 'would remove'} clip {i.clip_id} ({i.reason}; "
+                f"homes {', '.join(i.homes) or '-'}; last received {i.received_at:%Y-%m-%d})"
+            )
         n = report.by_reason
         if report.applied:
-            print(f"{report.deleted} clip file(s) removed ({n['retention']} past retention, {n['private']} "
-                  f"flagged private)" + (f"; {len(report.failed)} could not be removed" if report.failed else ""))
+            print(
+                f"{report.deleted} clip file(s) removed ({n['retention']} past retention, {n['private']} "
+                f"flagged private)"
+                + (f"; {len(report.failed)} could not be removed" if report.failed else "")
+            )
         else:
-            print(f"dry run: {len(report.items)} clip file(s) would be removed ({n['retention']} past retention, "
-                  f"{n['private']} flagged private); run again with --apply to remove them")
+            print(
+                f"dry run: {len(report.items)} clip file(s) would be removed ({n['retention']} past "
+                f"retention, {n['private']} flagged private); run again with --apply to remove them"
+            )
         if report.kept_without_consent:
-            print(f"{report.kept_without_consent} clip(s) kept: no home or no consent on record to set a retention")
+            print(
+                f"{report.kept_without_consent} clip(s) kept: no home or no consent on record to set "
+                "a retention"
+            )
     return 1 if report.failed else 0
 
 
 def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     """Add this domain's commands: ``sub`` is the top level, ``storage`` the `storage` group."""
-    home = sub.add_parser("home", help="the household register").add_subparsers(dest="home_cmd", required=True)
+    home = sub.add_parser("home", help="the household register").add_subparsers(
+        dest="home_cmd", required=True
+    )
     hi = home.add_parser("import", help="import homes from CSV: every row or none")
     hi.add_argument("file")
     hi.add_argument("--trial", help="trial code (default: the latest trial)")
     hi.set_defaults(func=cmd_home_import)
     he = home.add_parser("export", help="export the register as CSV (codes only unless asked)")
     he.add_argument("--trial")
-    he.add_argument("--with-personal-data", action="store_true",
-                    help="include contact details (recorded in the audit trail)")
+    he.add_argument(
+        "--with-personal-data",
+        action="store_true",
+        help="include contact details (recorded in the audit trail)",
+    )
     he.add_argument("-o", "--output", help="write to this file instead of standard output")
     he.set_defaults(func=cmd_home_export)
 
@@ -137,8 +187,10 @@ def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersActio
     qs.add_argument("--json", action="store_true")
     qs.set_defaults(func=cmd_quota_show)
 
-    sp = storage.add_parser("purge", help="remove clips past their home's retention, and clips flagged private "
-                                          "(dry run unless --apply)")
+    sp = storage.add_parser(
+        "purge",
+        help="remove clips past their home's retention, and clips flagged private (dry run unless --apply)",
+    )
     sp.add_argument("--apply", action="store_true", help="remove the files (otherwise only list them)")
     sp.add_argument("--json", action="store_true")
     sp.set_defaults(func=cmd_storage_purge)

@@ -39,11 +39,11 @@ class ErasureNotConfirmed(AppError):
 class ErasurePlan:
     code: str
     has_contact: bool
-    clips_to_delete: int      # files that go
-    clips_shared: int         # files kept because an alert outside this home uses the same bytes
+    clips_to_delete: int  # files that go
+    clips_shared: int  # files kept because an alert outside this home uses the same bytes
     alerts_kept: int
-    verdict_notes: int        # reviewer notes on this home's alerts, cleared
-    timeline_notes: int       # notes on the home's state changes, cleared
+    verdict_notes: int  # reviewer notes on this home's alerts, cleared
+    timeline_notes: int  # notes on the home's state changes, cleared
     staged_events: int
     will_erase: tuple[str, ...]
     will_keep: tuple[str, ...]
@@ -51,12 +51,22 @@ class ErasurePlan:
 
 def _home_clips(session: Session, home: Home) -> tuple[list[Clip], list[Clip]]:
     """(clips only this home's alerts use, clips also used outside it), neither yet erased."""
-    clips = list(session.scalars(select(Clip).join(Alert, Alert.clip_id == Clip.id)
-                                 .where(Alert.home_id == home.id, Clip.erased_at.is_(None)).distinct()))
-    own, shared = [], []
+    clips = list(
+        session.scalars(
+            select(Clip)
+            .join(Alert, Alert.clip_id == Clip.id)
+            .where(Alert.home_id == home.id, Clip.erased_at.is_(None))
+            .distinct()
+        )
+    )
+    own: list[Clip] = []
+    shared: list[Clip] = []
     for clip in clips:
-        elsewhere = session.scalar(select(Alert.id).where(
-            Alert.clip_id == clip.id, Alert.home_id.is_(None) | (Alert.home_id != home.id)).limit(1))
+        elsewhere = session.scalar(
+            select(Alert.id)
+            .where(Alert.clip_id == clip.id, Alert.home_id.is_(None) | (Alert.home_id != home.id))
+            .limit(1)
+        )
         (shared if elsewhere is not None else own).append(clip)
     return own, shared
 
@@ -65,10 +75,24 @@ def _counts(session: Session, home: Home) -> dict[str, int]:
     alert_ids = select(Alert.id).where(Alert.home_id == home.id)
     return {
         "alerts": len(list(session.scalars(alert_ids))),
-        "verdict_notes": len(list(session.scalars(select(Verdict.id).where(
-            Verdict.alert_id.in_(alert_ids), Verdict.note.is_not(None), Verdict.note != "")))),
-        "timeline_notes": len(list(session.scalars(select(HomeStateChange.id).where(
-            HomeStateChange.home_id == home.id, HomeStateChange.note.is_not(None))))),
+        "verdict_notes": len(
+            list(
+                session.scalars(
+                    select(Verdict.id).where(
+                        Verdict.alert_id.in_(alert_ids), Verdict.note.is_not(None), Verdict.note != ""
+                    )
+                )
+            )
+        ),
+        "timeline_notes": len(
+            list(
+                session.scalars(
+                    select(HomeStateChange.id).where(
+                        HomeStateChange.home_id == home.id, HomeStateChange.note.is_not(None)
+                    )
+                )
+            )
+        ),
         "staged": len(list(session.scalars(select(StagedEvent.id).where(StagedEvent.home_id == home.id)))),
     }
 
@@ -96,11 +120,23 @@ def plan_erasure(session: Session, home: Home) -> ErasurePlan:
         f"{n['staged']} staged test event{'s' if n['staged'] != 1 else ''} (time, class, description)",
     ]
     if shared:
-        keep.append(f"{len(shared)} clip file{'s' if len(shared) != 1 else ''} whose identical bytes also "
-                    "belong to an alert outside this home; only that other alert keeps it")
+        keep.append(
+            f"{len(shared)} clip file{'s' if len(shared) != 1 else ''} whose identical bytes also "
+            "belong to an alert outside this home; only that other alert keeps it"
+        )
     keep.append("the audit trail, which records this erasure")
-    return ErasurePlan(home.code, contact, len(own), len(shared), n["alerts"], n["verdict_notes"],
-                       n["timeline_notes"], n["staged"], tuple(erase), tuple(keep))
+    return ErasurePlan(
+        home.code,
+        contact,
+        len(own),
+        len(shared),
+        n["alerts"],
+        n["verdict_notes"],
+        n["timeline_notes"],
+        n["staged"],
+        tuple(erase),
+        tuple(keep),
+    )
 
 
 def _sign(secret: str, payload: str) -> str:
@@ -117,19 +153,22 @@ def erasure_ticket(secret: str, home: Home, *, now: dt.datetime | None = None) -
 def _check_ticket(secret: str, home: Home, ticket: str, now: dt.datetime) -> None:
     expires_s, _, sig = (ticket or "").partition(".")
     if not expires_s.isdigit() or not sig:
-        raise ErasureNotConfirmed(f"The erasure of {home.code} was not confirmed; start again from its "
-                                  "erasure page.")
+        raise ErasureNotConfirmed(
+            f"The erasure of {home.code} was not confirmed; start again from its erasure page."
+        )
     if not hmac.compare_digest(sig, _sign(secret, f"{home.id}.{home.code}.{expires_s}")):
-        raise ErasureNotConfirmed(f"This confirmation does not belong to {home.code}; start again from its "
-                                  "erasure page.")
+        raise ErasureNotConfirmed(
+            f"This confirmation does not belong to {home.code}; start again from its erasure page."
+        )
     if now.timestamp() > int(expires_s):
         raise ErasureNotConfirmed(f"The confirmation for {home.code} expired; start the erasure again.")
 
 
 def check_confirm_code(home: Home, typed: str) -> None:
     if (typed or "").strip().upper() != home.code:
-        raise ValidationFailed(f"Type the home code {home.code} to confirm.",
-                               {"confirm_code": f"Type {home.code} exactly."})
+        raise ValidationFailed(
+            f"Type the home code {home.code} to confirm.", {"confirm_code": f"Type {home.code} exactly."}
+        )
 
 
 @dataclass(frozen=True)
@@ -151,8 +190,14 @@ def _forget_images(cache_dir: Path | None, sha256: str) -> None:
     image_cache.forget(cache_dir, sha256)
 
 
-def _delete_clip_files(session: Session, store: ClipStore, clips: list[Clip], reason: str,
-                       cache_dir: Path | None, now: dt.datetime) -> tuple[int, list[str]]:
+def _delete_clip_files(
+    session: Session,
+    store: ClipStore,
+    clips: list[Clip],
+    reason: str,
+    cache_dir: Path | None,
+    now: dt.datetime,
+) -> tuple[int, list[str]]:
     deleted, failed = 0, []
     for clip in clips:
         _forget_images(cache_dir, clip.sha256)
@@ -166,9 +211,19 @@ def _delete_clip_files(session: Session, store: ClipStore, clips: list[Clip], re
     return deleted, failed
 
 
-def erase_home(session: Session, store: ClipStore, home: Home, *, secret: str, ticket: str,
-               confirm_code: str, actor: service.Actor, now: dt.datetime | None = None,
-               cache_dir: Path | None = None, note: str | None = None) -> ErasureResult:
+def erase_home(
+    session: Session,
+    store: ClipStore,
+    home: Home,
+    *,
+    secret: str,
+    ticket: str,
+    confirm_code: str,
+    actor: service.Actor,
+    now: dt.datetime | None = None,
+    cache_dir: Path | None = None,
+    note: str | None = None,
+) -> ErasureResult:
     """Withdraw the home (if it is not already out) and erase its personal data and audio. Irreversible.
 
     Needs the ticket from the first step and the home code typed again. A file that cannot be
@@ -180,16 +235,25 @@ def erase_home(session: Session, store: ClipStore, home: Home, *, secret: str, t
     if home.erased_at is not None:
         raise Conflict(f"{home.code} was already erased on {home.erased_at:%Y-%m-%d}.", code="home_erased")
     if home.state not in (HomeState.withdrawn, HomeState.declined):
-        service.transition(session, home, HomeState.withdrawn, actor=actor,
-                           at=max(now, home.state_changed_at), note=None)
+        service.transition(
+            session, home, HomeState.withdrawn, actor=actor, at=max(now, home.state_changed_at), note=None
+        )
     contact = session.scalar(select(HomeContact).where(HomeContact.home_id == home.id))
     if contact is not None:
         session.delete(contact)
     alert_ids = select(Alert.id).where(Alert.home_id == home.id)
-    session.execute(update(Verdict).where(Verdict.alert_id.in_(alert_ids)).values(note=None)
-                    .execution_options(synchronize_session=False))
-    session.execute(update(HomeStateChange).where(HomeStateChange.home_id == home.id).values(note=None)
-                    .execution_options(synchronize_session=False))
+    session.execute(
+        update(Verdict)
+        .where(Verdict.alert_id.in_(alert_ids))
+        .values(note=None)
+        .execution_options(synchronize_session=False)
+    )
+    session.execute(
+        update(HomeStateChange)
+        .where(HomeStateChange.home_id == home.id)
+        .values(note=None)
+        .execution_options(synchronize_session=False)
+    )
     session.flush()
     own, shared = _home_clips(session, home)
     deleted, failed = _delete_clip_files(session, store, own, "erasure", cache_dir, now)
@@ -202,21 +266,34 @@ def erase_home(session: Session, store: ClipStore, home: Home, *, secret: str, t
     for obj in list(session.identity_map.values()):
         if isinstance(obj, Verdict | HomeStateChange):
             session.expire(obj)
-    audit.record(session, actor, "home.erase", "home", home.id,
-                 {"code": home.code, "contact_erased": contact is not None, "clips_deleted": deleted,
-                  "clips_shared_kept": len(shared), "alerts_kept": kept, "complete": complete,
-                  "note": (note or "").strip()[:200] or None})
+    audit.record(
+        session,
+        actor,
+        "home.erase",
+        "home",
+        home.id,
+        {
+            "code": home.code,
+            "contact_erased": contact is not None,
+            "clips_deleted": deleted,
+            "clips_shared_kept": len(shared),
+            "alerts_kept": kept,
+            "complete": complete,
+            "note": (note or "").strip()[:200] or None,
+        },
+    )
     return ErasureResult(home.code, complete, contact is not None, deleted, len(shared), kept, tuple(failed))
 
 
 # --- purge ---------------------------------------------------------------------------------------
 
+
 @dataclass(frozen=True)
 class PurgeItem:
     clip_id: int
     storage_key: str
-    reason: str              # "private" | "retention"
-    homes: tuple[str, ...]   # codes of the homes whose alerts used the clip
+    reason: str  # "private" | "retention"
+    homes: tuple[str, ...]  # codes of the homes whose alerts used the clip
     received_at: dt.datetime  # the latest receipt among its alerts
 
 
@@ -239,17 +316,22 @@ class PurgeReport:
 def purge_candidates(session: Session, now: dt.datetime) -> tuple[list[PurgeItem], int]:
     """Clips of alerts flagged private, and clips all of whose alerts are past their home's retention."""
     consents: dict[int, int] = {}
-    for home_id, days in session.execute(select(Consent.home_id, Consent.retention_days)
-                                         .order_by(Consent.recorded_at, Consent.id)):
-        consents[home_id] = days  # the latest consent wins
+    for consent_home, days in session.execute(
+        select(Consent.home_id, Consent.retention_days).order_by(Consent.recorded_at, Consent.id)
+    ):
+        consents[consent_home] = days  # the latest consent wins
     codes = {hid: code for hid, code in session.execute(select(Home.id, Home.code))}
-    rows = session.execute(select(Clip.id, Clip.storage_key, Alert.home_id, Alert.received_at, Alert.private_flag)
-                           .join(Alert, Alert.clip_id == Clip.id).where(Clip.erased_at.is_(None))
-                           .order_by(Clip.id))
+    rows = session.execute(
+        select(Clip.id, Clip.storage_key, Alert.home_id, Alert.received_at, Alert.private_flag)
+        .join(Alert, Alert.clip_id == Clip.id)
+        .where(Clip.erased_at.is_(None))
+        .order_by(Clip.id)
+    )
     per_clip: dict[int, list[tuple[str, int | None, dt.datetime, bool]]] = {}
     for clip_id, key, home_id, received_at, private in rows:
         per_clip.setdefault(clip_id, []).append((key, home_id, received_at, bool(private)))
-    items, no_consent = [], 0
+    items: list[PurgeItem] = []
+    no_consent = 0
     for clip_id, alerts in per_clip.items():
         key = alerts[0][0]
         homes = tuple(sorted({codes[h] for _, h, _, _ in alerts if h is not None}))
@@ -265,8 +347,15 @@ def purge_candidates(session: Session, now: dt.datetime) -> tuple[list[PurgeItem
     return items, no_consent
 
 
-def purge_clips(session: Session, store: ClipStore, *, now: dt.datetime | None = None, apply: bool = False,
-                actor: service.Actor = "cli", cache_dir: Path | None = None) -> PurgeReport:
+def purge_clips(
+    session: Session,
+    store: ClipStore,
+    *,
+    now: dt.datetime | None = None,
+    apply: bool = False,
+    actor: service.Actor = "cli",
+    cache_dir: Path | None = None,
+) -> PurgeReport:
     """Dry run by default: list what would go. With ``apply`` delete the files and mark the rows."""
     now = now or utcnow()
     items, no_consent = purge_candidates(session, now)
@@ -278,8 +367,17 @@ def purge_clips(session: Session, store: ClipStore, *, now: dt.datetime | None =
             d, f = _delete_clip_files(session, store, clips, reason, cache_dir, now)
             deleted += d
             failed += f
-        audit.record(session, actor, "storage.purge", "clip", None,
-                     {"deleted": deleted, "failed": len(failed),
-                      "private": sum(1 for i in items if i.reason == "private"),
-                      "retention": sum(1 for i in items if i.reason == "retention")})
+        audit.record(
+            session,
+            actor,
+            "storage.purge",
+            "clip",
+            None,
+            {
+                "deleted": deleted,
+                "failed": len(failed),
+                "private": sum(1 for i in items if i.reason == "private"),
+                "retention": sum(1 for i in items if i.reason == "retention"),
+            },
+        )
     return PurgeReport(apply, tuple(items), deleted, tuple(failed), no_consent)

@@ -47,21 +47,31 @@ def _names(states: tuple[str, ...]) -> str:
 def check(code: str, current: str, target: str, *, has_consent: bool, has_device: bool) -> Refusal | None:
     """None when ``current -> target`` is allowed for home ``code``, else the reason it is not."""
     if target not in NEXT:
-        return Refusal("illegal_transition", f"'{target}' is not a home state; the states are "
-                       f"{', '.join(NEXT)}.")
+        return Refusal(
+            "illegal_transition", f"'{target}' is not a home state; the states are {', '.join(NEXT)}."
+        )
     if target == current:
         return Refusal("illegal_transition", f"{code} is already {current}.")
     allowed = NEXT.get(current, ())
     if target not in allowed:
         if current == S.withdrawn:
-            return Refusal("illegal_transition", f"{code} is withdrawn; withdrawal is final, so it cannot "
-                           f"become {target}.")
-        return Refusal("illegal_transition", f"{code} cannot go from {current} to {target}; from {current} "
-                       f"it can go to: {_names(allowed)}.")
+            return Refusal(
+                "illegal_transition",
+                f"{code} is withdrawn; withdrawal is final, so it cannot become {target}.",
+            )
+        return Refusal(
+            "illegal_transition",
+            f"{code} cannot go from {current} to {target}; from {current} it can go to: {_names(allowed)}.",
+        )
     if target in NEEDS_CONSENT and not has_consent:
-        return Refusal("consent_missing", f"{code} has no consent on record; record the household's signed "
-                       f"consent before it becomes {target}.")
+        return Refusal(
+            "consent_missing",
+            f"{code} has no consent on record; record the household's signed "
+            f"consent before it becomes {target}.",
+        )
     if target in NEEDS_DEVICE and not has_device:
-        return Refusal("no_device_installed", f"{code} has no device installed at that time; install one "
-                       f"before it becomes {target}.")
+        return Refusal(
+            "no_device_installed",
+            f"{code} has no device installed at that time; install one before it becomes {target}.",
+        )
     return None

@@ -14,9 +14,11 @@ from typing import Any
 # Homes still being recruited: the pool the greedy cover draws from.
 CANDIDATE_STATES = ("candidate", "screened")
 
-COVER_RULE = ("Suggestions are picked one at a time: each pick is the candidate that helps the most "
-              "targets still short (ties go to the one helping the larger shortfalls, then to the lower "
-              "code), and no pick pushes a target past its maximum.")
+COVER_RULE = (
+    "Suggestions are picked one at a time: each pick is the candidate that helps the most "
+    "targets still short (ties go to the one helping the larger shortfalls, then to the lower "
+    "code), and no pick pushes a target past its maximum."
+)
 
 
 @dataclass(frozen=True)
@@ -118,8 +120,9 @@ def matches(target: Target, attributes: Mapping[str, Any]) -> bool:
     return _same(v, target.value)
 
 
-def count_targets(targets: Sequence[Target], homes: Iterable[HomeFacts],
-                  counting_states: Iterable[str]) -> tuple[TargetStatus, ...]:
+def count_targets(
+    targets: Sequence[Target], homes: Iterable[HomeFacts], counting_states: Iterable[str]
+) -> tuple[TargetStatus, ...]:
     states = set(counting_states)
     counted = [h for h in homes if h.state in states]
     out = []
@@ -129,8 +132,9 @@ def count_targets(targets: Sequence[Target], homes: Iterable[HomeFacts],
     return tuple(out)
 
 
-def greedy_cover(statuses: Sequence[TargetStatus], candidates: Iterable[HomeFacts]
-                 ) -> tuple[tuple[Suggestion, ...], dict[int, int]]:
+def greedy_cover(
+    statuses: Sequence[TargetStatus], candidates: Iterable[HomeFacts]
+) -> tuple[tuple[Suggestion, ...], dict[int, int]]:
     """Candidates that would close the unmet targets if recruited, picked greedily (see COVER_RULE).
 
     Returns the picks in order and the shortfall left on each short target after all of them.
@@ -167,8 +171,12 @@ def greedy_cover(statuses: Sequence[TargetStatus], candidates: Iterable[HomeFact
     return tuple(picks), remaining
 
 
-def evaluate(targets: Sequence[Target], homes: Sequence[HomeFacts], counting_states: Iterable[str],
-             candidate_states: Iterable[str] = CANDIDATE_STATES) -> QuotaReport:
+def evaluate(
+    targets: Sequence[Target],
+    homes: Sequence[HomeFacts],
+    counting_states: Iterable[str],
+    candidate_states: Iterable[str] = CANDIDATE_STATES,
+) -> QuotaReport:
     """Count every target, total the homes by state, and suggest candidates for the shortfalls."""
     counting = tuple(counting_states)
     statuses = count_targets(targets, homes, counting)
@@ -182,5 +190,4 @@ def evaluate(targets: Sequence[Target], homes: Sequence[HomeFacts], counting_sta
 def newly_short(before: QuotaReport, after: QuotaReport) -> list[TargetStatus]:
     """Targets whose count fell and now sit below their minimum (for the withdrawal warning)."""
     old = {s.target.id: s.count for s in before.targets}
-    return [s for s in after.targets
-            if s.status == "short" and s.count < old.get(s.target.id, s.count)]
+    return [s for s in after.targets if s.status == "short" and s.count < old.get(s.target.id, s.count)]

@@ -91,7 +91,7 @@ class ContactOut(ContactIn):
 
 class InstallationIn(Strict):
     device: str  # serial
-    home: str    # code
+    home: str  # code
     room: str
     installed_at: AwareDatetime
     move: bool = False

@@ -10,7 +10,7 @@ from __future__ import annotations
 import datetime as dt
 import re
 import zoneinfo
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -65,6 +65,7 @@ def _when(value: dt.datetime | None) -> str:
 
 # --- look-ups -----------------------------------------------------------------------------------
 
+
 def find_home(session: Session, code: str) -> Home | None:
     return session.scalar(select(Home).where(Home.code == code.strip().upper()))
 
@@ -83,20 +84,36 @@ def trial_of(session: Session, home: Home) -> Trial:
 
 
 def latest_consent(session: Session, home: Home) -> Consent | None:
-    return session.scalar(select(Consent).where(Consent.home_id == home.id)
-                          .order_by(Consent.recorded_at.desc(), Consent.id.desc()).limit(1))
+    return session.scalar(
+        select(Consent)
+        .where(Consent.home_id == home.id)
+        .order_by(Consent.recorded_at.desc(), Consent.id.desc())
+        .limit(1)
+    )
 
 
-def list_homes(session: Session, trial: Trial, *, state: str | None = None, attribute: str | None = None,
-               value: Any = None, sort: str = "code", descending: bool = False) -> list[Home]:
+def list_homes(
+    session: Session,
+    trial: Trial,
+    *,
+    state: str | None = None,
+    attribute: str | None = None,
+    value: Any = None,
+    sort: str = "code",
+    descending: bool = False,
+) -> list[Home]:
     """Homes of a trial, filtered by state and by one attribute (value None: any answer)."""
     q = select(Home).where(Home.trial_id == trial.id)
     if state:
         if state not in HomeState.all:
             raise ValidationFailed(f"'{state}' is not a home state.", {"state": "Pick one of the states."})
         q = q.where(Home.state == state)
-    order = {"code": Home.code, "state": Home.state, "changed": Home.state_changed_at,
-             "created": Home.created_at}.get(sort)
+    order = {
+        "code": Home.code,
+        "state": Home.state,
+        "changed": Home.state_changed_at,
+        "created": Home.created_at,
+    }.get(sort)
     if order is None:
         raise ValidationFailed(f"Sort by one of: {', '.join(SORTS)}.", {"sort": "Unknown sort."})
     q = q.order_by(order.desc() if descending else order.asc(), Home.code)
@@ -109,21 +126,26 @@ def list_homes(session: Session, trial: Trial, *, state: str | None = None, attr
 
 
 def state_counts(session: Session, trial: Trial) -> dict[str, int]:
-    rows = session.execute(select(Home.state, func.count(Home.id)).where(Home.trial_id == trial.id)
-                           .group_by(Home.state))
+    rows = session.execute(
+        select(Home.state, func.count(Home.id)).where(Home.trial_id == trial.id).group_by(Home.state)
+    )
     counts = dict.fromkeys(HomeState.all, 0)
     counts.update({s: int(n) for s, n in rows})
     return counts
 
 
 def timeline_of(session: Session, home: Home) -> list[tuple[HomeStateChange, User | None]]:
-    rows = session.execute(select(HomeStateChange, User).outerjoin(User, User.id == HomeStateChange.by_id)
-                           .where(HomeStateChange.home_id == home.id)
-                           .order_by(HomeStateChange.at, HomeStateChange.id))
+    rows = session.execute(
+        select(HomeStateChange, User)
+        .outerjoin(User, User.id == HomeStateChange.by_id)
+        .where(HomeStateChange.home_id == home.id)
+        .order_by(HomeStateChange.at, HomeStateChange.id)
+    )
     return [(c, u) for c, u in rows]
 
 
 # --- homes and attributes -----------------------------------------------------------------------
+
 
 def next_home_code(session: Session) -> str:
     codes = session.scalars(select(Home.code).where(Home.code.like("H-%")))
@@ -138,22 +160,37 @@ def _check_attributes(session: Session, trial: Trial, values: Mapping[str, Any])
     return clean
 
 
-def create_home(session: Session, trial: Trial, *, attributes: Mapping[str, Any] | None = None,
-                code: str | None = None, actor: Actor = "cli", at: dt.datetime | None = None,
-                note: str | None = None) -> Home:
+def create_home(
+    session: Session,
+    trial: Trial,
+    *,
+    attributes: Mapping[str, Any] | None = None,
+    code: str | None = None,
+    actor: Actor = "cli",
+    at: dt.datetime | None = None,
+    note: str | None = None,
+) -> Home:
     """A new candidate home with a generated code (or the given one), its first timeline entry."""
     clean = _check_attributes(session, trial, attributes or {})
     at = _utc(at, "at") if at else utcnow()
     if code is not None:
         code = code.strip().upper()
         if not CODE_PATTERN.match(code):
-            raise ValidationFailed(f"Home code '{code}' must read H- and 4 to 6 digits, e.g. H-0007.",
-                                   {"code": "Codes read H- and 4 to 6 digits, e.g. H-0007."})
+            raise ValidationFailed(
+                f"Home code '{code}' must read H- and 4 to 6 digits, e.g. H-0007.",
+                {"code": "Codes read H- and 4 to 6 digits, e.g. H-0007."},
+            )
         if find_home(session, code) is not None:
             raise Conflict(f"Home code {code} is already taken.", code="home_exists")
     for _attempt in range(5):
-        home = Home(trial_id=trial.id, code=code or next_home_code(session), state=HomeState.candidate,
-                    state_changed_at=at, attributes=clean, created_at=at)
+        home = Home(
+            trial_id=trial.id,
+            code=code or next_home_code(session),
+            state=HomeState.candidate,
+            state_changed_at=at,
+            attributes=clean,
+            created_at=at,
+        )
         try:
             with session.begin_nested():
                 session.add(home)
@@ -165,8 +202,16 @@ def create_home(session: Session, trial: Trial, *, attributes: Mapping[str, Any]
                 raise Conflict(f"Home code {code} is already taken.", code="home_exists") from None
     else:  # pragma: no cover - five collisions in a row
         raise Conflict("Could not pick a free home code; try again.", code="home_exists")
-    session.add(HomeStateChange(home_id=home.id, from_state=None, to_state=HomeState.candidate, at=at,
-                                by_id=_by_id(actor), note=_note(note)))
+    session.add(
+        HomeStateChange(
+            home_id=home.id,
+            from_state=None,
+            to_state=HomeState.candidate,
+            at=at,
+            by_id=_by_id(actor),
+            note=_note(note),
+        )
+    )
     session.flush()
     return home
 
@@ -178,8 +223,9 @@ def _note(note: str | None) -> str | None:
     return note or None
 
 
-def update_attributes(session: Session, home: Home, values: Mapping[str, Any], *, actor: Actor = "cli",
-                      merge: bool = False) -> Home:
+def update_attributes(
+    session: Session, home: Home, values: Mapping[str, Any], *, actor: Actor = "cli", merge: bool = False
+) -> Home:
     """Replace the home's answers (``merge``: change only the given keys; None removes one)."""
     _refuse_if_erased(home, "change its attributes")
     trial = trial_of(session, home)
@@ -202,6 +248,7 @@ def _refuse_if_erased(home: Home, what: str) -> None:
 
 # --- lifecycle ----------------------------------------------------------------------------------
 
+
 @dataclass(frozen=True)
 class TransitionResult:
     home: Home
@@ -211,14 +258,30 @@ class TransitionResult:
 
 
 def _has_device_at(session: Session, home: Home, at: dt.datetime) -> bool:
-    return session.scalar(select(Installation.id).where(
-        Installation.home_id == home.id, Installation.installed_at <= at,
-        Installation.removed_at.is_(None) | (Installation.removed_at > at)).limit(1)) is not None
+    return (
+        session.scalar(
+            select(Installation.id)
+            .where(
+                Installation.home_id == home.id,
+                Installation.installed_at <= at,
+                Installation.removed_at.is_(None) | (Installation.removed_at > at),
+            )
+            .limit(1)
+        )
+        is not None
+    )
 
 
-def transition(session: Session, home: Home, to_state: str, *, actor: Actor = "cli",
-               at: dt.datetime | None = None, note: str | None = None, listening: bool = True
-               ) -> TransitionResult:
+def transition(
+    session: Session,
+    home: Home,
+    to_state: str,
+    *,
+    actor: Actor = "cli",
+    at: dt.datetime | None = None,
+    note: str | None = None,
+    listening: bool = True,
+) -> TransitionResult:
     """Move a home to ``to_state`` at ``at`` (default now), recording time, author and note.
 
     ``listening`` matters on a pause: whether the devices keep listening (their time still counts
@@ -231,22 +294,35 @@ def transition(session: Session, home: Home, to_state: str, *, actor: Actor = "c
     if at < home.state_changed_at:
         raise ValidationFailed(
             f"{home.code} last changed state at {_when(home.state_changed_at)}; a new step cannot be "
-            f"dated before it.", {"at": "This time is before the home's last change of state."})
-    refusal = lifecycle.check(home.code, home.state, to_state,
-                              has_consent=latest_consent(session, home) is not None,
-                              has_device=_has_device_at(session, home, at))
+            f"dated before it.",
+            {"at": "This time is before the home's last change of state."},
+        )
+    refusal = lifecycle.check(
+        home.code,
+        home.state,
+        to_state,
+        has_consent=latest_consent(session, home) is not None,
+        has_device=_has_device_at(session, home, at),
+    )
     if refusal is not None:
         raise IllegalTransition(refusal.message, code=refusal.code)
     trial = trial_of(session, home)
     before = quota_report(session, trial)
     closed: list[Installation] = []
     if to_state in lifecycle.ENDED:
-        for inst in session.scalars(select(Installation).where(Installation.home_id == home.id,
-                                                                Installation.removed_at.is_(None))):
+        for inst in session.scalars(
+            select(Installation).where(Installation.home_id == home.id, Installation.removed_at.is_(None))
+        ):
             closed.append(remove_installation(session, inst, removed_at=at, actor=actor))
-    change = HomeStateChange(home_id=home.id, from_state=home.state, to_state=to_state, at=at,
-                             by_id=_by_id(actor), note=_note(note),
-                             listening=bool(listening) if to_state == HomeState.paused else True)
+    change = HomeStateChange(
+        home_id=home.id,
+        from_state=home.state,
+        to_state=to_state,
+        at=at,
+        by_id=_by_id(actor),
+        note=_note(note),
+        listening=bool(listening) if to_state == HomeState.paused else True,
+    )
     session.add(change)
     home.state = to_state
     home.state_changed_at = at
@@ -254,16 +330,28 @@ def transition(session: Session, home: Home, to_state: str, *, actor: Actor = "c
     after = quota_report(session, trial)
     warnings = tuple(
         f"Quota target '{s.target.label}' now has {s.count} home{'s' if s.count != 1 else ''}, "
-        f"below its minimum of {s.target.min_count}." for s in quota.newly_short(before, after))
+        f"below its minimum of {s.target.min_count}."
+        for s in quota.newly_short(before, after)
+    )
     return TransitionResult(home, change, warnings, tuple(closed))
 
 
 # --- consent and personal data ------------------------------------------------------------------
 
-def record_consent(session: Session, home: Home, *, form_version: str, consented_on: dt.date,
-                   staff_may_listen: bool = True, retention_days: int = 90, actor: Actor = "cli",
-                   mark_consented: bool = False, at: dt.datetime | None = None,
-                   today: dt.date | None = None) -> Consent:
+
+def record_consent(
+    session: Session,
+    home: Home,
+    *,
+    form_version: str,
+    consented_on: dt.date,
+    staff_may_listen: bool = True,
+    retention_days: int = 90,
+    actor: Actor = "cli",
+    mark_consented: bool = False,
+    at: dt.datetime | None = None,
+    today: dt.date | None = None,
+) -> Consent:
     """Record the household's signed consent; ``mark_consented`` also moves a screened home on.
 
     The move is dated ``at``, or by default from the signing date (local midnight) but never before
@@ -281,14 +369,30 @@ def record_consent(session: Session, home: Home, *, form_version: str, consented
         errors["retention_days"] = "Keep clips for 1 to 3650 days."
     if errors:
         raise ValidationFailed(next(iter(errors.values())), errors)
-    consent = Consent(home_id=home.id, form_version=form_version, consented_on=consented_on,
-                      staff_may_listen=bool(staff_may_listen), retention_days=int(retention_days),
-                      recorded_by_id=_by_id(actor), recorded_at=utcnow())
+    consent = Consent(
+        home_id=home.id,
+        form_version=form_version,
+        consented_on=consented_on,
+        staff_may_listen=bool(staff_may_listen),
+        retention_days=int(retention_days),
+        recorded_by_id=_by_id(actor),
+        recorded_at=utcnow(),
+    )
     session.add(consent)
     session.flush()
-    audit.record(session, actor, "consent.record", "home", home.id,
-                 {"code": home.code, "form_version": form_version, "retention_days": int(retention_days),
-                  "staff_may_listen": bool(staff_may_listen)})
+    audit.record(
+        session,
+        actor,
+        "consent.record",
+        "home",
+        home.id,
+        {
+            "code": home.code,
+            "form_version": form_version,
+            "retention_days": int(retention_days),
+            "staff_may_listen": bool(staff_may_listen),
+        },
+    )
     if mark_consented:
         if at is None:
             # The home is consented from the day the form was signed (local midnight), unless its
@@ -296,8 +400,14 @@ def record_consent(session: Session, home: Home, *, form_version: str, consented
             tz = zoneinfo.ZoneInfo(trial_of(session, home).timezone)
             signed = dt.datetime.combine(consented_on, dt.time(0), tzinfo=tz).astimezone(dt.UTC)
             at = min(max(signed, home.state_changed_at), max(utcnow(), home.state_changed_at))
-        transition(session, home, HomeState.consented, actor=actor, at=at,
-                   note=f"Consent form {form_version} signed {consented_on.isoformat()}.")
+        transition(
+            session,
+            home,
+            HomeState.consented,
+            actor=actor,
+            at=at,
+            note=f"Consent form {form_version} signed {consented_on.isoformat()}.",
+        )
     return consent
 
 
@@ -344,8 +454,14 @@ def set_contact(session: Session, home: Home, *, actor: Actor = "cli", **values:
 def view_contact(session: Session, home: Home, *, actor: Actor, via: str) -> HomeContact | None:
     """The household's contact details for someone allowed to see them; every view is audited."""
     contact = session.scalar(select(HomeContact).where(HomeContact.home_id == home.id))
-    audit.record(session, actor, "personal.view", "home", home.id,
-                 {"code": home.code, "via": via, "present": contact is not None})
+    audit.record(
+        session,
+        actor,
+        "personal.view",
+        "home",
+        home.id,
+        {"code": home.code, "via": via, "present": contact is not None},
+    )
     return contact
 
 
@@ -355,11 +471,12 @@ def has_contact(session: Session, home: Home) -> bool:
 
 # --- installations ------------------------------------------------------------------------------
 
+
 @dataclass(frozen=True)
 class InstallResult:
     installation: Installation
     closed: Installation | None  # the device's previous installation, closed by a move
-    reattributed: int             # alerts whose home or installation changed
+    reattributed: int  # alerts whose home or installation changed
 
 
 @dataclass(frozen=True)
@@ -375,8 +492,9 @@ def get_installation(session: Session, installation_id: int) -> Installation:
     return inst
 
 
-def list_installations(session: Session, *, home: Home | None = None, device: Device | None = None
-                       ) -> list[Installation]:
+def list_installations(
+    session: Session, *, home: Home | None = None, device: Device | None = None
+) -> list[Installation]:
     q = select(Installation).order_by(Installation.installed_at.desc(), Installation.id.desc())
     if home is not None:
         q = q.where(Installation.home_id == home.id)
@@ -386,20 +504,28 @@ def list_installations(session: Session, *, home: Home | None = None, device: De
 
 
 def current_installation(session: Session, device: Device) -> Installation | None:
-    return session.scalar(select(Installation).where(Installation.device_id == device.id,
-                                                     Installation.removed_at.is_(None)))
+    return session.scalar(
+        select(Installation).where(Installation.device_id == device.id, Installation.removed_at.is_(None))
+    )
 
 
 def _check_room(room: str) -> str:
     room = (room or "").strip().lower().replace(" ", "_")
     if room not in ROOMS:
-        raise ValidationFailed(f"The room is one of: {', '.join(r.replace('_', ' ') for r in ROOMS)}.",
-                               {"room": "Pick a room from the list."})
+        raise ValidationFailed(
+            f"The room is one of: {', '.join(r.replace('_', ' ') for r in ROOMS)}.",
+            {"room": "Pick a room from the list."},
+        )
     return room
 
 
-def _check_no_overlap(session: Session, device: Device, start: dt.datetime, end: dt.datetime | None,
-                      exclude_id: int | None = None) -> None:
+def _check_no_overlap(
+    session: Session,
+    device: Device,
+    start: dt.datetime,
+    end: dt.datetime | None,
+    exclude_id: int | None = None,
+) -> None:
     for other in list_installations(session, device=device):
         if other.id == exclude_id:
             continue
@@ -408,11 +534,20 @@ def _check_no_overlap(session: Session, device: Device, start: dt.datetime, end:
             raise Conflict(
                 f"Device {device.serial} was in {other.home.code} ({other.room.replace('_', ' ')}) from "
                 f"{_when(other.installed_at)} {until}; a device can be in only one home at a time.",
-                code="installation_overlap")
+                code="installation_overlap",
+            )
 
 
-def install_device(session: Session, *, home: Home, device: Device, room: str, installed_at: dt.datetime,
-                   actor: Actor = "cli", move: bool = False) -> InstallResult:
+def install_device(
+    session: Session,
+    *,
+    home: Home,
+    device: Device,
+    room: str,
+    installed_at: dt.datetime,
+    actor: Actor = "cli",
+    move: bool = False,
+) -> InstallResult:
     """Put a device in a home's room from ``installed_at``; ``move`` first closes its open installation.
 
     A consented home becomes installed. Refusals: 409 ``consent_missing``, ``illegal_transition``,
@@ -422,95 +557,158 @@ def install_device(session: Session, *, home: Home, device: Device, room: str, i
     room = _check_room(room)
     _refuse_if_erased(home, "receive a device")
     if device.trial_id != home.trial_id:
-        raise Conflict(f"Device {device.serial} belongs to another trial than {home.code}.",
-                       code="device_other_trial")
+        raise Conflict(
+            f"Device {device.serial} belongs to another trial than {home.code}.", code="device_other_trial"
+        )
     if device.revoked:
-        raise Conflict(f"Device {device.serial} was revoked; it cannot be installed.", code="device_revoked")
+        raise Conflict(f"Device {device.serial} was revoked; it cannot be installed.", code="revoked_device")
     if latest_consent(session, home) is None:
-        raise IllegalTransition(f"{home.code} has no consent on record; record the household's signed "
-                                "consent before installing a device.", code="consent_missing")
+        raise IllegalTransition(
+            f"{home.code} has no consent on record; record the household's signed "
+            "consent before installing a device.",
+            code="consent_missing",
+        )
     if home.state not in lifecycle.MAY_INSTALL:
-        raise IllegalTransition(f"{home.code} is {home.state}; devices go only into consented, installed, "
-                                "active or paused homes.")
+        raise IllegalTransition(
+            f"{home.code} is {home.state}; devices go only into consented, installed, active or paused homes."
+        )
     closed = None
     current = current_installation(session, device)
     if current is not None:
         if not move:
-            raise Conflict(f"Device {device.serial} is installed in {current.home.code} "
-                           f"({current.room.replace('_', ' ')}) since {_when(current.installed_at)}; "
-                           "remove it there first, or move it.", code="device_installed_elsewhere")
+            raise Conflict(
+                f"Device {device.serial} is installed in {current.home.code} "
+                f"({current.room.replace('_', ' ')}) since {_when(current.installed_at)}; "
+                "remove it there first, or move it.",
+                code="device_installed_elsewhere",
+            )
         if installed_at <= current.installed_at:
             raise ValidationFailed(
                 f"A move must happen after the device's current installation began "
-                f"({_when(current.installed_at)}).", {"installed_at": "Before the current installation began."})
+                f"({_when(current.installed_at)}).",
+                {"installed_at": "Before the current installation began."},
+            )
         closed = _close(session, current, installed_at, actor)
     _check_no_overlap(session, device, installed_at, None)
     inst = Installation(device_id=device.id, home_id=home.id, room=room, installed_at=installed_at)
     session.add(inst)
     session.flush()
-    audit.record(session, actor, "installation.add", "installation", inst.id,
-                 {"device": device.serial, "home": home.code, "room": room,
-                  "installed_at": installed_at.isoformat(), "moved_from": closed.home.code if closed else None})
+    audit.record(
+        session,
+        actor,
+        "installation.add",
+        "installation",
+        inst.id,
+        {
+            "device": device.serial,
+            "home": home.code,
+            "room": room,
+            "installed_at": installed_at.isoformat(),
+            "moved_from": closed.home.code if closed else None,
+        },
+    )
     if home.state == HomeState.consented:
-        transition(session, home, HomeState.installed, actor=actor,
-                   at=max(installed_at, home.state_changed_at),
-                   note=f"Device {device.serial} installed ({room.replace('_', ' ')}).")
+        transition(
+            session,
+            home,
+            HomeState.installed,
+            actor=actor,
+            at=max(installed_at, home.state_changed_at),
+            note=f"Device {device.serial} installed ({room.replace('_', ' ')}).",
+        )
     return InstallResult(inst, closed, devices_service.reattribute_alerts(session, device.id))
 
 
 def _close(session: Session, inst: Installation, removed_at: dt.datetime, actor: Actor) -> Installation:
     if removed_at <= inst.installed_at:
-        raise ValidationFailed(f"The removal must come after the installation began "
-                               f"({_when(inst.installed_at)}).",
-                               {"removed_at": "Before the installation began."})
+        raise ValidationFailed(
+            f"The removal must come after the installation began ({_when(inst.installed_at)}).",
+            {"removed_at": "Before the installation began."},
+        )
     inst.removed_at = removed_at
     session.flush()
-    audit.record(session, actor, "installation.remove", "installation", inst.id,
-                 {"home": inst.home.code, "removed_at": removed_at.isoformat()})
+    audit.record(
+        session,
+        actor,
+        "installation.remove",
+        "installation",
+        inst.id,
+        {"home": inst.home.code, "removed_at": removed_at.isoformat()},
+    )
     return inst
 
 
-def remove_installation(session: Session, inst: Installation, *, removed_at: dt.datetime,
-                        actor: Actor = "cli") -> Installation:
+def remove_installation(
+    session: Session, inst: Installation, *, removed_at: dt.datetime, actor: Actor = "cli"
+) -> Installation:
     """Close an open installation at ``removed_at``; alerts after it become unassigned."""
     removed_at = _utc(removed_at, "removed_at")
     if inst.removed_at is not None:
-        raise Conflict(f"This installation already ended at {_when(inst.removed_at)}; correct its dates "
-                       "instead.", code="installation_closed")
+        raise Conflict(
+            f"This installation already ended at {_when(inst.removed_at)}; correct its dates instead.",
+            code="installation_closed",
+        )
     _close(session, inst, removed_at, actor)
     devices_service.reattribute_alerts(session, inst.device_id)
     return inst
 
 
-def move_device(session: Session, *, device: Device, to_home: Home, room: str, at: dt.datetime,
-                actor: Actor = "cli") -> InstallResult:
+def move_device(
+    session: Session, *, device: Device, to_home: Home, room: str, at: dt.datetime, actor: Actor = "cli"
+) -> InstallResult:
     """Close the device's open installation at ``at`` and open one in ``to_home``."""
-    return install_device(session, home=to_home, device=device, room=room, installed_at=at, actor=actor,
-                          move=True)
+    return install_device(
+        session, home=to_home, device=device, room=room, installed_at=at, actor=actor, move=True
+    )
 
 
-def correct_installation(session: Session, inst: Installation, *, installed_at: dt.datetime,
-                         removed_at: dt.datetime | None, room: str, actor: Actor = "cli") -> CorrectionResult:
+def correct_installation(
+    session: Session,
+    inst: Installation,
+    *,
+    installed_at: dt.datetime,
+    removed_at: dt.datetime | None,
+    room: str,
+    actor: Actor = "cli",
+) -> CorrectionResult:
     """Fix an installation's dates or room; the device's alerts are re-attributed (audited)."""
     installed_at = _utc(installed_at, "installed_at")
     removed_at = _utc(removed_at, "removed_at") if removed_at is not None else None
     room = _check_room(room)
     if removed_at is not None and removed_at <= installed_at:
-        raise ValidationFailed("The removal must come after the installation began.",
-                               {"removed_at": "Must be after the installation time."})
+        raise ValidationFailed(
+            "The removal must come after the installation began.",
+            {"removed_at": "Must be after the installation time."},
+        )
     device = session.get(Device, inst.device_id)
     assert device is not None
     _check_no_overlap(session, device, installed_at, removed_at, exclude_id=inst.id)
-    before = {"installed_at": inst.installed_at.isoformat(), "room": inst.room,
-              "removed_at": inst.removed_at.isoformat() if inst.removed_at else None}
+    before = {
+        "installed_at": inst.installed_at.isoformat(),
+        "room": inst.room,
+        "removed_at": inst.removed_at.isoformat() if inst.removed_at else None,
+    }
     inst.installed_at, inst.removed_at, inst.room = installed_at, removed_at, room
     session.flush()
     changed = devices_service.reattribute_alerts(session, device.id)
-    audit.record(session, actor, "installation.correct", "installation", inst.id,
-                 {"device": device.serial, "home": inst.home.code, "before": before,
-                  "after": {"installed_at": installed_at.isoformat(), "room": room,
-                            "removed_at": removed_at.isoformat() if removed_at else None},
-                  "alerts_reattributed": changed})
+    audit.record(
+        session,
+        actor,
+        "installation.correct",
+        "installation",
+        inst.id,
+        {
+            "device": device.serial,
+            "home": inst.home.code,
+            "before": before,
+            "after": {
+                "installed_at": installed_at.isoformat(),
+                "room": room,
+                "removed_at": removed_at.isoformat() if removed_at else None,
+            },
+            "alerts_reattributed": changed,
+        },
+    )
     return CorrectionResult(inst, changed)
 
 
@@ -519,9 +717,17 @@ def correct_installation(session: Session, inst: Installation, *, installed_at: 
 MAX_STAGED = dt.timedelta(hours=6)
 
 
-def log_staged_event(session: Session, *, home: Home, sound_class: str, started_at: dt.datetime,
-                     ended_at: dt.datetime, source: str, level_db: float | None = None,
-                     actor: Actor = "cli") -> StagedEvent:
+def log_staged_event(
+    session: Session,
+    *,
+    home: Home,
+    sound_class: str,
+    started_at: dt.datetime,
+    ended_at: dt.datetime,
+    source: str,
+    level_db: float | None = None,
+    actor: Actor = "cli",
+) -> StagedEvent:
     """Record a test sound played on purpose in a home (analytics matches alerts against it)."""
     trial = trial_of(session, home)
     errors: dict[str, str] = {}
@@ -539,23 +745,38 @@ def log_staged_event(session: Session, *, home: Home, sound_class: str, started_
         errors["level_db"] = "A sound level is between -20 and 160 dB."
     if errors:
         raise ValidationFailed(next(iter(errors.values())), errors)
-    in_place = session.scalar(select(Installation.id).where(
-        Installation.home_id == home.id, Installation.installed_at < ended_at,
-        Installation.removed_at.is_(None) | (Installation.removed_at > started_at)).limit(1))
+    in_place = session.scalar(
+        select(Installation.id)
+        .where(
+            Installation.home_id == home.id,
+            Installation.installed_at < ended_at,
+            Installation.removed_at.is_(None) | (Installation.removed_at > started_at),
+        )
+        .limit(1)
+    )
     if in_place is None:
-        raise ValidationFailed(f"No device was installed in {home.code} at that time, so nothing could "
-                               "hear the test.", {"started_at": "No device was installed then."})
-    event = StagedEvent(trial_id=trial.id, home_id=home.id, sound_class=sound_class, started_at=started_at,
-                        ended_at=ended_at, source=source,
-                        level_db=float(level_db) if level_db is not None else None,
-                        created_by_id=_by_id(actor))
+        raise ValidationFailed(
+            f"No device was installed in {home.code} at that time, so nothing could hear the test.",
+            {"started_at": "No device was installed then."},
+        )
+    event = StagedEvent(
+        trial_id=trial.id,
+        home_id=home.id,
+        sound_class=sound_class,
+        started_at=started_at,
+        ended_at=ended_at,
+        source=source,
+        level_db=float(level_db) if level_db is not None else None,
+        created_by_id=_by_id(actor),
+    )
     session.add(event)
     session.flush()
     return event
 
 
-def list_staged_events(session: Session, *, trial: Trial | None = None, home: Home | None = None
-                       ) -> list[StagedEvent]:
+def list_staged_events(
+    session: Session, *, trial: Trial | None = None, home: Home | None = None
+) -> list[StagedEvent]:
     q = select(StagedEvent).order_by(StagedEvent.started_at.desc(), StagedEvent.id.desc())
     if trial is not None:
         q = q.where(StagedEvent.trial_id == trial.id)
@@ -572,18 +793,33 @@ def get_staged_event(session: Session, event_id: int) -> StagedEvent:
 
 
 def delete_staged_event(session: Session, event: StagedEvent, *, actor: Actor = "cli") -> None:
-    audit.record(session, actor, "staged_event.delete", "staged_event", event.id,
-                 {"home_id": event.home_id, "sound_class": event.sound_class,
-                  "started_at": event.started_at.isoformat()})
+    audit.record(
+        session,
+        actor,
+        "staged_event.delete",
+        "staged_event",
+        event.id,
+        {
+            "home_id": event.home_id,
+            "sound_class": event.sound_class,
+            "started_at": event.started_at.isoformat(),
+        },
+    )
     session.delete(event)
     session.flush()
 
 
 # --- quota --------------------------------------------------------------------------------------
 
+
 def list_targets(session: Session, trial: Trial) -> list[QuotaTarget]:
-    return list(session.scalars(select(QuotaTarget).where(QuotaTarget.trial_id == trial.id)
-                                .order_by(QuotaTarget.position, QuotaTarget.id)))
+    return list(
+        session.scalars(
+            select(QuotaTarget)
+            .where(QuotaTarget.trial_id == trial.id)
+            .order_by(QuotaTarget.position, QuotaTarget.id)
+        )
+    )
 
 
 def _target_label(defn: AttributeDefinition | None, value: Any) -> str:
@@ -594,16 +830,27 @@ def _target_label(defn: AttributeDefinition | None, value: Any) -> str:
     return f"{defn.label}: {catalogue.format_value(value)}"
 
 
-def add_target(session: Session, trial: Trial, *, attribute_key: str | None, value: Any = None,
-               min_count: int | None = None, max_count: int | None = None, label: str = "",
-               actor: Actor = "cli") -> QuotaTarget:
+def add_target(
+    session: Session,
+    trial: Trial,
+    *,
+    attribute_key: str | None,
+    value: Any = None,
+    min_count: int | None = None,
+    max_count: int | None = None,
+    label: str = "",
+    actor: Actor = "cli",
+) -> QuotaTarget:
     """A quota target: at least ``min_count`` / at most ``max_count`` homes with attribute = value."""
     errors: dict[str, str] = {}
     defn = None
     parsed = None
     if attribute_key:
-        defn = session.scalar(select(AttributeDefinition).where(AttributeDefinition.trial_id == trial.id,
-                                                               AttributeDefinition.key == attribute_key))
+        defn = session.scalar(
+            select(AttributeDefinition).where(
+                AttributeDefinition.trial_id == trial.id, AttributeDefinition.key == attribute_key
+            )
+        )
         if defn is None:
             errors["attribute_key"] = f"'{attribute_key}' is not an attribute of trial {trial.code}."
         else:
@@ -623,15 +870,28 @@ def add_target(session: Session, trial: Trial, *, attribute_key: str | None, val
         errors["label"] = "At most 200 characters."
     if errors:
         raise ValidationFailed(next(iter(errors.values())), errors)
-    pos = (session.scalar(select(func.max(QuotaTarget.position)).where(QuotaTarget.trial_id == trial.id))
-           or 0) + 1
-    target = QuotaTarget(trial_id=trial.id, label=label or _target_label(defn, parsed),
-                         attribute_key=attribute_key or None, value=parsed, min_count=min_count,
-                         max_count=max_count, position=pos)
+    pos = (
+        session.scalar(select(func.max(QuotaTarget.position)).where(QuotaTarget.trial_id == trial.id)) or 0
+    ) + 1
+    target = QuotaTarget(
+        trial_id=trial.id,
+        label=label or _target_label(defn, parsed),
+        attribute_key=attribute_key or None,
+        value=parsed,
+        min_count=min_count,
+        max_count=max_count,
+        position=pos,
+    )
     session.add(target)
     session.flush()
-    audit.record(session, actor, "quota.target_add", "quota_target", target.id,
-                 {"trial": trial.code, "label": target.label, "min": min_count, "max": max_count})
+    audit.record(
+        session,
+        actor,
+        "quota.target_add",
+        "quota_target",
+        target.id,
+        {"trial": trial.code, "label": target.label, "min": min_count, "max": max_count},
+    )
     return target
 
 
@@ -644,13 +904,16 @@ def delete_target(session: Session, trial: Trial, target_id: int, *, actor: Acto
     session.flush()
 
 
-def set_counting_states(session: Session, trial: Trial, states: Iterable[str], *, actor: Actor = "cli"
-                        ) -> list[str]:
+def set_counting_states(
+    session: Session, trial: Trial, states: Iterable[str], *, actor: Actor = "cli"
+) -> list[str]:
     chosen = [s for s in HomeState.all if s in set(states)]
     bad = set(states) - set(HomeState.all)
     if bad or not chosen:
-        raise ValidationFailed("Pick at least one home state that counts toward the quota.",
-                               {"states": "Pick at least one state."})
+        raise ValidationFailed(
+            "Pick at least one home state that counts toward the quota.",
+            {"states": "Pick at least one state."},
+        )
     trial.quota_states = chosen
     session.flush()
     audit.record(session, actor, "quota.states", "trial", trial.id, {"states": chosen})
@@ -663,8 +926,10 @@ def home_facts(session: Session, trial: Trial) -> list[quota.HomeFacts]:
 
 
 def quota_targets(session: Session, trial: Trial) -> list[quota.Target]:
-    return [quota.Target(t.id, t.label, t.attribute_key, t.value, t.min_count, t.max_count)
-            for t in list_targets(session, trial)]
+    return [
+        quota.Target(t.id, t.label, t.attribute_key, t.value, t.min_count, t.max_count)
+        for t in list_targets(session, trial)
+    ]
 
 
 def quota_report(session: Session, trial: Trial) -> quota.QuotaReport:
@@ -677,8 +942,11 @@ def departures(session: Session, trial: Trial) -> list[tuple[str, dt.datetime, d
     rows = session.execute(
         select(Home.code, HomeStateChange.at, Home.attributes, HomeStateChange.from_state, Home.state)
         .join(Home, Home.id == HomeStateChange.home_id)
-        .where(Home.trial_id == trial.id, HomeStateChange.to_state.in_([HomeState.withdrawn, HomeState.paused]))
-        .order_by(HomeStateChange.at.desc()))
+        .where(
+            Home.trial_id == trial.id, HomeStateChange.to_state.in_([HomeState.withdrawn, HomeState.paused])
+        )
+        .order_by(HomeStateChange.at.desc())
+    )
     out = []
     seen = set()
     for code, at, attrs, from_state, now_state in rows:

@@ -14,8 +14,9 @@ from dataclasses import dataclass
 Interval = tuple[dt.datetime, dt.datetime]
 
 
-def overlaps(a_start: dt.datetime, a_end: dt.datetime | None, b_start: dt.datetime,
-             b_end: dt.datetime | None) -> bool:
+def overlaps(
+    a_start: dt.datetime, a_end: dt.datetime | None, b_start: dt.datetime, b_end: dt.datetime | None
+) -> bool:
     """True when [a_start, a_end) and [b_start, b_end) share any instant (None: open-ended)."""
     a_before_b_ends = b_end is None or a_start < b_end
     b_before_a_ends = a_end is None or b_start < a_end
@@ -59,8 +60,9 @@ def _monday_midnight(day: dt.date, tz: str) -> dt.datetime:
     return dt.datetime.combine(day, dt.time(0), tzinfo=zoneinfo.ZoneInfo(tz)).astimezone(dt.UTC)
 
 
-def hours_per_week(intervals: Iterable[Interval], tz: str, *, first_week: dt.date,
-                   last_week: dt.date) -> list[WeekHours]:
+def hours_per_week(
+    intervals: Iterable[Interval], tz: str, *, first_week: dt.date, last_week: dt.date
+) -> list[WeekHours]:
     """Hours of the union of ``intervals`` in each local week (Monday 00:00) from first to last week.
 
     Weeks are cut at local midnight, so a week holding a daylight-saving change lasts 167 or 169 h.

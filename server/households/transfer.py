@@ -25,15 +25,21 @@ from server.trials.models import Trial
 MAX_IMPORT_BYTES = 5 * 1024 * 1024
 BASE_COLUMNS = ("code", "state", "note")
 # Written by the export, read back as information only: an import ignores them.
-EXPORT_ONLY = ("state_changed_at", "consent_form_version", "consented_on", "staff_may_listen",
-               "retention_days", "erased")
+EXPORT_ONLY = (
+    "state_changed_at",
+    "consent_form_version",
+    "consented_on",
+    "staff_may_listen",
+    "retention_days",
+    "erased",
+)
 IMPORT_STATES = (HomeState.candidate, HomeState.screened, HomeState.declined)
 
 
 @dataclass(frozen=True)
 class RowProblem:
-    row: int           # line in the file, the header being line 1; 0 for the file as a whole
-    code: str          # the row's home code, if it gave one
+    row: int  # line in the file, the header being line 1; 0 for the file as a whole
+    code: str  # the row's home code, if it gave one
     column: str
     problem: str
 
@@ -62,8 +68,10 @@ class ImportRejected(AppError):
 
     def __init__(self, report: ImportReport) -> None:
         n = len(report.problems)
-        super().__init__(f"Nothing was imported: {n} problem{'s' if n != 1 else ''} found; "
-                         f"first: {report.problems[0].sentence()}.")
+        super().__init__(
+            f"Nothing was imported: {n} problem{'s' if n != 1 else ''} found; "
+            f"first: {report.problems[0].sentence()}."
+        )
         self.report = report
 
 
@@ -98,8 +106,14 @@ def import_csv(session: Session, trial: Trial, data: bytes, *, actor: service.Ac
     problems: list[RowProblem] = []
     for col in columns:
         if col not in by_key and col not in (*BASE_COLUMNS, *EXPORT_ONLY, *service.CONTACT_FIELDS):
-            problems.append(RowProblem(1, "", col, f"unknown attribute '{col}': not in trial {trial.code}'s "
-                                       "catalogue nor a register column"))
+            problems.append(
+                RowProblem(
+                    1,
+                    "",
+                    col,
+                    f"unknown attribute '{col}': not in trial {trial.code}'s catalogue nor a register column",
+                )
+            )
     dupes = {c for c in columns if columns.count(c) > 1}
     for col in sorted(dupes):
         problems.append(RowProblem(1, "", col, "the column appears more than once"))
@@ -116,16 +130,25 @@ def import_csv(session: Session, trial: Trial, data: bytes, *, actor: service.Ac
                 if not service.CODE_PATTERN.match(code):
                     row_problems.append(RowProblem(line, code, "code", "a code reads H- and 4 to 6 digits"))
                 elif code in existing:
-                    row_problems.append(RowProblem(line, code, "code", "duplicate code: already in the register"))
+                    row_problems.append(
+                        RowProblem(line, code, "code", "duplicate code: already in the register")
+                    )
                 elif code in seen:
-                    row_problems.append(RowProblem(line, code, "code",
-                                                   f"duplicate code: also on line {seen[code]}"))
+                    row_problems.append(
+                        RowProblem(line, code, "code", f"duplicate code: also on line {seen[code]}")
+                    )
                 seen.setdefault(code, line)
             state = str(rec.get("state", "") or "").strip().lower() or HomeState.candidate
             if state not in IMPORT_STATES:
-                row_problems.append(RowProblem(line, code, "state",
-                                               f"bad value '{state}': imported homes start as "
-                                               f"{', '.join(IMPORT_STATES)}; record consent on the home page"))
+                row_problems.append(
+                    RowProblem(
+                        line,
+                        code,
+                        "state",
+                        f"bad value '{state}': imported homes start as "
+                        f"{', '.join(IMPORT_STATES)}; record consent on the home page",
+                    )
+                )
             attrs: dict[str, Any] = {}
             for key, spec in by_key.items():
                 if key not in rec:
@@ -148,52 +171,92 @@ def import_csv(session: Session, trial: Trial, data: bytes, *, actor: service.Ac
             if len(note) > 2000:
                 row_problems.append(RowProblem(line, code, "note", "a note is at most 2000 characters"))
             problems.extend(row_problems)
-            plans.append({"code": code or None, "state": state, "attributes": attrs, "note": note or None,
-                          "contact": contact if has_contact and any(contact.values()) else None})
+            plans.append(
+                {
+                    "code": code or None,
+                    "state": state,
+                    "attributes": attrs,
+                    "note": note or None,
+                    "contact": contact if has_contact and any(contact.values()) else None,
+                }
+            )
     if problems:
         raise ImportRejected(ImportReport(len(frame), (), tuple(problems)))
     created = []
     with session.begin_nested():
         for plan in plans:
-            home = service.create_home(session, trial, attributes=plan["attributes"], code=plan["code"],
-                                       actor=actor, note=plan["note"] or "Imported from CSV.")
+            home = service.create_home(
+                session,
+                trial,
+                attributes=plan["attributes"],
+                code=plan["code"],
+                actor=actor,
+                note=plan["note"] or "Imported from CSV.",
+            )
             if plan["state"] == HomeState.screened:
-                service.transition(session, home, HomeState.screened, actor=actor, note="Imported as screened.")
+                service.transition(
+                    session, home, HomeState.screened, actor=actor, note="Imported as screened."
+                )
             elif plan["state"] == HomeState.declined:
-                service.transition(session, home, HomeState.declined, actor=actor, note="Imported as declined.")
+                service.transition(
+                    session, home, HomeState.declined, actor=actor, note="Imported as declined."
+                )
             if plan["contact"]:
                 service.set_contact(session, home, actor=actor, **plan["contact"])
             created.append(home.code)
-    audit.record(session, actor, "register.import", "trial", trial.id,
-                 {"trial": trial.code, "homes": len(created), "with_personal_data": has_contact})
+    audit.record(
+        session,
+        actor,
+        "register.import",
+        "trial",
+        trial.id,
+        {"trial": trial.code, "homes": len(created), "with_personal_data": has_contact},
+    )
     return ImportReport(len(frame), tuple(created), ())
 
 
 def _safe_cell(value: str) -> str:
     # Spreadsheets run cells that start with these as formulas; a leading apostrophe keeps them text
     # (common practice against CSV injection). Phone numbers such as +44 20 ... stay as they are.
-    if value[:1] in ("=", "@", "\t", "\r") or (value[:1] in ("+", "-") and not service.PHONE_PATTERN.match(value)):
+    if value[:1] in ("=", "@", "\t", "\r") or (
+        value[:1] in ("+", "-") and not service.PHONE_PATTERN.match(value)
+    ):
         return "'" + value
     return value
 
 
-def export_csv(session: Session, trial: Trial, *, with_personal_data: bool = False,
-               actor: service.Actor = "cli") -> str:
+def export_csv(
+    session: Session, trial: Trial, *, with_personal_data: bool = False, actor: service.Actor = "cli"
+) -> str:
     """The trial's register as CSV text; contact columns only with ``with_personal_data`` (audited)."""
     specs = catalogue.list_catalogue(session, trial)
     homes = service.list_homes(session, trial)
-    consents = {}
-    for c in session.scalars(select(Consent).join(Home, Home.id == Consent.home_id)
-                             .where(Home.trial_id == trial.id).order_by(Consent.recorded_at, Consent.id)):
-        consents[c.home_id] = c
+    consents: dict[int, Consent] = {}
+    for consent in session.scalars(
+        select(Consent)
+        .join(Home, Home.id == Consent.home_id)
+        .where(Home.trial_id == trial.id)
+        .order_by(Consent.recorded_at, Consent.id)
+    ):
+        consents[consent.home_id] = consent
     contacts = {}
     if with_personal_data:
-        contacts = {c.home_id: c for c in session.scalars(
-            select(HomeContact).join(Home, Home.id == HomeContact.home_id).where(Home.trial_id == trial.id))}
+        contacts = {
+            c.home_id: c
+            for c in session.scalars(
+                select(HomeContact)
+                .join(Home, Home.id == HomeContact.home_id)
+                .where(Home.trial_id == trial.id)
+            )
+        }
     rows = []
     for h in homes:
-        row: dict[str, Any] = {"code": h.code, "state": h.state, "note": "",
-                               "state_changed_at": h.state_changed_at.isoformat()}
+        row: dict[str, Any] = {
+            "code": h.code,
+            "state": h.state,
+            "note": "",
+            "state_changed_at": h.state_changed_at.isoformat(),
+        }
         for s in specs:
             row[s.key] = catalogue.format_value((h.attributes or {}).get(s.key))
         c = consents.get(h.id)
@@ -210,6 +273,7 @@ def export_csv(session: Session, trial: Trial, *, with_personal_data: bool = Fal
     cols = ["code", "state", "note", *[s.key for s in specs], *EXPORT_ONLY]
     if with_personal_data:
         cols += list(service.CONTACT_FIELDS)
-        audit.record(session, actor, "personal.export", "trial", trial.id,
-                     {"trial": trial.code, "homes": len(rows)})
+        audit.record(
+            session, actor, "personal.export", "trial", trial.id, {"trial": trial.code, "homes": len(rows)}
+        )
     return pd.DataFrame(rows, columns=cols).to_csv(index=False)

@@ -14,8 +14,16 @@ from sqlalchemy.orm import Session
 from server.auth.models import User
 from server.db import utcnow
 from server.devices.models import Alert, Device, ListeningSegment
-from server.households import catalogue, quota, service, timeline
-from server.households.models import AttributeDefinition, Consent, Home, HomeStateChange, Installation, StagedEvent
+from server.households import catalogue, quota, service
+from server.households import timeline as intervals
+from server.households.models import (
+    AttributeDefinition,
+    Consent,
+    Home,
+    HomeStateChange,
+    Installation,
+    StagedEvent,
+)
 from server.trials.models import Trial
 
 WEEKS_SHOWN = 12
@@ -43,7 +51,7 @@ class ClassCount:
     confirmed: int
     false_alarm: int
     other_final: int  # unsure or unusable
-    open: int         # not finally labelled yet
+    open: int  # not finally labelled yet
 
 
 @dataclass(frozen=True)
@@ -66,7 +74,7 @@ class HomeOverview:
     timeline: list[TimelineLine]
     installations: list[InstallationLine]
     alerts_by_class: list[ClassCount]
-    weekly_hours: list[timeline.WeekHours]
+    weekly_hours: list[intervals.WeekHours]
     staged: list[StagedEvent]
     has_contact: bool
     next_states: tuple[str, ...]
@@ -77,45 +85,63 @@ def _author(user: User | None) -> str:
 
 
 def installation_lines(session: Session, home: Home) -> list[InstallationLine]:
-    rows = session.execute(select(Installation, Device).join(Device, Device.id == Installation.device_id)
-                           .where(Installation.home_id == home.id)
-                           .order_by(Installation.installed_at.desc(), Installation.id.desc()))
-    return [InstallationLine(i.id, d.serial, i.room, i.installed_at, i.removed_at, d.last_seen_at, d.firmware)
-            for i, d in rows]
+    rows = session.execute(
+        select(Installation, Device)
+        .join(Device, Device.id == Installation.device_id)
+        .where(Installation.home_id == home.id)
+        .order_by(Installation.installed_at.desc(), Installation.id.desc())
+    )
+    return [
+        InstallationLine(i.id, d.serial, i.room, i.installed_at, i.removed_at, d.last_seen_at, d.firmware)
+        for i, d in rows
+    ]
 
 
 def alerts_by_class(session: Session, home: Home) -> list[ClassCount]:
-    rows = session.execute(select(Alert.sound_class, Alert.final_label, func.count(Alert.id))
-                           .where(Alert.home_id == home.id).group_by(Alert.sound_class, Alert.final_label))
+    rows = session.execute(
+        select(Alert.sound_class, Alert.final_label, func.count(Alert.id))
+        .where(Alert.home_id == home.id)
+        .group_by(Alert.sound_class, Alert.final_label)
+    )
     acc: dict[str, dict[str, int]] = {}
     for cls, label, n in rows:
         d = acc.setdefault(cls, {"confirmed": 0, "false_alarm": 0, "other": 0, "open": 0})
         key = label if label in ("confirmed", "false_alarm") else ("open" if label is None else "other")
         d[key] += int(n)
-    return [ClassCount(c, sum(d.values()), d["confirmed"], d["false_alarm"], d["other"], d["open"])
-            for c, d in sorted(acc.items())]
+    return [
+        ClassCount(c, sum(d.values()), d["confirmed"], d["false_alarm"], d["other"], d["open"])
+        for c, d in sorted(acc.items())
+    ]
 
 
-def weekly_listening(session: Session, home: Home, tz: str, now: dt.datetime,
-                     installs: list[InstallationLine] | None = None) -> list[timeline.WeekHours]:
+def weekly_listening(
+    session: Session, home: Home, tz: str, now: dt.datetime, installs: list[InstallationLine] | None = None
+) -> list[intervals.WeekHours]:
     """Hours per local week during which at least one of the home's installed devices listened."""
     installs = installs if installs is not None else installation_lines(session, home)
     if not installs:
         return []
-    periods = session.execute(select(Installation.device_id, Installation.installed_at, Installation.removed_at)
-                              .where(Installation.home_id == home.id))
-    pieces: list[timeline.Interval] = []
+    periods = session.execute(
+        select(Installation.device_id, Installation.installed_at, Installation.removed_at).where(
+            Installation.home_id == home.id
+        )
+    )
+    pieces: list[intervals.Interval] = []
     for device_id, start, end in periods:
         end = end or now
-        segs = session.execute(select(ListeningSegment.started_at, ListeningSegment.ended_at).where(
-            ListeningSegment.device_id == device_id, ListeningSegment.ended_at > start,
-            ListeningSegment.started_at < end))
-        pieces += timeline.clip([(s, e) for s, e in segs], start, end)
+        segs = session.execute(
+            select(ListeningSegment.started_at, ListeningSegment.ended_at).where(
+                ListeningSegment.device_id == device_id,
+                ListeningSegment.ended_at > start,
+                ListeningSegment.started_at < end,
+            )
+        )
+        pieces += intervals.clip([(s, e) for s, e in segs], start, end)
     last_end = max((i.removed_at or now) for i in installs)
     first = min(i.installed_at for i in installs)
-    last_week = timeline.week_start_of(min(last_end, now), tz)
-    first_week = max(timeline.week_start_of(first, tz), last_week - dt.timedelta(weeks=WEEKS_SHOWN - 1))
-    return timeline.hours_per_week(pieces, tz, first_week=first_week, last_week=last_week)
+    last_week = intervals.week_start_of(min(last_end, now), tz)
+    first_week = max(intervals.week_start_of(first, tz), last_week - dt.timedelta(weeks=WEEKS_SHOWN - 1))
+    return intervals.hours_per_week(pieces, tz, first_week=first_week, last_week=last_week)
 
 
 def home_overview(session: Session, home: Home, *, now: dt.datetime | None = None) -> HomeOverview:
@@ -125,17 +151,32 @@ def home_overview(session: Session, home: Home, *, now: dt.datetime | None = Non
     trial = service.trial_of(session, home)
     specs = catalogue.list_catalogue(session, trial)
     attrs = [(s, catalogue.format_value((home.attributes or {}).get(s.key))) for s in specs]
-    consents = list(session.scalars(select(Consent).where(Consent.home_id == home.id)
-                                    .order_by(Consent.recorded_at.desc(), Consent.id.desc())))
-    lines = [TimelineLine(c.at, c.from_state, c.to_state, _author(u), c.note, c.listening)
-             for c, u in service.timeline_of(session, home)]
+    consents = list(
+        session.scalars(
+            select(Consent)
+            .where(Consent.home_id == home.id)
+            .order_by(Consent.recorded_at.desc(), Consent.id.desc())
+        )
+    )
+    lines = [
+        TimelineLine(c.at, c.from_state, c.to_state, _author(u), c.note, c.listening)
+        for c, u in service.timeline_of(session, home)
+    ]
     installs = installation_lines(session, home)
     return HomeOverview(
-        home=home, trial=trial, attributes=attrs, consent=consents[0] if consents else None,
-        consents=consents, timeline=lines, installations=installs, alerts_by_class=alerts_by_class(session, home),
+        home=home,
+        trial=trial,
+        attributes=attrs,
+        consent=consents[0] if consents else None,
+        consents=consents,
+        timeline=lines,
+        installations=installs,
+        alerts_by_class=alerts_by_class(session, home),
         weekly_hours=weekly_listening(session, home, trial.timezone, now, installs),
-        staged=service.list_staged_events(session, home=home), has_contact=service.has_contact(session, home),
-        next_states=() if home.erased_at else lifecycle.NEXT.get(home.state, ()))
+        staged=service.list_staged_events(session, home=home),
+        has_contact=service.has_contact(session, home),
+        next_states=() if home.erased_at else lifecycle.NEXT.get(home.state, ()),
+    )
 
 
 @dataclass(frozen=True)
@@ -144,7 +185,7 @@ class RegisterRow:
     state: str
     state_changed_at: dt.datetime
     attributes: dict[str, Any]
-    devices: int       # open installations
+    devices: int  # open installations
     consented: bool
     erased: bool
 
@@ -154,13 +195,27 @@ def register_rows(session: Session, homes: list[Home]) -> list[RegisterRow]:
     open_counts: dict[int, int] = {}
     consented: set[int] = set()
     if ids:
-        open_counts = {hid: int(n) for hid, n in session.execute(
-            select(Installation.home_id, func.count(Installation.id))
-            .where(Installation.home_id.in_(ids), Installation.removed_at.is_(None))
-            .group_by(Installation.home_id))}
+        open_counts = {
+            hid: int(n)
+            for hid, n in session.execute(
+                select(Installation.home_id, func.count(Installation.id))
+                .where(Installation.home_id.in_(ids), Installation.removed_at.is_(None))
+                .group_by(Installation.home_id)
+            )
+        }
         consented = set(session.scalars(select(Consent.home_id).where(Consent.home_id.in_(ids))))
-    return [RegisterRow(h.code, h.state, h.state_changed_at, dict(h.attributes or {}), open_counts.get(h.id, 0),
-                        h.id in consented, h.erased_at is not None) for h in homes]
+    return [
+        RegisterRow(
+            h.code,
+            h.state,
+            h.state_changed_at,
+            dict(h.attributes or {}),
+            open_counts.get(h.id, 0),
+            h.id in consented,
+            h.erased_at is not None,
+        )
+        for h in homes
+    ]
 
 
 @dataclass(frozen=True)
@@ -195,5 +250,9 @@ def quota_view(session: Session, trial: Trial) -> QuotaView:
 
 
 def last_change(session: Session, home: Home) -> HomeStateChange | None:
-    return session.scalar(select(HomeStateChange).where(HomeStateChange.home_id == home.id)
-                          .order_by(HomeStateChange.at.desc(), HomeStateChange.id.desc()).limit(1))
+    return session.scalar(
+        select(HomeStateChange)
+        .where(HomeStateChange.home_id == home.id)
+        .order_by(HomeStateChange.at.desc(), HomeStateChange.id.desc())
+        .limit(1)
+    )

@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import datetime as dt
 
-from sqlalchemy import ForeignKey, String, Text, UniqueConstraint
+from sqlalchemy import ForeignKey, Index, String, Text, UniqueConstraint
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from server.auth.models import User
 from server.db import Base, UTCDateTime, utcnow
+from server.devices.models import Alert
 
 LABELS = ("confirmed", "false_alarm", "unsure", "unusable")
 RESEMBLANCE = ("resembles", "unrelated")
@@ -60,3 +61,8 @@ class GoldAnswer(Base):
     cause: Mapped[str | None] = mapped_column(String(40))
     correct: Mapped[bool]
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+
+
+# The review queue finds a reviewer's claims on every hand-out; the claim columns live on the
+# alert, but this index belongs to the review domain (and to its migration, 0003).
+ix_alert_claimed_by = Index("ix_alert_claimed_by_id", Alert.claimed_by_id)

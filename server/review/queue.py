@@ -7,14 +7,16 @@ Pending alerts and blind second reviews come oldest first; the page and the API 
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import hashlib
 import hmac
 import zoneinfo
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
-from sqlalchemy import ColumnElement, and_, exists, func, or_, select, update
-from sqlalchemy.orm import Session, aliased
+from sqlalchemy import ColumnElement, Select, and_, bindparam, exists, func, or_, select, update
+from sqlalchemy.orm import Session, aliased, lazyload
 
 from server.auth.models import User
 from server.db import utcnow
@@ -123,31 +125,25 @@ def _zone(name: str) -> dt.tzinfo:
         return dt.UTC
 
 
-def _items(session: Session, alerts: Sequence[Alert]) -> list[QueueItem]:
+def queue_items(session: Session, alerts: Sequence[Alert]) -> list[QueueItem]:
     if not alerts:
         return []
-    trials = {
-        t.id: t for t in session.scalars(select(Trial).where(Trial.id.in_({a.trial_id for a in alerts})))
-    }
-    home_ids = {a.home_id for a in alerts if a.home_id is not None}
-    homes = (
-        {h.id: h.code for h in session.scalars(select(Home).where(Home.id.in_(home_ids)))} if home_ids else {}
-    )
-    inst_ids = {a.installation_id for a in alerts if a.installation_id is not None}
-    rooms = (
-        {
-            i: r
-            for i, r in session.execute(
-                select(Installation.id, Installation.room).where(Installation.id.in_(inst_ids))
-            )
-        }
-        if inst_ids
-        else {}
-    )
+    trials = {i: session.get(Trial, i) for i in {a.trial_id for a in alerts}}  # usually in the identity map
+    places: dict[int, tuple[str | None, str | None]] = {}
+    if any(a.home_id is not None or a.installation_id is not None for a in alerts):
+        q = (
+            select(Alert.id, Home.code, Installation.room)
+            .outerjoin(Home, Home.id == Alert.home_id)
+            .outerjoin(Installation, Installation.id == Alert.installation_id)
+            .where(Alert.id.in_([a.id for a in alerts]))
+        )
+        places = {i: (code, room) for i, code, room in session.execute(q)}
     out = []
     for a in alerts:
         trial = trials[a.trial_id]
+        assert trial is not None
         tz = trial.timezone or "UTC"
+        home_code, room = places.get(a.id, (None, None))
         out.append(
             QueueItem(
                 alert_id=a.id,
@@ -158,8 +154,8 @@ def _items(session: Session, alerts: Sequence[Alert]) -> list[QueueItem]:
                 detected_at=a.effective_at,
                 detected_local=a.effective_at.astimezone(_zone(tz)),
                 timezone=tz,
-                home_code=homes.get(a.home_id) if a.home_id else None,
-                room=rooms.get(a.installation_id) if a.installation_id else None,
+                home_code=home_code,
+                room=room,
                 clip_offset_s=a.clip_offset_s,
                 clip_duration_s=a.clip.duration_s,
                 clip_sha256=a.clip.sha256,
@@ -169,20 +165,24 @@ def _items(session: Session, alerts: Sequence[Alert]) -> list[QueueItem]:
     return out
 
 
-def _item(session: Session, alert: Alert) -> QueueItem:
-    return _items(session, [alert])[0]
+def queue_item(session: Session, alert: Alert) -> QueueItem:
+    return queue_items(session, [alert])[0]
 
 
 # ---------------------------------------------------------------------------------------
 # The queue
 
 
-def _is_admin(user: User) -> bool:
+def is_admin(user: User) -> bool:
     return user.role == "admin"
 
 
+@functools.cache
 def _listening_allowed() -> ColumnElement[bool]:
-    """The home's latest consent (if any) lets staff listen; the clip route refuses otherwise."""
+    """The home's latest consent (if any) lets staff listen; the clip route refuses otherwise.
+
+    Built once: the expression has no parameters, and building it costs more than running it.
+    """
     later = aliased(Consent)
     return ~exists().where(
         Consent.home_id == Alert.home_id,
@@ -197,15 +197,22 @@ def _listening_allowed() -> ColumnElement[bool]:
     )
 
 
+@functools.cache
+def _clip_present() -> ColumnElement[bool]:
+    return ~exists().where(Clip.id == Alert.clip_id, Clip.erased_at.is_not(None))
+
+
+@functools.cache
+def _not_private() -> ColumnElement[bool]:
+    return Alert.private_flag.is_(False)
+
+
 def _review_filter(
     reviewer: User, trial_id: int | None, sound_class: str | None
 ) -> list[ColumnElement[bool]]:
-    conds: list[ColumnElement[bool]] = [
-        ~exists().where(Clip.id == Alert.clip_id, Clip.erased_at.is_not(None)),
-        _listening_allowed(),
-    ]
-    if not _is_admin(reviewer):
-        conds.append(Alert.private_flag.is_(False))
+    conds: list[ColumnElement[bool]] = [_clip_present(), _listening_allowed()]
+    if not is_admin(reviewer):
+        conds.append(_not_private())
     if trial_id is not None:
         conds.append(Alert.trial_id == trial_id)
     if sound_class:
@@ -217,17 +224,49 @@ def _not_reviewed_by(reviewer_id: int) -> ColumnElement[bool]:
     return ~exists().where(Verdict.alert_id == Alert.id, Verdict.reviewer_id == reviewer_id)
 
 
-def _free(now: dt.datetime, reviewer_id: int) -> ColumnElement[bool]:
-    return or_(
-        Alert.claimed_by_id.is_(None), Alert.claim_expires_at < now, Alert.claimed_by_id == reviewer_id
-    )
+@functools.cache
+def _progress_stmt() -> Select[tuple[int, int]]:
+    rid = bindparam("q_rid")
+    verdicts = select(func.count()).select_from(Verdict).where(Verdict.reviewer_id == rid)
+    golds = select(func.count()).select_from(GoldAnswer).where(GoldAnswer.reviewer_id == rid)
+    return select(verdicts.scalar_subquery(), golds.scalar_subquery())
 
 
 def _progress(session: Session, reviewer_id: int) -> int:
-    verdicts = select(func.count()).select_from(Verdict).where(Verdict.reviewer_id == reviewer_id)
-    golds = select(func.count()).select_from(GoldAnswer).where(GoldAnswer.reviewer_id == reviewer_id)
-    row = session.execute(select(verdicts.scalar_subquery(), golds.scalar_subquery())).one()
+    row = session.execute(_progress_stmt(), {"q_rid": reviewer_id}).one()
     return int(row[0] or 0) + int(row[1] or 0)
+
+
+@functools.cache
+def _gold_page_stmt() -> Select[tuple[int, int]]:
+    rid = bindparam("q_rid")
+    return (
+        select(GoldCheck.id, GoldCheck.alert_id)
+        .where(
+            GoldCheck.id > bindparam("q_after"),
+            ~exists().where(GoldAnswer.gold_check_id == GoldCheck.id, GoldAnswer.reviewer_id == rid),
+            ~exists().where(Verdict.alert_id == GoldCheck.alert_id, Verdict.reviewer_id == rid),
+        )
+        .order_by(GoldCheck.id)
+        .limit(50)
+    )
+
+
+@functools.cache
+def _gold_alerts_stmt(admin: bool, by_trial: bool, by_sound: bool) -> Select[tuple[int]]:
+    q = select(Alert.id).where(
+        Alert.id.in_(bindparam("q_ids", expanding=True)),
+        Alert.state == AlertState.final,
+        _clip_present(),
+        _listening_allowed(),
+    )
+    if not admin:
+        q = q.where(_not_private())
+    if by_trial:
+        q = q.where(Alert.trial_id == bindparam("q_trial_id"))
+    if by_sound:
+        q = q.where(Alert.sound_class == bindparam("q_sound_class"))
+    return q
 
 
 def _gold_candidates(
@@ -243,55 +282,42 @@ def _gold_candidates(
     Walks the (small) gold-check table in pages and only then looks at the alerts, so the
     planner never scans the decided alerts to find the few that are gold.
     """
-    out: list[Alert] = []
+    out: list[int] = []
     after = 0
+    alerts_stmt = _gold_alerts_stmt(is_admin(reviewer), trial_id is not None, bool(sound_class))
     for _page in range(20):
-        rows = session.execute(
-            select(GoldCheck.id, GoldCheck.alert_id)
-            .where(
-                GoldCheck.id > after,
-                ~exists().where(
-                    GoldAnswer.gold_check_id == GoldCheck.id, GoldAnswer.reviewer_id == reviewer.id
-                ),
-                ~exists().where(Verdict.alert_id == GoldCheck.alert_id, Verdict.reviewer_id == reviewer.id),
-            )
-            .order_by(GoldCheck.id)
-            .limit(50)
-        ).all()
+        rows = session.execute(_gold_page_stmt(), {"q_rid": reviewer.id, "q_after": after}).all()
         if not rows:
             break
         after = rows[-1][0]
         ids = [a for _, a in rows if a not in exclude]
         if not ids:
             continue
-        found = set(
-            session.scalars(
-                select(Alert.id).where(
-                    Alert.id.in_(ids),
-                    Alert.state == AlertState.final,
-                    *_review_filter(reviewer, trial_id, sound_class),
-                )
-            )
-        )
+        params = {"q_ids": ids, "q_trial_id": trial_id, "q_sound_class": sound_class}
+        found = set(session.scalars(alerts_stmt, params))
         out += [a for a in ids if a in found]
         if len(out) >= limit:
             break
     return [a for a in (session.get(Alert, i) for i in out[:limit]) if a is not None]
 
 
-def _held_claims(session: Session, reviewer: User, now: dt.datetime) -> list[Alert]:
-    return list(
-        session.scalars(
-            select(Alert)
-            .where(
-                Alert.claimed_by_id == reviewer.id,
-                Alert.claim_expires_at >= now,
-                Alert.state.in_(REVIEW_STATES),
-            )
-            .order_by(Alert.received_at, Alert.id)
-            .execution_options(populate_existing=True)
+@functools.cache
+def _held_stmt() -> Select[tuple[Alert]]:
+    return (
+        select(Alert)
+        .where(
+            Alert.claimed_by_id == bindparam("q_rid"),  # ix_alert_claimed_by_id (review/models.py)
+            Alert.claim_expires_at >= bindparam("q_now"),
+            Alert.state.in_(REVIEW_STATES),
         )
+        .order_by(Alert.received_at, Alert.id)
+        .options(lazyload(Alert.device))
+        .execution_options(populate_existing=True)
     )
+
+
+def _held_claims(session: Session, reviewer: User, now: dt.datetime) -> list[Alert]:
+    return list(session.scalars(_held_stmt(), {"q_rid": reviewer.id, "q_now": now}))
 
 
 def _matches(alert: Alert, reviewer: User, trial_id: int | None, sound_class: str | None) -> bool:
@@ -299,9 +325,58 @@ def _matches(alert: Alert, reviewer: User, trial_id: int | None, sound_class: st
         return False
     if sound_class and alert.sound_class != sound_class:
         return False
-    if alert.private_flag and not _is_admin(reviewer):
+    if alert.private_flag and not is_admin(reviewer):
         return False
     return alert.clip.erased_at is None
+
+
+# Statements on the hand-out path are built once (per shape) and run with bound values:
+# building them costs more than the indexed lookups they perform.
+
+
+def _free_bound() -> ColumnElement[bool]:
+    return or_(
+        Alert.claimed_by_id.is_(None),
+        Alert.claim_expires_at < bindparam("q_now"),
+        Alert.claimed_by_id == bindparam("q_rid"),
+    )
+
+
+@functools.cache
+def _candidates_stmt(state: str, admin: bool, by_trial: bool, by_sound: bool, limit: int) -> Select[Any]:
+    """The oldest free alerts in ``state``: an ordered walk of the (state, received_at) index."""
+    q = select(Alert.received_at, Alert.id).where(
+        Alert.state == state, _free_bound(), _clip_present(), _listening_allowed()
+    )
+    if not admin:
+        q = q.where(_not_private())
+    if by_trial:
+        q = q.where(Alert.trial_id == bindparam("q_trial_id"))
+    if by_sound:
+        q = q.where(Alert.sound_class == bindparam("q_sound_class"))
+    if state == AlertState.second_review:  # never back to a reviewer of the clip
+        q = q.where(~exists().where(Verdict.alert_id == Alert.id, Verdict.reviewer_id == bindparam("q_rid")))
+    return q.order_by(Alert.received_at, Alert.id).limit(limit)
+
+
+@functools.cache
+def _take_stmt() -> Any:
+    return (
+        update(Alert)
+        .where(Alert.id == bindparam("q_aid"), Alert.state.in_(REVIEW_STATES), _free_bound())
+        .values(claimed_by_id=bindparam("q_rid"), claim_expires_at=bindparam("q_expires"))
+        .execution_options(synchronize_session=False)
+    )
+
+
+@functools.cache
+def _load_stmt() -> Select[tuple[Alert]]:
+    return (
+        select(Alert)
+        .where(Alert.id == bindparam("q_aid"))
+        .options(lazyload(Alert.device))
+        .execution_options(populate_existing=True)
+    )
 
 
 def _claim_new(
@@ -314,33 +389,22 @@ def _claim_new(
     exclude: set[int],
 ) -> Alert | None:
     """Claim the oldest free clip the reviewer may review; a lost race moves on to the next."""
-    conds = _review_filter(reviewer, trial_id, sound_class)
-    for _attempt in range(5):
+    # Bound names carry a prefix: an UPDATE would read a column's own name as a value to set.
+    params: dict[str, Any] = {"q_now": now, "q_rid": reviewer.id, "q_trial_id": trial_id}
+    params["q_sound_class"] = sound_class
+    admin = is_admin(reviewer)
+    for attempt in range(5):
+        limit = 4 * 2**attempt + len(exclude)
         candidates: list[tuple[dt.datetime, int]] = []
-        # One query per state, each an ordered walk of the (state, received_at) index.
         for state in REVIEW_STATES:
-            q = (
-                select(Alert.received_at, Alert.id)
-                .where(Alert.state == state, _free(now, reviewer.id), *conds)
-                .order_by(Alert.received_at, Alert.id)
-                .limit(len(exclude) + 2)
-            )
-            if state == AlertState.second_review:
-                q = q.where(_not_reviewed_by(reviewer.id))
-            candidates += [(r, i) for r, i in session.execute(q) if i not in exclude]
+            stmt = _candidates_stmt(state, admin, trial_id is not None, bool(sound_class), limit)
+            candidates += [(r, i) for r, i in session.execute(stmt, params) if i not in exclude]
         if not candidates:
             return None
         for _received, alert_id in sorted(candidates):
-            res = session.execute(
-                update(Alert)
-                .where(Alert.id == alert_id, Alert.state.in_(REVIEW_STATES), _free(now, reviewer.id))
-                .values(claimed_by_id=reviewer.id, claim_expires_at=expires)
-                .execution_options(synchronize_session=False)
-            )
+            res = session.execute(_take_stmt(), {**params, "q_aid": alert_id, "q_expires": expires})
             if res.rowcount == 1:  # type: ignore[attr-defined]
-                return session.scalars(
-                    select(Alert).where(Alert.id == alert_id).execution_options(populate_existing=True)
-                ).one()
+                return session.scalars(_load_stmt(), {"q_aid": alert_id}).one()
             exclude.add(alert_id)
     return None
 
@@ -367,8 +431,9 @@ def claim_next(
     """
     now = now or utcnow()
     expires = now + dt.timedelta(minutes=claim_minutes)
-    held = [a for a in _held_claims(session, reviewer, now) if _matches(a, reviewer, trial_id, sound_class)]
-    progress = _progress(session, reviewer.id)
+    all_held = _held_claims(session, reviewer, now)
+    held = [a for a in all_held if _matches(a, reviewer, trial_id, sound_class)]
+    progress = _progress(session, reviewer.id) if gold_share > 0 else 0
     chosen: list[Alert] = []
     for slot in range(2):
         if gold_share > 0 and _gold_due(key, reviewer.id, progress + slot, gold_share):
@@ -383,55 +448,35 @@ def claim_next(
         if new is None:
             break
         chosen.append(new)
-    keep = [a.id for a in chosen if a.state in REVIEW_STATES]
-    if keep:
-        session.execute(
-            update(Alert)
-            .where(Alert.id.in_(keep))
-            .values(claim_expires_at=expires)
-            .execution_options(synchronize_session="evaluate")
-        )
-    # Claims live only on alerts in review (a verdict clears them), so the state index bounds this.
-    release = update(Alert).where(Alert.state.in_(REVIEW_STATES), Alert.claimed_by_id == reviewer.id)
-    if keep:
-        release = release.where(Alert.id.not_in(keep))
-    session.execute(
-        release.values(claimed_by_id=None, claim_expires_at=None).execution_options(
-            synchronize_session="fetch"
-        )
-    )
+    # Renew what is kept and let go of the rest; the flush writes only the rows that change.
+    kept = {a.id for a in chosen}
+    for a in all_held:
+        if a.id in kept:
+            a.claim_expires_at = expires
+        else:
+            a.claimed_by_id = None
+            a.claim_expires_at = None
     session.flush()
-    items = _items(session, chosen)
+    items = queue_items(session, chosen)
     return QueueView(items[0] if items else None, items[1] if len(items) > 1 else None)
-
-
-def peek_queue(
-    session: Session, *, reviewer: User, current_id: int, now: dt.datetime | None = None
-) -> QueueItem | None:
-    """The reviewer's other claimed clip (the one after ``current_id``), without changing anything."""
-    now = now or utcnow()
-    for a in _held_claims(session, reviewer, now):
-        if a.id != current_id and (not a.private_flag or _is_admin(reviewer)):
-            return _item(session, a)
-    return None
 
 
 def release_claims(session: Session, *, reviewer: User) -> int:
     """Give back every clip the reviewer holds (e.g. when they stop for the day)."""
     res = session.execute(
         update(Alert)
-        .where(Alert.state.in_(REVIEW_STATES), Alert.claimed_by_id == reviewer.id)
+        .where(Alert.claimed_by_id == reviewer.id, Alert.state.in_(REVIEW_STATES))
         .values(claimed_by_id=None, claim_expires_at=None)
         .execution_options(synchronize_session="fetch")
     )
     return int(res.rowcount or 0)  # type: ignore[attr-defined]
 
 
-def _gold_for(session: Session, alert_id: int) -> GoldCheck | None:
+def gold_for(session: Session, alert_id: int) -> GoldCheck | None:
     return session.scalar(select(GoldCheck).where(GoldCheck.alert_id == alert_id))
 
 
-def _gold_open_to(session: Session, gold: GoldCheck, reviewer: User) -> bool:
+def gold_open_to(session: Session, gold: GoldCheck, reviewer: User) -> bool:
     answered = session.scalar(
         select(GoldAnswer.id).where(
             GoldAnswer.gold_check_id == gold.id, GoldAnswer.reviewer_id == reviewer.id
@@ -453,18 +498,18 @@ def get_review_item(
     alert = session.get(Alert, alert_id, populate_existing=True)
     if alert is None:
         raise NotFound(f"No alert has id {alert_id}.", code="unknown_alert")
-    if alert.private_flag and not _is_admin(reviewer):
+    if alert.private_flag and not is_admin(reviewer):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     if alert.state in REVIEW_STATES:
         live = alert.claim_expires_at is not None and alert.claim_expires_at >= now
         if alert.claimed_by_id == reviewer.id and live:
-            return _item(session, alert)
+            return queue_item(session, alert)
         if alert.claimed_by_id not in (None, reviewer.id) and live:
             raise ClaimLost("Another reviewer is working on this clip; take the next one from the queue.")
         raise NotInReview("This clip is not handed out to you; take the next one from the queue.")
-    gold = _gold_for(session, alert.id)
-    if alert.state == AlertState.final and gold is not None and _gold_open_to(session, gold, reviewer):
-        return _item(session, alert)
+    gold = gold_for(session, alert.id)
+    if alert.state == AlertState.final and gold is not None and gold_open_to(session, gold, reviewer):
+        return queue_item(session, alert)
     raise NotInReview("This clip is not waiting for your review; take the next one from the queue.")
 
 
@@ -473,13 +518,10 @@ def queue_size(
 ) -> int:
     """Clips this reviewer could be handed now (claimed ones included), for the queue page."""
     conds = _review_filter(reviewer, trial_id, sound_class)
-    q = (
-        select(func.count())
-        .select_from(Alert)
-        .where(
-            Alert.state.in_(REVIEW_STATES),
-            *conds,
-            or_(Alert.state == AlertState.pending, _not_reviewed_by(reviewer.id)),
-        )
-    )
-    return int(session.scalar(q) or 0)
+    total = 0
+    for state in REVIEW_STATES:
+        q = select(func.count()).select_from(Alert).where(Alert.state == state, *conds)
+        if state == AlertState.second_review:
+            q = q.where(_not_reviewed_by(reviewer.id))
+        total += int(session.scalar(q) or 0)
+    return total

@@ -41,13 +41,13 @@ from server.review.queue import (
     PrivateContent,
     QueueItem,
     SameReviewer,
-    _gold_for,
-    _gold_open_to,
-    _is_admin,
-    _item,
-    _items,
     chosen_for_second_review,
     claim_next,
+    gold_for,
+    gold_open_to,
+    is_admin,
+    queue_item,
+    queue_items,
     trial_causes,
 )
 from server.trials.models import Trial
@@ -200,12 +200,12 @@ def record_verdict(
     trial = session.get(Trial, alert.trial_id)
     assert trial is not None
     label, cause, resemblance, note = _clean(label, cause, resemblance, note, trial)
-    if alert.private_flag and not _is_admin(reviewer):
+    if alert.private_flag and not is_admin(reviewer):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
-    gold = _gold_for(session, alert.id)
+    gold = gold_for(session, alert.id)
 
     if alert.state not in REVIEW_STATES:
-        if alert.state == AlertState.final and gold is not None and _gold_open_to(session, gold, reviewer):
+        if alert.state == AlertState.final and gold is not None and gold_open_to(session, gold, reviewer):
             _answer_gold(session, gold, reviewer, label, cause, now)
             if private:
                 _flag_private(session, alert, reviewer)
@@ -230,7 +230,7 @@ def record_verdict(
             "You gave the first verdict on this clip; a different reviewer must give the second."
         )
 
-    gold_open = gold is not None and _gold_open_to(session, gold, reviewer)
+    gold_open = gold is not None and gold_open_to(session, gold, reviewer)
     verdict = Verdict(
         alert_id=alert.id,
         reviewer_id=reviewer.id,
@@ -313,7 +313,7 @@ def list_private_clips_to_purge(session: Session) -> list[Clip]:
 
 
 def can_adjudicate(user: User) -> bool:
-    return _is_admin(user) or (user.is_adjudicator and user.role == "reviewer")
+    return is_admin(user) or (user.is_adjudicator and user.role == "reviewer")
 
 
 def _verdict_views(session: Session, alert_ids: Sequence[int]) -> dict[int, list[VerdictView]]:
@@ -349,13 +349,13 @@ def list_adjudications(
     q = select(Alert).where(Alert.state == AlertState.adjudication).order_by(Alert.received_at, Alert.id)
     if trial_id is not None:
         q = q.where(Alert.trial_id == trial_id)
-    if not _is_admin(adjudicator):
+    if not is_admin(adjudicator):
         q = q.where(Alert.private_flag.is_(False))
     alerts = list(session.scalars(q.limit(limit)))
     views = _verdict_views(session, [a.id for a in alerts])
     return [
         AdjudicationCase(item, tuple(views[a.id]), a.private_flag)
-        for a, item in zip(alerts, _items(session, alerts), strict=True)
+        for a, item in zip(alerts, queue_items(session, alerts), strict=True)
     ]
 
 
@@ -368,10 +368,10 @@ def get_adjudication(session: Session, *, adjudicator: User, alert_id: int) -> A
         raise NotInReview(
             f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication"
         )
-    if alert.private_flag and not _is_admin(adjudicator):
+    if alert.private_flag and not is_admin(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     return AdjudicationCase(
-        _item(session, alert), tuple(_verdict_views(session, [alert.id])[alert.id]), alert.private_flag
+        queue_item(session, alert), tuple(_verdict_views(session, [alert.id])[alert.id]), alert.private_flag
     )
 
 
@@ -401,10 +401,10 @@ def adjudicate(
         raise NotInReview(
             f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication"
         )
-    if alert.private_flag and not _is_admin(adjudicator):
+    if alert.private_flag and not is_admin(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     earlier = list(session.scalars(select(Verdict).where(Verdict.alert_id == alert.id)))
-    if not _is_admin(adjudicator) and any(v.reviewer_id == adjudicator.id for v in earlier):
+    if not is_admin(adjudicator) and any(v.reviewer_id == adjudicator.id for v in earlier):
         raise SameReviewer("You gave one of the verdicts on this clip; another adjudicator must settle it.")
     verdict = Verdict(
         alert_id=alert.id,
@@ -471,7 +471,7 @@ def mark_gold(
     if errors:
         first = next(iter(errors))
         raise ValidationFailed(errors[first], errors, field=first)
-    if _gold_for(session, alert_id) is not None:
+    if gold_for(session, alert_id) is not None:
         raise Conflict(f"Alert {alert_id} is already a gold check.", code="gold_exists")
     gold = GoldCheck(
         alert_id=alert_id, expected_label=expected_label, expected_cause=expected_cause, created_by_id=user.id

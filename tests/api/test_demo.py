@@ -146,6 +146,25 @@ def test_the_default_plan_has_the_scenario_the_issue_asks_for() -> None:
     assert any(o.serial for o in plan.outages if o.reason == "offline overnight")
 
 
+@pytest.mark.parametrize("kind", ["baby_cry", "bird_screech", "door_slam", "smoke_alarm_t3"])
+def test_demo_clips_are_reproducible_and_sit_in_room_tone(kind: str) -> None:
+    import io
+
+    import numpy as np
+    import soundfile as sf
+
+    clip, offset = seed._make_clip((kind, 1234))
+    assert seed._make_clip((kind, 1234)) == (clip, offset)
+    x, rate = sf.read(io.BytesIO(clip))
+    assert rate == 16000 and len(x) == 160000 and 0.5 < offset < 4.2
+    # Before the sound starts: the room tone of server.sounds (-55 dBFS RMS), as the clip's floor.
+    start = int((offset - 0.8) * rate)
+    quiet = 20 * np.log10(np.sqrt(np.mean(x[: max(start, 1600)] ** 2)))
+    loud = 20 * np.log10(np.sqrt(np.mean(x[start:] ** 2)))
+    assert quiet == pytest.approx(-55.0, abs=3.0)
+    assert loud > quiet + 10.0
+
+
 # --- the seeded pilot ----------------------------------------------------------------------------
 
 def test_one_trial_with_the_three_classes_and_no_default_pilot(db: Session) -> None:
@@ -277,3 +296,49 @@ def test_reviewed_verdicts_follow_the_story(seeded: seed.SeedResult, db: Session
         Alert.home_id == cockatoo, Alert.sound_class == "baby_cry", Alert.final_label.is_not(None))).all()
     screeches = [r for r in rows if r.final_cause == "cat_other_pet"]
     assert len(screeches) >= 3 and all(r.final_label == "false_alarm" for r in screeches)
+
+
+# --- the weekly summary over the seeded pilot -------------------------------------------------------
+
+@pytest.fixture
+def summary(seeded: seed.SeedResult, db: Session):  # type: ignore[no-untyped-def]
+    from server.analytics import weekly
+
+    now = seeded.plan.end + dt.timedelta(hours=1)
+    return weekly.build_summary(db, trial_code=scenario.TRIAL_CODE, now=now)
+
+
+def test_the_weekly_summary_shows_the_cockatoo_home_as_top_baby_cry_contributor(
+        seeded: seed.SeedResult, summary) -> None:  # type: ignore[no-untyped-def]
+    assert summary.week.start_at == seeded.plan.end - dt.timedelta(days=7)  # the pilot's last week
+    baby = next(c for c in summary.classes if c.sound_class == "baby_cry")
+    top = baby.to_date.concentration
+    assert top.top_home == seeded.code("cockatoo")
+    assert top.top_home_share > 0.3
+    table = baby.to_date.homes
+    assert table.iloc[0]["home_code"] == seeded.code("cockatoo")
+    assert table.iloc[0]["false_alarms"] > table.iloc[1]["false_alarms"]
+    # The screeches are a pet's; the cause table says so.
+    causes = baby.to_date.causes
+    assert "cat_other_pet" in set(causes.iloc[:, 0])
+
+
+def test_the_weekly_summary_flags_the_skewed_clock_and_no_silent_device(seeded: seed.SeedResult,
+                                                                         summary) -> None:  # type: ignore[no-untyped-def]
+    ops = summary.operations
+    assert [s for s, _ in ops.skewed_devices] == [seeded.plan.skewed_serial]
+    assert ops.skewed_devices[0][1] == pytest.approx(720.0, abs=1.0)
+    assert ops.silent_devices == ()
+
+
+def test_the_erased_home_still_counts_in_the_figures(seeded: seed.SeedResult, db: Session,
+                                                     summary) -> None:  # type: ignore[no-untyped-def]
+    code = seeded.code("erased")
+    hid = home_id(db, code)
+    for c in summary.classes:
+        row = c.to_date.homes[c.to_date.homes["home_code"] == code]
+        assert len(row) == 1
+        expected = db.scalar(select(func.count(Alert.id)).where(
+            Alert.home_id == hid, Alert.sound_class == c.sound_class, Alert.final_label == "false_alarm"))
+        assert int(row.iloc[0]["false_alarms"]) == expected
+        assert float(row.iloc[0]["home_months"]) > 0

@@ -918,6 +918,14 @@ def test_clip_file_is_fsynced_and_in_place_before_the_row_commits(clocked, clien
     assert steps[0][1].startswith(str(store.tmp.resolve()))
     assert steps[1][1] == str(final) and steps[2][1] == str(final.parent)
     assert at_commit and all(at_commit)
+    # The clip's bucket directories were new: each new entry's parent is fsynced before the rename.
+    bucket, top = final.parent, final.parent.parent
+    order = [p for kind, p in log if kind == "fsync"]
+    assert str(store.root.resolve()) in order and str(top) in order
+    rename_at = log.index(("rename", str(final)))
+    assert log.index(("fsync", str(store.root.resolve()))) < rename_at
+    assert log.index(("fsync", str(top))) < rename_at
+    assert bucket.is_dir()
 
 
 def _cli(argv: list[str], settings: Settings, monkeypatch: pytest.MonkeyPatch,

@@ -25,7 +25,9 @@ def data_dir(tmp_path, monkeypatch):  # type: ignore[no-untyped-def]
 
 def test_cli_register_commands(data_dir, capsys):
     good = data_dir / "homes.csv"
-    good.write_text("code,dog,dwelling_type,names\nH-0101,yes,flat,Eve Sample\nH-0102,no,,\n", encoding="utf-8")
+    good.write_text(
+        "code,dog,dwelling_type,names\nH-0101,yes,flat,Eve Sample\nH-0102,no,,\n", encoding="utf-8"
+    )
     assert cli.main(["home", "import", str(good), "--trial", "PILOT-1"]) == 0
     assert "2 home(s) imported into PILOT-1: H-0101, H-0102" in capsys.readouterr().out
 

@@ -34,8 +34,11 @@ GOOD = (
 
 def test_good_file_imports_every_row(staff_client, session, trial):
     c = json_client(staff_client)
-    r = c.post(f"/api/v1/homes/import?trial={trial.code}", content=GOOD.encode(),
-               headers={"Content-Type": "text/csv"})
+    r = c.post(
+        f"/api/v1/homes/import?trial={trial.code}",
+        content=GOOD.encode(),
+        headers={"Content-Type": "text/csv"},
+    )
     assert r.status_code == 201, r.text
     created = r.json()["created"]
     assert r.json()["rows"] == 3 and created[0] == "H-7001" and created[2] == "H-7003"
@@ -52,14 +55,18 @@ def test_one_bad_file_imports_nothing_and_reports_each_row(staff_client, session
     c = json_client(staff_client)
     service.create_home(session, trial, code="H-7100")
     before = homes_in(session, trial)
-    text = ("code,dog,occupants,pool,state\n"
-            "H-7101,yes,2,,candidate\n"        # fine on its own
-            "H-7100,yes,2,,candidate\n"        # already in the register
-            "H-7102,perhaps,2,,candidate\n"    # bad yes/no
-            "H-7102,no,zero,,active\n"         # duplicate in the file, bad number, state not importable
-            )
-    r = c.post(f"/api/v1/homes/import?trial={trial.code}", content=text.encode(),
-               headers={"Content-Type": "text/csv"})
+    text = (
+        "code,dog,occupants,pool,state\n"
+        "H-7101,yes,2,,candidate\n"  # fine on its own
+        "H-7100,yes,2,,candidate\n"  # already in the register
+        "H-7102,perhaps,2,,candidate\n"  # bad yes/no
+        "H-7102,no,zero,,active\n"  # duplicate in the file, bad number, state not importable
+    )
+    r = c.post(
+        f"/api/v1/homes/import?trial={trial.code}",
+        content=text.encode(),
+        headers={"Content-Type": "text/csv"},
+    )
     assert r.status_code == 422
     err = r.json()["error"]
     assert err["code"] == "import_rejected" and err["message"].startswith("Nothing was imported: 6 problems")
@@ -84,7 +91,9 @@ def test_malformed_files_are_refused_whole(staff_client, session, trial):
         b"": "empty",
     }
     for body, phrase in cases.items():
-        r = c.post(f"/api/v1/homes/import?trial={trial.code}", content=body, headers={"Content-Type": "text/csv"})
+        r = c.post(
+            f"/api/v1/homes/import?trial={trial.code}", content=body, headers={"Content-Type": "text/csv"}
+        )
         assert r.status_code == 422, body
         p = r.json()["error"]["problems"]
         assert len(p) == 1 and p[0]["row"] == 0 and phrase in p[0]["problem"], p
@@ -95,20 +104,30 @@ def test_import_page_shows_the_report(staff_client, session, trial):
     c = staff_client("coordinator")
     token = csrf_of(c, f"/homes/import?trial={trial.code}")
     bad = b"code,dog\nH-7301,yes\nH-7302,sometimes\n"
-    r = c.post("/homes/import", data={"csrf_token": token, "trial": trial.code},
-               files={"file": ("homes.csv", bad, "text/csv")})
+    r = c.post(
+        "/homes/import",
+        data={"csrf_token": token, "trial": trial.code},
+        files={"file": ("homes.csv", bad, "text/csv")},
+    )
     assert r.status_code == 422
     assert 'id="import-rejected"' in r.text and "line 3" in r.text and "sometimes" in r.text
     assert service.find_home(session, "H-7301") is None
-    r = c.post("/homes/import", data={"csrf_token": token, "trial": trial.code},
-               files={"file": ("homes.csv", b"code,dog\nH-7301,yes\n", "text/csv")})
+    r = c.post(
+        "/homes/import",
+        data={"csrf_token": token, "trial": trial.code},
+        files={"file": ("homes.csv", b"code,dog\nH-7301,yes\n", "text/csv")},
+    )
     assert r.status_code == 200 and 'id="import-done"' in r.text and "H-7301" in r.text
     assert service.get_home(session, "H-7301").attributes == {"dog": True}
 
 
 def test_export_without_personal_data_by_default(staff_client, session, trial):
     c = json_client(staff_client)
-    c.post(f"/api/v1/homes/import?trial={trial.code}", content=GOOD.encode(), headers={"Content-Type": "text/csv"})
+    c.post(
+        f"/api/v1/homes/import?trial={trial.code}",
+        content=GOOD.encode(),
+        headers={"Content-Type": "text/csv"},
+    )
     r = c.get(f"/api/v1/homes/export.csv?trial={trial.code}")
     assert r.status_code == 200 and r.headers["content-type"].startswith("text/csv")
     frame = pd.read_csv(io.StringIO(r.text), dtype=str, keep_default_na=False)
@@ -118,7 +137,9 @@ def test_export_without_personal_data_by_default(staff_client, session, trial):
     r = c.get(f"/api/v1/homes/export-personal.csv?trial={trial.code}")
     assert r.status_code == 200
     frame = pd.read_csv(io.StringIO(r.text), dtype=str, keep_default_na=False).set_index("code")
-    assert frame.loc["H-7001", "names"] == "Ada Example" and frame.loc["H-7001", "phone"] == "+44 20 7946 0000"
+    assert (
+        frame.loc["H-7001", "names"] == "Ada Example" and frame.loc["H-7001", "phone"] == "+44 20 7946 0000"
+    )
     ev = session.scalars(select(AuditEvent).where(AuditEvent.action == "personal.export")).all()
     assert len(ev) == 1 and ev[0].actor_id == c.user.id and ev[0].detail["homes"] == 3  # type: ignore[attr-defined]
 
@@ -126,6 +147,6 @@ def test_export_without_personal_data_by_default(staff_client, session, trial):
 def test_exported_formula_text_is_defused(staff_client, session, trial):
     c = json_client(staff_client)
     home = service.create_home(session, trial)
-    service.set_contact(session, home, names="=HYPERLINK(\"x\")", phone="+44 1632 960000")
+    service.set_contact(session, home, names='=HYPERLINK("x")', phone="+44 1632 960000")
     text = c.get(f"/api/v1/homes/export-personal.csv?trial={trial.code}").text
     assert re.search(r"'=HYPERLINK", text) and ",+44 1632 960000," in text

@@ -22,7 +22,9 @@ def json_client(staff_client, role="coordinator"):  # type: ignore[no-untyped-de
 
 def day(n: int, hour: int = 9) -> dt.datetime:
     """Day n of a scenario that started 60 days ago (at midnight UTC)."""
-    start = (dt.datetime.now(dt.UTC) - dt.timedelta(days=60)).replace(hour=0, minute=0, second=0, microsecond=0)
+    start = (dt.datetime.now(dt.UTC) - dt.timedelta(days=60)).replace(
+        hour=0, minute=0, second=0, microsecond=0
+    )
     return start + dt.timedelta(days=n, hours=hour)
 
 
@@ -31,20 +33,43 @@ def test_overlapping_installations_are_refused(staff_client, session, trial):
     device, _ = factories.make_device(session, trial)
     h1 = factories.make_registered_home(session, trial, state="consented", at=day(0))
     h2 = factories.make_registered_home(session, trial, state="consented", at=day(0))
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": h1.code, "room": "kitchen",
-                                              "installed_at": day(1).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": h1.code,
+            "room": "kitchen",
+            "installed_at": day(1).isoformat(),
+        },
+    )
     assert r.status_code == 201, r.text
     first = r.json()["installation"]["id"]
-    assert c.post(f"/api/v1/installations/{first}/removal",
-                  json={"removed_at": day(10).isoformat()}).status_code == 200
+    assert (
+        c.post(f"/api/v1/installations/{first}/removal", json={"removed_at": day(10).isoformat()}).status_code
+        == 200
+    )
     # Inside the closed period: refused.
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": h2.code, "room": "landing",
-                                              "installed_at": day(5).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": h2.code,
+            "room": "landing",
+            "installed_at": day(5).isoformat(),
+        },
+    )
     assert r.status_code == 409 and r.json()["error"]["code"] == "installation_overlap"
     assert h1.code in r.json()["error"]["message"]
     # Right at the removal: touching is not overlapping.
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": h2.code, "room": "landing",
-                                              "installed_at": day(10).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": h2.code,
+            "room": "landing",
+            "installed_at": day(10).isoformat(),
+        },
+    )
     assert r.status_code == 201, r.text
     # A correction that would stretch the first period over the second is refused as well.
     r = c.patch(f"/api/v1/installations/{first}", json={"removed_at": day(12).isoformat()})
@@ -66,7 +91,9 @@ def test_device_in_a_home_must_be_moved_not_installed_twice(staff_client, sessio
     r = c.post("/api/v1/installations", json={**body, "move": True})
     assert r.status_code == 201, r.text
     out = r.json()
-    assert out["closed"]["home"] == h1.code and out["closed"]["removed_at"].startswith(day(20).date().isoformat())
+    assert out["closed"]["home"] == h1.code and out["closed"]["removed_at"].startswith(
+        day(20).date().isoformat()
+    )
     assert out["installation"]["home"] == h2.code and out["installation"]["room"] == "nursery"
     assert out["alerts_reattributed"] == 1
     session.refresh(a_before)
@@ -123,14 +150,35 @@ def test_device_of_another_trial_and_bad_room(staff_client, session, trial):
     foreign, _ = factories.make_device(session, other)
     device, _ = factories.make_device(session, trial)
     home = factories.make_registered_home(session, trial, state="consented", at=day(0))
-    r = c.post("/api/v1/installations", json={"device": foreign.serial, "home": home.code, "room": "kitchen",
-                                              "installed_at": day(1).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": foreign.serial,
+            "home": home.code,
+            "room": "kitchen",
+            "installed_at": day(1).isoformat(),
+        },
+    )
     assert r.status_code == 409 and r.json()["error"]["code"] == "device_other_trial"
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": home.code, "room": "attic",
-                                              "installed_at": day(1).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": home.code,
+            "room": "attic",
+            "installed_at": day(1).isoformat(),
+        },
+    )
     assert r.status_code == 422 and "room" in r.json()["error"]["fields"]
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": home.code, "room": "living room",
-                                              "installed_at": day(1).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": home.code,
+            "room": "living room",
+            "installed_at": day(1).isoformat(),
+        },
+    )
     assert r.status_code == 201 and r.json()["installation"]["room"] == "living_room"
 
 
@@ -141,7 +189,12 @@ def test_removal_before_installation_is_refused(staff_client, session, trial):
     inst = service.list_installations(session, home=home)[0]
     r = c.post(f"/api/v1/installations/{inst.id}/removal", json={"removed_at": day(4).isoformat()})
     assert r.status_code == 422 and "removed_at" in r.json()["error"]["fields"]
-    assert c.post(f"/api/v1/installations/{inst.id}/removal", json={"removed_at": day(6).isoformat()}).status_code == 200
+    assert (
+        c.post(
+            f"/api/v1/installations/{inst.id}/removal", json={"removed_at": day(6).isoformat()}
+        ).status_code
+        == 200
+    )
     r = c.post(f"/api/v1/installations/{inst.id}/removal", json={"removed_at": day(7).isoformat()})
     assert r.status_code == 409 and r.json()["error"]["code"] == "installation_closed"
 
@@ -150,9 +203,14 @@ def test_staged_events_api(staff_client, session, trial):
     c = json_client(staff_client)
     device, _ = factories.make_device(session, trial)
     home = factories.make_installed_home(session, trial, device, installed_at=day(2), room="hallway")
-    body = {"home": home.code, "sound_class": "smoke_alarm", "started_at": day(4, 10).isoformat(),
-            "ended_at": day(4, 10).replace(minute=2).isoformat(),
-            "source": "test alarm in the hallway, 3 m from the device", "level_db": 85}
+    body = {
+        "home": home.code,
+        "sound_class": "smoke_alarm",
+        "started_at": day(4, 10).isoformat(),
+        "ended_at": day(4, 10).replace(minute=2).isoformat(),
+        "source": "test alarm in the hallway, 3 m from the device",
+        "level_db": 85,
+    }
     r = c.post("/api/v1/staged-events", json=body)
     assert r.status_code == 201, r.text
     ev = r.json()
@@ -160,10 +218,18 @@ def test_staged_events_api(staff_client, session, trial):
     listed = c.get(f"/api/v1/staged-events?home={home.code}").json()
     assert [e["id"] for e in listed] == [ev["id"]]
     # Before any device was in the home, nothing could hear a test.
-    r = c.post("/api/v1/staged-events", json={**body, "started_at": day(1).isoformat(),
-                                              "ended_at": (day(1) + dt.timedelta(minutes=1)).isoformat()})
+    r = c.post(
+        "/api/v1/staged-events",
+        json={
+            **body,
+            "started_at": day(1).isoformat(),
+            "ended_at": (day(1) + dt.timedelta(minutes=1)).isoformat(),
+        },
+    )
     assert r.status_code == 422 and "started_at" in r.json()["error"]["fields"]
-    r = c.post("/api/v1/staged-events", json={**body, "sound_class": "doorbell", "ended_at": body["started_at"]})
+    r = c.post(
+        "/api/v1/staged-events", json={**body, "sound_class": "doorbell", "ended_at": body["started_at"]}
+    )
     assert r.status_code == 422 and set(r.json()["error"]["fields"]) == {"sound_class", "ended_at"}
     assert c.delete(f"/api/v1/staged-events/{ev['id']}").status_code == 204
     assert c.get(f"/api/v1/staged-events?home={home.code}").json() == []

@@ -20,7 +20,9 @@ def json_client(staff_client, role="coordinator"):  # type: ignore[no-untyped-de
 
 
 def base_time() -> dt.datetime:
-    return (dt.datetime.now(dt.UTC) - dt.timedelta(days=60)).replace(hour=9, minute=0, second=0, microsecond=0)
+    return (dt.datetime.now(dt.UTC) - dt.timedelta(days=60)).replace(
+        hour=9, minute=0, second=0, microsecond=0
+    )
 
 
 def assert_healthy(client) -> None:  # type: ignore[no-untyped-def]
@@ -51,8 +53,10 @@ def test_explicit_code_must_be_free_and_well_formed(staff_client, trial):
 
 def test_attribute_values_are_checked_against_the_catalogue(staff_client, trial):
     c = json_client(staff_client)
-    r = c.post("/api/v1/homes", json={"trial": trial.code,
-                                      "attributes": {"occupants": 0, "dwelling_type": "castle", "pool": True}})
+    r = c.post(
+        "/api/v1/homes",
+        json={"trial": trial.code, "attributes": {"occupants": 0, "dwelling_type": "castle", "pool": True}},
+    )
     assert r.status_code == 422
     err = r.json()["error"]
     assert err["code"] == "validation_failed"
@@ -63,7 +67,9 @@ def test_attribute_values_are_checked_against_the_catalogue(staff_client, trial)
 
 def test_patch_changes_only_given_answers(staff_client, trial):
     c = json_client(staff_client)
-    code = c.post("/api/v1/homes", json={"trial": trial.code, "attributes": {"dog": True, "cat": True}}).json()["code"]
+    code = c.post(
+        "/api/v1/homes", json={"trial": trial.code, "attributes": {"dog": True, "cat": True}}
+    ).json()["code"]
     r = c.patch(f"/api/v1/homes/{code}", json={"attributes": {"cat": None, "dwelling_type": "Flat"}})
     assert r.status_code == 200
     assert r.json()["attributes"] == {"dog": True, "dwelling_type": "flat"}
@@ -73,8 +79,9 @@ def test_full_walk_records_every_step(staff_client, session, trial):
     c = json_client(staff_client)
     t0 = base_time()
     device, _ = factories.make_device(session, trial)
-    code = c.post("/api/v1/homes", json={"trial": trial.code,
-                                         "at": (t0 - dt.timedelta(days=1)).isoformat()}).json()["code"]
+    code = c.post(
+        "/api/v1/homes", json={"trial": trial.code, "at": (t0 - dt.timedelta(days=1)).isoformat()}
+    ).json()["code"]
 
     def step(to, at, **kw):  # type: ignore[no-untyped-def]
         r = c.post(f"/api/v1/homes/{code}/transitions", json={"to_state": to, "at": at.isoformat(), **kw})
@@ -82,13 +89,27 @@ def test_full_walk_records_every_step(staff_client, session, trial):
         return r.json()
 
     step("screened", t0, note="phone screening done")
-    r = c.post(f"/api/v1/homes/{code}/consents", json={"form_version": "2.1", "consented_on": t0.date().isoformat(),
-                                                      "retention_days": 60, "mark_consented": True,
-                                                      "at": t0.isoformat()})
+    r = c.post(
+        f"/api/v1/homes/{code}/consents",
+        json={
+            "form_version": "2.1",
+            "consented_on": t0.date().isoformat(),
+            "retention_days": 60,
+            "mark_consented": True,
+            "at": t0.isoformat(),
+        },
+    )
     assert r.status_code == 201, r.text
     assert c.get(f"/api/v1/homes/{code}").json()["state"] == "consented"
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": code, "room": "hallway",
-                                              "installed_at": (t0 + dt.timedelta(days=1)).isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": code,
+            "room": "hallway",
+            "installed_at": (t0 + dt.timedelta(days=1)).isoformat(),
+        },
+    )
     assert r.status_code == 201, r.text
     assert c.get(f"/api/v1/homes/{code}").json()["state"] == "installed"
     step("active", t0 + dt.timedelta(days=2))
@@ -99,9 +120,15 @@ def test_full_walk_records_every_step(staff_client, session, trial):
     tl = c.get(f"/api/v1/homes/{code}/timeline").json()
     steps = [(e["from_state"], e["to_state"]) for e in tl]
     assert steps[0][1] == "candidate" and steps[0][0] is None
-    assert steps[1:] == [("candidate", "screened"), ("screened", "consented"), ("consented", "installed"),
-                         ("installed", "active"), ("active", "paused"), ("paused", "active"),
-                         ("active", "withdrawn")]
+    assert steps[1:] == [
+        ("candidate", "screened"),
+        ("screened", "consented"),
+        ("consented", "installed"),
+        ("installed", "active"),
+        ("active", "paused"),
+        ("paused", "active"),
+        ("active", "withdrawn"),
+    ]
     pause = tl[5]
     assert pause["listening"] is False and pause["note"] == "family away"
     assert pause["author"] == c.user.name  # type: ignore[attr-defined]
@@ -115,9 +142,11 @@ def test_illegal_transition_is_refused_with_a_clear_message(staff_client, trial)
     code = c.post("/api/v1/homes", json={"trial": trial.code}).json()["code"]
     r = c.post(f"/api/v1/homes/{code}/transitions", json={"to_state": "active"})
     assert r.status_code == 409
-    assert r.json()["error"] == {"code": "illegal_transition", "message":
-                                 f"{code} cannot go from candidate to active; from candidate it can go to: "
-                                 "screened, declined."}
+    assert r.json()["error"] == {
+        "code": "illegal_transition",
+        "message": f"{code} cannot go from candidate to active; from candidate it can go to: "
+        "screened, declined.",
+    }
     assert c.get(f"/api/v1/homes/{code}").json()["state"] == "candidate"
     assert_healthy(c)
 
@@ -128,8 +157,15 @@ def test_consent_gate_blocks_consented_and_installed(staff_client, session, tria
     home = factories.make_registered_home(session, trial, state="screened")
     r = c.post(f"/api/v1/homes/{home.code}/transitions", json={"to_state": "consented"})
     assert r.status_code == 409 and r.json()["error"]["code"] == "consent_missing"
-    r = c.post("/api/v1/installations", json={"device": device.serial, "home": home.code, "room": "kitchen",
-                                              "installed_at": base_time().isoformat()})
+    r = c.post(
+        "/api/v1/installations",
+        json={
+            "device": device.serial,
+            "home": home.code,
+            "room": "kitchen",
+            "installed_at": base_time().isoformat(),
+        },
+    )
     assert r.status_code == 409 and r.json()["error"]["code"] == "consent_missing"
     assert session.scalar(select(Installation.id).where(Installation.home_id == home.id)) is None
     assert_healthy(c)
@@ -149,14 +185,19 @@ def test_installed_needs_a_device_in_place(session, trial):
 def test_withdrawn_is_final_and_dates_only_move_forward(staff_client, session, trial):
     c = json_client(staff_client)
     home = factories.make_registered_home(session, trial, state="consented")
-    r = c.post(f"/api/v1/homes/{home.code}/transitions",
-               json={"to_state": "withdrawn", "at": (home.state_changed_at - dt.timedelta(hours=1)).isoformat()})
+    r = c.post(
+        f"/api/v1/homes/{home.code}/transitions",
+        json={"to_state": "withdrawn", "at": (home.state_changed_at - dt.timedelta(hours=1)).isoformat()},
+    )
     assert r.status_code == 422 and "at" in r.json()["error"]["fields"]
     assert c.post(f"/api/v1/homes/{home.code}/transitions", json={"to_state": "withdrawn"}).status_code == 200
     r = c.post(f"/api/v1/homes/{home.code}/transitions", json={"to_state": "active"})
     assert r.status_code == 409 and "withdrawal is final" in r.json()["error"]["message"]
-    n = session.scalar(select(HomeStateChange.id).where(HomeStateChange.home_id == home.id,
-                                                        HomeStateChange.to_state == "active"))
+    n = session.scalar(
+        select(HomeStateChange.id).where(
+            HomeStateChange.home_id == home.id, HomeStateChange.to_state == "active"
+        )
+    )
     assert n is None
 
 
@@ -174,16 +215,26 @@ def test_lead_reads_but_cannot_change(staff_client, session, trial):
 def test_consent_is_recorded_and_audited(staff_client, session, trial):
     c = json_client(staff_client)
     home = factories.make_registered_home(session, trial, state="screened")
-    r = c.post(f"/api/v1/homes/{home.code}/consents",
-               json={"form_version": "", "consented_on": "2999-01-01", "retention_days": 30})
+    r = c.post(
+        f"/api/v1/homes/{home.code}/consents",
+        json={"form_version": "", "consented_on": "2999-01-01", "retention_days": 30},
+    )
     assert r.status_code == 422
     assert set(r.json()["error"]["fields"]) == {"form_version", "consented_on"}
-    r = c.post(f"/api/v1/homes/{home.code}/consents",
-               json={"form_version": "3", "consented_on": base_time().date().isoformat(), "retention_days": 30,
-                     "staff_may_listen": False})
+    r = c.post(
+        f"/api/v1/homes/{home.code}/consents",
+        json={
+            "form_version": "3",
+            "consented_on": base_time().date().isoformat(),
+            "retention_days": 30,
+            "staff_may_listen": False,
+        },
+    )
     assert r.status_code == 201
     consents = c.get(f"/api/v1/homes/{home.code}/consents").json()
-    assert [(x["form_version"], x["retention_days"], x["staff_may_listen"]) for x in consents] == [("3", 30, False)]
+    assert [(x["form_version"], x["retention_days"], x["staff_may_listen"]) for x in consents] == [
+        ("3", 30, False)
+    ]
     ev = session.scalar(select(AuditEvent).where(AuditEvent.action == "consent.record"))
     assert ev is not None and ev.detail["code"] == home.code
     # Without mark_consented the state is unchanged.

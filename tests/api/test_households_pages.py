@@ -15,7 +15,9 @@ from tests.conftest import csrf_of
 
 
 def day(n: int, hour: int = 9) -> dt.datetime:
-    start = (dt.datetime.now(dt.UTC) - dt.timedelta(days=60)).replace(hour=0, minute=0, second=0, microsecond=0)
+    start = (dt.datetime.now(dt.UTC) - dt.timedelta(days=60)).replace(
+        hour=0, minute=0, second=0, microsecond=0
+    )
     return start + dt.timedelta(days=n, hours=hour)
 
 
@@ -50,12 +52,22 @@ def test_new_home_form_shows_messages_beside_the_fields(staff_client, session, t
     token = csrf_of(c, f"/homes/new?trial={trial.code}")
     r = post(c, "/homes/new", token, trial=trial.code, attr_occupants="many", attr_dog="yes", email="nope")
     assert r.status_code == 422
-    assert re.search(r'id="err-occupants">Number of occupants: &#39;many&#39; is not a whole number\.<', r.text)
+    assert re.search(
+        r'id="err-occupants">Number of occupants: &#39;many&#39; is not a whole number\.<', r.text
+    )
     assert 'id="err-email"' in r.text
     assert re.search(r'<option value="yes" selected>yes</option>', r.text)  # answers are kept
     assert service.list_homes(session, trial) == []
-    r = post(c, "/homes/new", token, trial=trial.code, attr_occupants="3", attr_dog="yes", names="Dee Sample",
-             note="met at the library")
+    r = post(
+        c,
+        "/homes/new",
+        token,
+        trial=trial.code,
+        attr_occupants="3",
+        attr_dog="yes",
+        names="Dee Sample",
+        note="met at the library",
+    )
     assert r.status_code == 303
     code = r.headers["location"].rsplit("/", 1)[1]
     home = service.get_home(session, code)
@@ -79,42 +91,93 @@ def test_home_page_walk_through_forms(staff_client, session, settings, store, tr
     c = staff_client("coordinator")
     device, _ = factories.make_device(session, trial)
     service.add_target(session, trial, attribute_key="dog", value=True, min_count=1)
-    home = factories.make_registered_home(session, trial, state="screened", attributes={"dog": True}, at=day(0))
+    home = factories.make_registered_home(
+        session, trial, state="screened", attributes={"dog": True}, at=day(0)
+    )
     token = csrf_of(c, f"/homes/{home.code}")
     # Consent, with the move to consented.
-    r = post(c, f"/homes/{home.code}/consent", token, form_version="", consented_on=day(1).date().isoformat(),
-             retention_days="60", staff_may_listen="yes", mark_consented="yes")
+    r = post(
+        c,
+        f"/homes/{home.code}/consent",
+        token,
+        form_version="",
+        consented_on=day(1).date().isoformat(),
+        retention_days="60",
+        staff_may_listen="yes",
+        mark_consented="yes",
+    )
     assert r.status_code == 422 and 'id="err-form_version"' in r.text
-    r = post(c, f"/homes/{home.code}/consent", token, form_version="v2", consented_on=day(1).date().isoformat(),
-             retention_days="60", staff_may_listen="yes", mark_consented="yes")
+    r = post(
+        c,
+        f"/homes/{home.code}/consent",
+        token,
+        form_version="v2",
+        consented_on=day(1).date().isoformat(),
+        retention_days="60",
+        staff_may_listen="yes",
+        mark_consented="yes",
+    )
     assert r.status_code == 303 and service.get_home(session, home.code).state == "consented"
     # Install through the form; then an overlapping install of the same device elsewhere is refused.
-    r = post(c, f"/homes/{home.code}/installations/new", token, device=device.serial, room="living_room",
-             installed_at=local_input(day(2)))
+    r = post(
+        c,
+        f"/homes/{home.code}/installations/new",
+        token,
+        device=device.serial,
+        room="living_room",
+        installed_at=local_input(day(2)),
+    )
     assert r.status_code == 303, r.text
     other = factories.make_registered_home(session, trial, state="consented", at=day(0))
-    r = post(c, f"/homes/{other.code}/installations/new", token, device=device.serial, room="kitchen",
-             installed_at=local_input(day(3)))
+    r = post(
+        c,
+        f"/homes/{other.code}/installations/new",
+        token,
+        device=device.serial,
+        room="kitchen",
+        installed_at=local_input(day(3)),
+    )
     assert r.status_code == 409 and 'id="err-device"' in r.text and "remove it there first" in r.text
     # Make it active, add listening and an alert, log a staged test.
     r = post(c, f"/homes/{home.code}/state", token, to_state="active", at=local_input(day(2, 10)))
     assert r.status_code == 303
-    session.add(ListeningSegment(device_id=device.id, started_at=day(2, 10), ended_at=day(2, 22), is_open=False))
+    session.add(
+        ListeningSegment(device_id=device.id, started_at=day(2, 10), ended_at=day(2, 22), is_open=False)
+    )
     device.last_seen_at = day(2, 22)
     factories.make_alert(session, store, settings, device, detected_at=day(2, 12), sound_class="glass_break")
     session.flush()
-    r = post(c, f"/homes/{home.code}/staged-events", token, sound_class="smoke_alarm",
-             started_at=local_input(day(2, 15)), ended_at=local_input(day(2, 14)), source="")
+    r = post(
+        c,
+        f"/homes/{home.code}/staged-events",
+        token,
+        sound_class="smoke_alarm",
+        started_at=local_input(day(2, 15)),
+        ended_at=local_input(day(2, 14)),
+        source="",
+    )
     assert r.status_code == 422 and 'id="err-ended_at"' in r.text and 'id="err-source"' in r.text
-    r = post(c, f"/homes/{home.code}/staged-events", token, sound_class="smoke_alarm",
-             started_at=local_input(day(2, 15)), ended_at=local_input(day(2, 16)),
-             source="test alarm in the living room, 2 m away", level_db="82")
+    r = post(
+        c,
+        f"/homes/{home.code}/staged-events",
+        token,
+        sound_class="smoke_alarm",
+        started_at=local_input(day(2, 15)),
+        ended_at=local_input(day(2, 16)),
+        source="test alarm in the living room, 2 m away",
+        level_db="82",
+    )
     assert r.status_code == 303
     ev = session.scalar(select(StagedEvent).where(StagedEvent.home_id == home.id))
     assert ev is not None and ev.started_at == day(2, 15) and ev.level_db == 82.0
     page = c.get(f"/homes/{home.code}").text
     inst = re.search(r'id="installations">(.*?)</table>', page, re.S)
-    assert inst and device.serial in inst.group(1) and "living room" in inst.group(1) and "in place" in inst.group(1)
+    assert (
+        inst
+        and device.serial in inst.group(1)
+        and "living room" in inst.group(1)
+        and "in place" in inst.group(1)
+    )
     alerts = re.search(r'id="alerts">(.*?)</table>', page, re.S)
     assert alerts and re.search(r"glass break</td><td class=\"num\">1</td>", alerts.group(1))
     listening = re.search(r'id="listening">(.*?)</div>\s*<div class="panel" id="alerts"', page, re.S)
@@ -142,8 +205,14 @@ def test_installation_page_corrects_and_removes(staff_client, session, settings,
     inst = service.list_installations(session, home=home)[0]
     url = f"/homes/{home.code}/installations/{inst.id}"
     token = csrf_of(c, url)
-    r = post(c, url + "/correct", token, installed_at=local_input(day(5)), removed_at=local_input(day(4)),
-             room="kitchen")
+    r = post(
+        c,
+        url + "/correct",
+        token,
+        installed_at=local_input(day(5)),
+        removed_at=local_input(day(4)),
+        room="kitchen",
+    )
     assert r.status_code == 422 and 'id="err-fix_removed_at"' in r.text
     r = post(c, url + "/correct", token, installed_at=local_input(day(3)), removed_at="", room="bedroom")
     assert r.status_code == 303
@@ -159,11 +228,21 @@ def test_installation_page_corrects_and_removes(staff_client, session, settings,
 def test_attribute_catalogue_page(staff_client, session, trial):
     c = staff_client("coordinator")
     token = csrf_of(c, f"/homes/attributes?trial={trial.code}")
-    r = post(c, "/homes/attributes", token, trial=trial.code, key="Bad Key", label="", kind="one_of", options="a")
+    r = post(
+        c, "/homes/attributes", token, trial=trial.code, key="Bad Key", label="", kind="one_of", options="a"
+    )
     assert r.status_code == 422
     for field in ("key", "label", "options"):
         assert f'id="err-{field}"' in r.text
-    r = post(c, "/homes/attributes", token, trial=trial.code, key="fireplace", label="Open fireplace", kind="yes_no")
+    r = post(
+        c,
+        "/homes/attributes",
+        token,
+        trial=trial.code,
+        key="fireplace",
+        label="Open fireplace",
+        kind="yes_no",
+    )
     assert r.status_code == 303
     assert "fireplace" in [d.key for d in service.catalogue.list_catalogue(session, trial)]
     new_form = c.get(f"/homes/new?trial={trial.code}").text
@@ -184,3 +263,29 @@ def test_default_catalogue_seeded_for_every_trial(session):
     assert keys[:3] == ["infant_under_2", "children_2_to_12", "dog"] and len(keys) == 12
     occupants = next(d for d in service.catalogue.list_catalogue(session, t) if d.key == "occupants")
     assert (occupants.kind, occupants.min_value, occupants.max_value) == ("whole_number", 1, 30)
+
+
+def test_every_form_carries_the_session_token(staff_client, session, trial):
+    c = staff_client("coordinator")
+    device, _ = factories.make_device(session, trial)
+    home = factories.make_installed_home(session, trial, device, installed_at=day(1))
+    inst = service.list_installations(session, home=home)[0]
+    token = csrf_of(c)
+    for url in (
+        f"/homes?trial={trial.code}",
+        f"/homes/new?trial={trial.code}",
+        f"/homes/{home.code}",
+        f"/homes/{home.code}/edit",
+        f"/homes/{home.code}/contact",
+        f"/homes/{home.code}/erase",
+        f"/homes/{home.code}/installations/new",
+        f"/homes/{home.code}/installations/{inst.id}",
+        f"/homes/import?trial={trial.code}",
+        f"/homes/attributes?trial={trial.code}",
+        f"/quota?trial={trial.code}",
+    ):
+        text = c.get(url).text
+        forms = re.findall(r'<form method="post".*?</form>', text, re.S)
+        assert forms, url
+        for form in forms:
+            assert f'name="csrf_token" value="{token}"' in form, (url, form[:120])

@@ -26,16 +26,29 @@ SECRETS = (SECRET_NAME, SECRET_STREET, SECRET_PHONE, SECRET_EMAIL, SECRET_NOTE, 
 def scenario(session, settings, store, trial):  # type: ignore[no-untyped-def]
     now = dt.datetime.now(dt.UTC).replace(microsecond=0)
     device, _ = factories.make_device(session, trial)
-    home = factories.make_installed_home(session, trial, device, installed_at=now - dt.timedelta(days=20),
-                                         attributes={"dog": True})
-    service.set_contact(session, home, names=SECRET_NAME, address=SECRET_STREET, phone=SECRET_PHONE,
-                        email=SECRET_EMAIL, access_notes=SECRET_NOTE)
+    home = factories.make_installed_home(
+        session, trial, device, installed_at=now - dt.timedelta(days=20), attributes={"dog": True}
+    )
+    service.set_contact(
+        session,
+        home,
+        names=SECRET_NAME,
+        address=SECRET_STREET,
+        phone=SECRET_PHONE,
+        email=SECRET_EMAIL,
+        access_notes=SECRET_NOTE,
+    )
     service.transition(session, home, "paused", at=now - dt.timedelta(days=5), note="Quentin is in hospital")
     service.transition(session, home, "active", at=now - dt.timedelta(days=4))
     alert = factories.make_alert(session, store, settings, device, detected_at=now - dt.timedelta(days=3))
-    service.log_staged_event(session, home=home, sound_class="smoke_alarm", started_at=now - dt.timedelta(days=2),
-                             ended_at=now - dt.timedelta(days=2) + dt.timedelta(minutes=1),
-                             source="test alarm on the landing")
+    service.log_staged_event(
+        session,
+        home=home,
+        sound_class="smoke_alarm",
+        started_at=now - dt.timedelta(days=2),
+        ended_at=now - dt.timedelta(days=2) + dt.timedelta(minutes=1),
+        source="test alarm on the landing",
+    )
     service.add_target(session, trial, attribute_key="dog", value="yes", min_count=1)
     session.flush()
     return {"home": home, "device": device, "alert": alert, "trial": trial}
@@ -73,14 +86,22 @@ def test_coordinator_views_and_exports_are_audited(staff_client, session, scenar
     c = staff_client("coordinator")
     code = scenario["home"].code
     page = c.get(f"/homes/{code}/contact")
-    assert page.status_code == 200 and SECRET_NAME in page.text and page.headers["cache-control"] == "no-store"
+    assert (
+        page.status_code == 200 and SECRET_NAME in page.text and page.headers["cache-control"] == "no-store"
+    )
     api = c.get(f"/api/v1/homes/{code}/contact")
     assert api.status_code == 200 and api.json()["email"] == SECRET_EMAIL
     assert SECRET_PHONE in c.get(f"/homes/export-personal.csv?trial={scenario['trial'].code}").text
-    events = session.scalars(select(AuditEvent).where(AuditEvent.action.in_(["personal.view", "personal.export"]))
-                             .order_by(AuditEvent.id)).all()
-    assert [(e.action, e.detail.get("via")) for e in events] == [("personal.view", "page"), ("personal.view", "api"),
-                                                                 ("personal.export", None)]
+    events = session.scalars(
+        select(AuditEvent)
+        .where(AuditEvent.action.in_(["personal.view", "personal.export"]))
+        .order_by(AuditEvent.id)
+    ).all()
+    assert [(e.action, e.detail.get("via")) for e in events] == [
+        ("personal.view", "page"),
+        ("personal.view", "api"),
+        ("personal.export", None),
+    ]
     assert {e.actor_id for e in events} == {c.user.id}  # type: ignore[attr-defined]
     # The home page itself shows no contact details (opening them is the audited step).
     home_page = c.get(f"/homes/{code}").text
@@ -91,17 +112,28 @@ def test_contact_form_validates_beside_the_fields(staff_client, scenario):
     c = staff_client("coordinator")
     code = scenario["home"].code
     token = csrf_of(c, f"/homes/{code}/contact")
-    r = c.post(f"/homes/{code}/contact", data={"csrf_token": token, "names": "New Name", "email": "not-an-address",
-                                               "phone": "call me maybe"})
+    r = c.post(
+        f"/homes/{code}/contact",
+        data={"csrf_token": token, "names": "New Name", "email": "not-an-address", "phone": "call me maybe"},
+    )
     assert r.status_code == 422
     assert re.search(r'id="err-email">This does not look like an e-mail address\.<', r.text)
     assert 'id="err-phone"' in r.text and 'value="New Name"' in r.text
-    r = c.post(f"/homes/{code}/contact", data={"csrf_token": token, "names": "New Name"}, follow_redirects=False)
+    r = c.post(
+        f"/homes/{code}/contact", data={"csrf_token": token, "names": "New Name"}, follow_redirects=False
+    )
     assert r.status_code == 303
 
 
-OURS = ("/homes", "/quota", "/api/v1/homes", "/api/v1/quota", "/api/v1/installations", "/api/v1/staged-events",
-        "/api/v1/attributes")
+OURS = (
+    "/homes",
+    "/quota",
+    "/api/v1/homes",
+    "/api/v1/quota",
+    "/api/v1/installations",
+    "/api/v1/staged-events",
+    "/api/v1/attributes",
+)
 
 
 def _routes():  # type: ignore[no-untyped-def]
@@ -127,8 +159,14 @@ def _routes():  # type: ignore[no-untyped-def]
 def test_no_personal_data_on_any_page_or_api_they_can_open(staff_client, scenario, role):
     c = staff_client(role)
     s = scenario
-    values = {"code": s["home"].code, "serial": s["device"].serial, "alert_id": str(s["alert"].id),
-              "trial": s["trial"].code, "installation_id": "1", "event_id": "1"}
+    values = {
+        "code": s["home"].code,
+        "serial": s["device"].serial,
+        "alert_id": str(s["alert"].id),
+        "trial": s["trial"].code,
+        "installation_id": "1",
+        "event_id": "1",
+    }
     opened = 0
     for path in sorted(set(_routes())):
         if path in ("/logout",):
@@ -144,7 +182,12 @@ def test_no_personal_data_on_any_page_or_api_they_can_open(staff_client, scenari
             assert secret not in body, (role, url)
     # They could open the register's read pages that their role allows.
     if role == "lead":
-        for url in (f"/homes/{s['home'].code}", "/homes", "/quota", f"/api/v1/homes/{s['home'].code}/timeline"):
+        for url in (
+            f"/homes/{s['home'].code}",
+            "/homes",
+            "/quota",
+            f"/api/v1/homes/{s['home'].code}/timeline",
+        ):
             assert c.get(url, params={"trial": s["trial"].code}).status_code == 200, url
     else:
         assert c.get(f"/homes/{s['home'].code}").status_code == 403

@@ -461,3 +461,52 @@ def test_clip_of_home_without_listening_consent_is_not_handed_out(session, store
     )
     session.flush()
     assert service.claim_next(session, reviewer=r, key=KEY, gold_share=0).current.alert_id == alert.id
+
+
+def test_simultaneous_claims_never_hand_one_clip_to_two_reviewers(fresh_settings):
+    import threading
+
+    from server.db import make_engine, make_session_factory, writer_engine
+    from server.devices.clipstore import ClipStore
+    from tests.conftest import committed_session
+
+    store = ClipStore(fresh_settings.clip_dir)
+    store.ensure()
+    with committed_session(fresh_settings) as s:
+        trial = factories.make_trial(s)
+        trial.second_review_share = 0.0
+        _alerts(s, store, fresh_settings, trial, 12)
+        reviewers = [_reviewer(s).id for _ in range(4)]
+    engine = make_engine(fresh_settings.resolved_database_url())
+    factory = make_session_factory(writer_engine(engine))
+    barrier = threading.Barrier(len(reviewers))
+    got: dict[int, list[int]] = {}
+    errors: list[BaseException] = []
+
+    def work(rid: int) -> None:
+        try:
+            from server.auth.models import User
+
+            barrier.wait(timeout=30)  # before any statement: SQLite writers take their lock at BEGIN
+            with factory() as s:
+                user = s.get(User, rid)
+                view = service.claim_next(s, reviewer=user, key=KEY, gold_share=0)
+                s.commit()
+                got[rid] = [i.alert_id for i in (view.current, view.next) if i is not None]
+        except BaseException as exc:  # noqa: BLE001 - reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(rid,)) for rid in reviewers]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(timeout=60)
+    engine.dispose()
+    assert errors == []
+    handed = [a for ids in got.values() for a in ids]
+    assert len(handed) == 8 and len(set(handed)) == 8
+    with committed_session(fresh_settings) as s:
+        owners = dict(
+            s.execute(select(Alert.id, Alert.claimed_by_id).where(Alert.claimed_by_id.is_not(None))).all()
+        )
+    assert {a: r for r, ids in got.items() for a in ids} == owners

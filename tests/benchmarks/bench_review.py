@@ -128,25 +128,27 @@ def build(engine: sa.Engine, n_alerts: int, rng: np.random.Generator) -> dict[st
                 sa.select(Installation.__table__.c.id).order_by(Installation.__table__.c.id)
             )
         ]
-        clip_id = conn.execute(
-            sa.insert(Clip.__table__)
-            .values(
-                sha256="0" * 64,
-                storage_key="00/00/" + "0" * 64,
-                format="WAV",
-                subtype="PCM_16",
-                sample_rate_hz=16000,
-                channels=1,
-                frames=160000,
-                duration_s=10.0,
-                peak_dbfs=-3.0,
-                rms_dbfs=-20.0,
-                clipped_fraction=0.0,
-                size_bytes=320044,
-                created_at=start,
-            )
-            .returning(Clip.__table__.c.id)
-        ).scalar_one()
+        # One clip row per alert, as in a real pilot (the files themselves are not needed here).
+        clip_rows = [
+            {
+                "sha256": f"{i:064x}",
+                "storage_key": f"bench/{i:064x}",
+                "format": "WAV",
+                "subtype": "PCM_16",
+                "sample_rate_hz": 16000,
+                "channels": 1,
+                "frames": 160000,
+                "duration_s": 10.0,
+                "peak_dbfs": -3.0,
+                "rms_dbfs": -20.0,
+                "clipped_fraction": 0.0,
+                "size_bytes": 320044,
+                "created_at": start,
+            }
+            for i in range(n_alerts)
+        ]
+        _insert(conn, Clip.__table__, clip_rows)
+        clip_ids = [r[0] for r in conn.execute(sa.select(Clip.__table__.c.id).order_by(Clip.__table__.c.id))]
 
         reviewers = []
         for i in range(6):
@@ -192,7 +194,7 @@ def build(engine: sa.Engine, n_alerts: int, rng: np.random.Generator) -> dict[st
                     "detected_at_text": t.isoformat(),
                     "received_at": t,
                     "firmware": "2.1.0",
-                    "clip_id": clip_id,
+                    "clip_id": clip_ids[i],
                     "clip_offset_s": 4.0,
                     "state": state,
                     "needs_second_review": state == AlertState.second_review,
@@ -378,8 +380,11 @@ def main() -> None:
     ap.add_argument("--runs", type=int, default=300)
     ap.add_argument("--image-runs", type=int, default=50)
     ap.add_argument("--postgres-url", default=None, help="an empty PostgreSQL database to fill")
-    ap.add_argument("--postgres", action="store_true",
-                    help="start a private PostgreSQL cluster (initdb/pg_ctl, as the tests do)")
+    ap.add_argument(
+        "--postgres",
+        action="store_true",
+        help="start a private PostgreSQL cluster (initdb/pg_ctl, as the tests do)",
+    )
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
         bench_handout(f"sqlite:///{Path(tmp) / 'bench.sqlite'}", args.alerts, args.runs, "sqlite")

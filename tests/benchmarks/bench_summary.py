@@ -50,7 +50,7 @@ BATCH = 20_000
 
 def _insert(conn: sa.Connection, table: sa.Table, rows: list[dict[str, object]]) -> None:
     for i in range(0, len(rows), BATCH):
-        conn.execute(table.insert(), rows[i:i + BATCH])
+        conn.execute(table.insert(), rows[i : i + BATCH])
 
 
 def _ts(seconds: np.ndarray) -> list[dt.datetime]:
@@ -64,43 +64,112 @@ def build_pilot(engine: sa.Engine, *, homes: int, alerts: int, segments: int, se
     span_s = DAYS * 86400.0
     code = f"BENCH-{homes}"
     with engine.begin() as conn:
-        trial_id = conn.execute(sa.insert(Trial.__table__).returning(Trial.__table__.c.id), [{
-            "code": code, "name": f"Benchmark pilot, {homes} homes", "starts_on": START.date(),
-            "ends_on": None, "sound_classes": CLASSES, "fa_target_per_home_month": 1.0, "timezone": "Europe/London",
-            "causes": [{"code": c, "label": c} for c in CAUSES], "second_review_share": 0.1,
-            "quota_states": ["consented", "installed", "active"], "created_at": START}]).scalar_one()
-        home_ids = [conn.execute(sa.insert(Home.__table__).returning(Home.__table__.c.id), [{
-            "trial_id": trial_id, "code": f"B{homes}-{i:04d}", "state": "active", "state_changed_at": START,
-            "attributes": {}, "created_at": START}]).scalar_one() for i in range(homes)]
+        trial_id = conn.execute(
+            sa.insert(Trial.__table__).returning(Trial.__table__.c.id),
+            [
+                {
+                    "code": code,
+                    "name": f"Benchmark pilot, {homes} homes",
+                    "starts_on": START.date(),
+                    "ends_on": None,
+                    "sound_classes": CLASSES,
+                    "fa_target_per_home_month": 1.0,
+                    "timezone": "Europe/London",
+                    "causes": [{"code": c, "label": c} for c in CAUSES],
+                    "second_review_share": 0.1,
+                    "quota_states": ["consented", "installed", "active"],
+                    "created_at": START,
+                }
+            ],
+        ).scalar_one()
+        home_ids = [
+            conn.execute(
+                sa.insert(Home.__table__).returning(Home.__table__.c.id),
+                [
+                    {
+                        "trial_id": trial_id,
+                        "code": f"B{homes}-{i:04d}",
+                        "state": "active",
+                        "state_changed_at": START,
+                        "attributes": {},
+                        "created_at": START,
+                    }
+                ],
+            ).scalar_one()
+            for i in range(homes)
+        ]
         # Lifecycle: installed on day 0, active a day later; 5% withdraw at a random time.
         changes: list[dict[str, object]] = []
         withdrawn_at: dict[int, float] = {}
         for h in home_ids:
-            changes.append({"home_id": h, "from_state": "consented", "to_state": "installed", "at": START,
-                            "listening": True})
-            changes.append({"home_id": h, "from_state": "installed", "to_state": "active",
-                            "at": START + dt.timedelta(days=1), "listening": True})
+            changes.append(
+                {
+                    "home_id": h,
+                    "from_state": "consented",
+                    "to_state": "installed",
+                    "at": START,
+                    "listening": True,
+                }
+            )
+            changes.append(
+                {
+                    "home_id": h,
+                    "from_state": "installed",
+                    "to_state": "active",
+                    "at": START + dt.timedelta(days=1),
+                    "listening": True,
+                }
+            )
             if rng.random() < 0.05:
                 w = float(rng.uniform(0.3, 0.9) * span_s)
                 withdrawn_at[h] = w
-                changes.append({"home_id": h, "from_state": "active", "to_state": "withdrawn",
-                                "at": START + dt.timedelta(seconds=w), "listening": True})
+                changes.append(
+                    {
+                        "home_id": h,
+                        "from_state": "active",
+                        "to_state": "withdrawn",
+                        "at": START + dt.timedelta(seconds=w),
+                        "listening": True,
+                    }
+                )
         _insert(conn, HomeStateChange.__table__, changes)
         # Devices: one per home, a second in 10% of homes.
         dev_home = home_ids + [int(h) for h in rng.choice(home_ids, size=homes // 10, replace=False)]
         models = rng.choice(["HX-1", "HX-2", "HX-3"], size=len(dev_home), p=[0.5, 0.3, 0.2])
         firmware = rng.choice(["4.1.0", "4.2.0"], size=len(dev_home))
-        dev_rows = [{"trial_id": trial_id, "serial": f"B{homes}-D{i:05d}", "hardware_model": str(models[i]),
-                     "firmware": str(firmware[i]), "token_hash": f"{homes:04d}{i:060d}", "revoked": False,
-                     "heartbeat_interval_s": 60, "last_seen_at": START + dt.timedelta(seconds=span_s),
-                     "clock_skew_s": float(rng.normal(0, 2)), "created_at": START} for i in range(len(dev_home))]
-        dev_ids = [r for (r,) in conn.execute(sa.insert(Device.__table__).returning(Device.__table__.c.id),
-                                              dev_rows).all()] if engine.dialect.name == "postgresql" else None
+        dev_rows = [
+            {
+                "trial_id": trial_id,
+                "serial": f"B{homes}-D{i:05d}",
+                "hardware_model": str(models[i]),
+                "firmware": str(firmware[i]),
+                "token_hash": f"{homes:04d}{i:060d}",
+                "revoked": False,
+                "heartbeat_interval_s": 60,
+                "last_seen_at": START + dt.timedelta(seconds=span_s),
+                "clock_skew_s": float(rng.normal(0, 2)),
+                "created_at": START,
+            }
+            for i in range(len(dev_home))
+        ]
+        dev_ids = (
+            [
+                r
+                for (r,) in conn.execute(
+                    sa.insert(Device.__table__).returning(Device.__table__.c.id), dev_rows
+                ).all()
+            ]
+            if engine.dialect.name == "postgresql"
+            else None
+        )
         if dev_ids is None:
             dev_ids = []
             for row in dev_rows:
-                dev_ids.append(conn.execute(sa.insert(Device.__table__).returning(Device.__table__.c.id),
-                                            [row]).scalar_one())
+                dev_ids.append(
+                    conn.execute(
+                        sa.insert(Device.__table__).returning(Device.__table__.c.id), [row]
+                    ).scalar_one()
+                )
         # Installations: 3% of devices move to another home mid-trial.
         inst_rows = []
         spans = []  # (device index, start s, end s)
@@ -110,14 +179,37 @@ def build_pilot(engine: sa.Engine, *, homes: int, alerts: int, segments: int, se
             if rng.random() < 0.03:
                 move = float(rng.uniform(0.2, 0.8) * end)
                 other = int(rng.choice(home_ids))
-                inst_rows.append({"device_id": d, "home_id": h, "room": room, "installed_at": START,
-                                  "removed_at": START + dt.timedelta(seconds=move), "created_at": START})
-                inst_rows.append({"device_id": d, "home_id": other, "room": str(rng.choice(ROOMS)),
-                                  "installed_at": START + dt.timedelta(seconds=move + 7200), "removed_at": None,
-                                  "created_at": START})
+                inst_rows.append(
+                    {
+                        "device_id": d,
+                        "home_id": h,
+                        "room": room,
+                        "installed_at": START,
+                        "removed_at": START + dt.timedelta(seconds=move),
+                        "created_at": START,
+                    }
+                )
+                inst_rows.append(
+                    {
+                        "device_id": d,
+                        "home_id": other,
+                        "room": str(rng.choice(ROOMS)),
+                        "installed_at": START + dt.timedelta(seconds=move + 7200),
+                        "removed_at": None,
+                        "created_at": START,
+                    }
+                )
             else:
-                inst_rows.append({"device_id": d, "home_id": h, "room": room, "installed_at": START,
-                                  "removed_at": None, "created_at": START})
+                inst_rows.append(
+                    {
+                        "device_id": d,
+                        "home_id": h,
+                        "room": room,
+                        "installed_at": START,
+                        "removed_at": None,
+                        "created_at": START,
+                    }
+                )
             spans.append((i, 0.0, end))
         _insert(conn, Installation.__table__, inst_rows)
         # Listening segments: per device, `k` slots over its span, each listening after a random gap.
@@ -133,21 +225,47 @@ def build_pilot(engine: sa.Engine, *, homes: int, alerts: int, segments: int, se
             ends = edges[1:]
             seg_index.append((starts, ends))
             for a, b in zip(_ts(starts), _ts(ends), strict=True):
-                seg_rows.append({"device_id": dev_ids[i], "started_at": a, "ended_at": b, "is_open": False,
-                                 "heartbeats": 100})
+                seg_rows.append(
+                    {
+                        "device_id": dev_ids[i],
+                        "started_at": a,
+                        "ended_at": b,
+                        "is_open": False,
+                        "heartbeats": 100,
+                    }
+                )
         _insert(conn, ListeningSegment.__table__, seg_rows)
         del seg_rows
-        clip_id = conn.execute(sa.insert(Clip.__table__).returning(Clip.__table__.c.id), [{
-            "sha256": f"{homes:064d}", "storage_key": "bench", "format": "WAV", "subtype": "PCM_16",
-            "sample_rate_hz": 16000, "channels": 1, "frames": 160000, "duration_s": 10.0, "peak_dbfs": -3.0,
-            "rms_dbfs": -20.0, "clipped_fraction": 0.0, "size_bytes": 320044, "created_at": START}]).scalar_one()
+        clip_id = conn.execute(
+            sa.insert(Clip.__table__).returning(Clip.__table__.c.id),
+            [
+                {
+                    "sha256": f"{homes:064d}",
+                    "storage_key": "bench",
+                    "format": "WAV",
+                    "subtype": "PCM_16",
+                    "sample_rate_hz": 16000,
+                    "channels": 1,
+                    "frames": 160000,
+                    "duration_s": 10.0,
+                    "peak_dbfs": -3.0,
+                    "rms_dbfs": -20.0,
+                    "clipped_fraction": 0.0,
+                    "size_bytes": 320044,
+                    "created_at": START,
+                }
+            ],
+        ).scalar_one()
         # Alerts: device rates vary (gamma); 97% inside a listening segment, 3% anywhere in the span.
         weights = rng.gamma(0.8, 1.0, size=n_dev)
         dev_of = rng.choice(n_dev, size=alerts, p=weights / weights.sum())
         home_of = {d: h for d, h in zip(dev_ids, dev_home, strict=True)}
         alert_rows = []
-        labels = rng.choice(["false_alarm", "confirmed", "unsure", "unusable", None], size=alerts,
-                            p=[0.70, 0.18, 0.05, 0.02, 0.05])
+        labels = rng.choice(
+            ["false_alarm", "confirmed", "unsure", "unusable", None],
+            size=alerts,
+            p=[0.70, 0.18, 0.05, 0.02, 0.05],
+        )
         for n, i in enumerate(dev_of):
             starts, ends = seg_index[i]
             if rng.random() < 0.97:
@@ -157,18 +275,33 @@ def build_pilot(engine: sa.Engine, *, homes: int, alerts: int, segments: int, se
                 t = float(rng.uniform(spans[i][1], spans[i][2]))
             at = START + dt.timedelta(seconds=t)
             label = labels[n]
-            alert_rows.append({
-                "device_id": dev_ids[i], "trial_id": trial_id, "home_id": home_of[dev_ids[i]],
-                "installation_id": None, "event_id": f"e{n}", "sound_class": CLASSES[n % 3],
-                "score": float(rng.uniform(0.55, 1.0)), "detected_at": at, "detected_at_text": at.isoformat(),
-                "clock_skew_s": None, "received_at": at + dt.timedelta(seconds=2), "firmware": str(firmware[i]),
-                "clip_id": clip_id, "clip_offset_s": 1.0,
-                "state": "final" if label is not None else "pending",
-                "final_label": label,
-                "final_cause": str(rng.choice(CAUSES)) if label == "false_alarm" else None,
-                "final_resemblance": str(rng.choice(["resembles", "unrelated"])) if label == "false_alarm" else None,
-                "final_method": "single" if label is not None else None, "private_flag": False,
-                "needs_second_review": False})
+            alert_rows.append(
+                {
+                    "device_id": dev_ids[i],
+                    "trial_id": trial_id,
+                    "home_id": home_of[dev_ids[i]],
+                    "installation_id": None,
+                    "event_id": f"e{n}",
+                    "sound_class": CLASSES[n % 3],
+                    "score": float(rng.uniform(0.55, 1.0)),
+                    "detected_at": at,
+                    "detected_at_text": at.isoformat(),
+                    "clock_skew_s": None,
+                    "received_at": at + dt.timedelta(seconds=2),
+                    "firmware": str(firmware[i]),
+                    "clip_id": clip_id,
+                    "clip_offset_s": 1.0,
+                    "state": "final" if label is not None else "pending",
+                    "final_label": label,
+                    "final_cause": str(rng.choice(CAUSES)) if label == "false_alarm" else None,
+                    "final_resemblance": str(rng.choice(["resembles", "unrelated"]))
+                    if label == "false_alarm"
+                    else None,
+                    "final_method": "single" if label is not None else None,
+                    "private_flag": False,
+                    "needs_second_review": False,
+                }
+            )
         _insert(conn, Alert.__table__, alert_rows)
         del alert_rows
         # Two staged events per home, each detected by an alert in 85% of cases.
@@ -178,20 +311,45 @@ def build_pilot(engine: sa.Engine, *, homes: int, alerts: int, segments: int, se
                 t = float(rng.uniform(0.05, 0.25) * span_s)
                 at = START + dt.timedelta(seconds=t)
                 cls = str(rng.choice(CLASSES))
-                staged.append({"trial_id": trial_id, "home_id": h, "sound_class": cls, "started_at": at,
-                               "ended_at": at + dt.timedelta(seconds=60), "source": "test sound, 3 m",
-                               "created_at": at})
+                staged.append(
+                    {
+                        "trial_id": trial_id,
+                        "home_id": h,
+                        "sound_class": cls,
+                        "started_at": at,
+                        "ended_at": at + dt.timedelta(seconds=60),
+                        "source": "test sound, 3 m",
+                        "created_at": at,
+                    }
+                )
                 if rng.random() < 0.85:
                     d = dev_ids[dev_home.index(h)]
                     det = at + dt.timedelta(seconds=float(rng.uniform(1, 20)))
-                    extra.append({
-                        "device_id": d, "trial_id": trial_id, "home_id": h, "installation_id": None,
-                        "event_id": f"s{len(extra)}", "sound_class": cls, "score": float(rng.uniform(0.6, 1.0)),
-                        "detected_at": det, "detected_at_text": det.isoformat(), "clock_skew_s": None,
-                        "received_at": det, "firmware": "4.2.0", "clip_id": clip_id, "clip_offset_s": 1.0,
-                        "state": "final", "final_label": "confirmed", "final_cause": None,
-                        "final_resemblance": None, "final_method": "single", "private_flag": False,
-                        "needs_second_review": False})
+                    extra.append(
+                        {
+                            "device_id": d,
+                            "trial_id": trial_id,
+                            "home_id": h,
+                            "installation_id": None,
+                            "event_id": f"s{len(extra)}",
+                            "sound_class": cls,
+                            "score": float(rng.uniform(0.6, 1.0)),
+                            "detected_at": det,
+                            "detected_at_text": det.isoformat(),
+                            "clock_skew_s": None,
+                            "received_at": det,
+                            "firmware": "4.2.0",
+                            "clip_id": clip_id,
+                            "clip_offset_s": 1.0,
+                            "state": "final",
+                            "final_label": "confirmed",
+                            "final_cause": None,
+                            "final_resemblance": None,
+                            "final_method": "single",
+                            "private_flag": False,
+                            "needs_second_review": False,
+                        }
+                    )
         _insert(conn, StagedEvent.__table__, staged)
         _insert(conn, Alert.__table__, extra)
     return code
@@ -202,25 +360,38 @@ def bare_queries(engine: sa.Engine, code: str) -> None:
     name = engine.dialect.name
     a, s, i = Alert.__table__, ListeningSegment.__table__, Installation.__table__
     t = Trial.__table__
-    month = (sa.func.strftime("%Y-%m", a.c.detected_at) if name == "sqlite"
-             else sa.func.to_char(a.c.detected_at, "YYYY-MM"))
-    seg_month = (sa.func.strftime("%Y-%m", s.c.started_at) if name == "sqlite"
-                 else sa.func.to_char(s.c.started_at, "YYYY-MM"))
+    month = (
+        sa.func.strftime("%Y-%m", a.c.detected_at)
+        if name == "sqlite"
+        else sa.func.to_char(a.c.detected_at, "YYYY-MM")
+    )
+    seg_month = (
+        sa.func.strftime("%Y-%m", s.c.started_at)
+        if name == "sqlite"
+        else sa.func.to_char(s.c.started_at, "YYYY-MM")
+    )
     with engine.connect() as conn:
         trial_id = conn.execute(sa.select(t.c.id).where(t.c.code == code)).scalar_one()
-        conn.execute(sa.select(a.c.home_id, month, sa.func.count())
-                     .where(a.c.trial_id == trial_id, a.c.final_label == "false_alarm")
-                     .group_by(a.c.home_id, month)).all()
+        conn.execute(
+            sa.select(a.c.home_id, month, sa.func.count())
+            .where(a.c.trial_id == trial_id, a.c.final_label == "false_alarm")
+            .group_by(a.c.home_id, month)
+        ).all()
         from server.db import sql_greatest, sql_least
 
         lo = sql_greatest(name, s.c.started_at, i.c.installed_at)
         hi = sql_least(name, s.c.ended_at, sa.func.coalesce(i.c.removed_at, s.c.ended_at))
-        conn.execute(sa.select(i.c.home_id, seg_month, sa.func.sum(seconds_between(name, hi, lo)))
-                     .select_from(s.join(i, i.c.device_id == s.c.device_id))
-                     .join(Home.__table__, Home.__table__.c.id == i.c.home_id)
-                     .where(Home.__table__.c.trial_id == trial_id, s.c.ended_at > i.c.installed_at,
-                            (i.c.removed_at.is_(None)) | (s.c.started_at < i.c.removed_at))
-                     .group_by(i.c.home_id, seg_month)).all()
+        conn.execute(
+            sa.select(i.c.home_id, seg_month, sa.func.sum(seconds_between(name, hi, lo)))
+            .select_from(s.join(i, i.c.device_id == s.c.device_id))
+            .join(Home.__table__, Home.__table__.c.id == i.c.home_id)
+            .where(
+                Home.__table__.c.trial_id == trial_id,
+                s.c.ended_at > i.c.installed_at,
+                (i.c.removed_at.is_(None)) | (s.c.started_at < i.c.removed_at),
+            )
+            .group_by(i.c.home_id, seg_month)
+        ).all()
 
 
 def run_summary(engine: sa.Engine, code: str) -> object:
@@ -267,17 +438,25 @@ def bench(url: str, label: str, homes_list: list[int], repeats: int) -> None:
         bare_t, bare_mem, _ = timed(lambda c=code: bare_queries(engine, c), repeats)
         sum_t, sum_mem, rss = timed(lambda c=code: run_summary(engine, c), repeats)
         results[homes] = sum_t
-        print(f"[{label}] {homes} homes, {int(500_000 * scale)} alerts, {int(1_000_000 * scale)} segments "
-              f"(built in {build_s:.0f} s)")
-        print(f"[{label}]   bare SQL aggregation: {bare_t:.2f} s; summary: {sum_t:.2f} s; "
-              f"ratio {sum_t / bare_t:.2f} (target <= 3)")
-        print(f"[{label}]   summary peak memory: {sum_mem:.0f} MB traced, process peak RSS {rss:.0f} MB "
-              f"(target < 1024 MB)")
+        print(
+            f"[{label}] {homes} homes, {int(500_000 * scale)} alerts, {int(1_000_000 * scale)} segments "
+            f"(built in {build_s:.0f} s)"
+        )
+        print(
+            f"[{label}]   bare SQL aggregation: {bare_t:.2f} s; summary: {sum_t:.2f} s; "
+            f"ratio {sum_t / bare_t:.2f} (target <= 3)"
+        )
+        print(
+            f"[{label}]   summary peak memory: {sum_mem:.0f} MB traced, process peak RSS {rss:.0f} MB "
+            f"(target < 1024 MB)"
+        )
     if len(homes_list) == 2:
         small, large = sorted(homes_list)
         growth = (results[large] / results[small]) / (large / small)
-        print(f"[{label}] growth {small} -> {large} homes: time x{results[large] / results[small]:.2f} "
-              f"for x{large / small:.0f} homes (per-home time ratio {growth:.2f}; <= 1 is linear or better)")
+        print(
+            f"[{label}] growth {small} -> {large} homes: time x{results[large] / results[small]:.2f} "
+            f"for x{large / small:.0f} homes (per-home time ratio {growth:.2f}; <= 1 is linear or better)"
+        )
     engine.dispose()
 
 

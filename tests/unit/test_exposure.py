@@ -18,13 +18,25 @@ def ts(s: str) -> pd.Timestamp:
 
 
 def changes(*rows):
-    return pd.DataFrame([{"home_id": h, "at": ts(a), "to_state": s, "listening": lis} for h, a, s, lis in rows])
+    return pd.DataFrame(
+        [{"home_id": h, "at": ts(a), "to_state": s, "listening": lis} for h, a, s, lis in rows]
+    )
 
 
 def installs(*rows):
-    return pd.DataFrame([
-        {"installation_id": i, "device_id": d, "home_id": h, "room": r, "installed_at": ts(a),
-         "removed_at": ts(b) if b else pd.NaT} for i, d, h, r, a, b in rows])
+    return pd.DataFrame(
+        [
+            {
+                "installation_id": i,
+                "device_id": d,
+                "home_id": h,
+                "room": r,
+                "installed_at": ts(a),
+                "removed_at": ts(b) if b else pd.NaT,
+            }
+            for i, d, h, r, a, b in rows
+        ]
+    )
 
 
 END = ts("2026-12-31")
@@ -35,10 +47,10 @@ def test_home_intervals_follow_monitored_states():
         (1, "2026-11-01", "consented", True),
         (1, "2026-11-02", "installed", True),
         (1, "2026-11-03", "active", True),
-        (1, "2026-11-10", "paused", False),   # paused and not listening: not monitored
+        (1, "2026-11-10", "paused", False),  # paused and not listening: not monitored
         (1, "2026-11-12", "active", True),
-        (1, "2026-11-15", "paused", True),    # paused but still listening: monitored
-        (1, "2026-11-18", "withdrawn", True), # withdrawn mid-month
+        (1, "2026-11-15", "paused", True),  # paused but still listening: monitored
+        (1, "2026-11-18", "withdrawn", True),  # withdrawn mid-month
     )
     out = exposure.home_intervals(c, until=END)
     assert out[["started_at", "ended_at"]].values.tolist() == [
@@ -53,10 +65,12 @@ def test_open_state_runs_until_the_report_end():
 
 
 def test_device_moved_mid_week_gives_one_window_per_home():
-    inst = installs((1, 7, 1, "kitchen", "2026-11-01", "2026-11-25 12:00"),
-                    (2, 7, 2, "hallway", "2026-11-25 15:00", None))
-    hi = exposure.home_intervals(changes((1, "2026-10-01", "active", True), (2, "2026-10-01", "active", True)),
-                                 until=END)
+    inst = installs(
+        (1, 7, 1, "kitchen", "2026-11-01", "2026-11-25 12:00"), (2, 7, 2, "hallway", "2026-11-25 15:00", None)
+    )
+    hi = exposure.home_intervals(
+        changes((1, "2026-10-01", "active", True), (2, "2026-10-01", "active", True)), until=END
+    )
     w = exposure.monitored_windows(inst, hi, start=ts("2026-11-23"), end=ts("2026-11-30"))
     assert w[["home_id", "room", "started_at", "ended_at"]].values.tolist() == [
         [1, "kitchen", ts("2026-11-23"), ts("2026-11-25 12:00")],
@@ -68,16 +82,18 @@ def test_device_moved_mid_week_gives_one_window_per_home():
 def test_overlapping_installations_of_one_device_do_not_count_twice():
     # The first installation was never closed when the device moved.
     inst = installs((1, 7, 1, "kitchen", "2026-11-01", None), (2, 7, 2, "hallway", "2026-11-20", None))
-    hi = exposure.home_intervals(changes((1, "2026-10-01", "active", True), (2, "2026-10-01", "active", True)),
-                                 until=END)
+    hi = exposure.home_intervals(
+        changes((1, "2026-10-01", "active", True), (2, "2026-10-01", "active", True)), until=END
+    )
     w = exposure.monitored_windows(inst, hi, start=ts("2026-11-01"), end=ts("2026-12-01"))
     assert w["ended_at"].iloc[0] == ts("2026-11-20") and w["started_at"].iloc[1] == ts("2026-11-20")
 
 
 def test_withdrawn_home_window_ends_at_withdrawal():
     inst = installs((1, 7, 1, "kitchen", "2026-11-01", None))
-    hi = exposure.home_intervals(changes((1, "2026-11-01", "active", True), (1, "2026-11-16", "withdrawn", True)),
-                                 until=END)
+    hi = exposure.home_intervals(
+        changes((1, "2026-11-01", "active", True), (1, "2026-11-16", "withdrawn", True)), until=END
+    )
     w = exposure.monitored_windows(inst, hi, start=ts("2026-11-01"), end=ts("2026-12-01"))
     assert w[["started_at", "ended_at"]].values.tolist() == [[ts("2026-11-01"), ts("2026-11-16")]]
 
@@ -117,7 +133,8 @@ def test_spread_over_weeks_is_exact_across_boundaries_and_dst(tz):
     frame["start_s"] = trend.epoch_s(frame["a"])
     frame["end_s"] = trend.epoch_s(frame["b"])
     grouped = frame.groupby(["window_id", "first_bucket", "last_bucket"], as_index=False).agg(
-        pieces=("a", "size"), sum_start_s=("start_s", "sum"), sum_end_s=("end_s", "sum"))
+        pieces=("a", "size"), sum_start_s=("start_s", "sum"), sum_end_s=("end_s", "sum")
+    )
     got = exposure.spread_over_buckets(grouped, lambda k: trend.week_start_s(k, tz))
     want = _brute_week_seconds(pieces, tz)
     got_d = {(int(r.window_id), int(r.bucket)): r.seconds for r in got.itertuples() if r.seconds > 1e-6}
@@ -130,7 +147,9 @@ def test_spread_over_weeks_is_exact_across_boundaries_and_dst(tz):
 
 def test_monitored_time_keeps_windows_without_listening_as_zero():
     windows = pd.DataFrame({"window_id": [0, 1], "home_id": [1, 2], "room": ["kitchen", "hallway"]})
-    by_bucket = pd.DataFrame({"window_id": [0, 0], "bucket": [2900, 2901], "seconds": [rates.HOME_MONTH_S, 60.0]})
+    by_bucket = pd.DataFrame(
+        {"window_id": [0, 0], "bucket": [2900, 2901], "seconds": [rates.HOME_MONTH_S, 60.0]}
+    )
     per_home = exposure.monitored_time(by_bucket, windows, by=["home_id"])
     assert per_home["seconds"].tolist() == [rates.HOME_MONTH_S + 60.0, 0.0]
     assert per_home["home_months"].iloc[0] == pytest.approx(1 + 60.0 / rates.HOME_MONTH_S)
@@ -189,13 +208,18 @@ def test_week_index_agrees_with_week_start():
 
 
 def test_utc_offset_steps_for_a_zone_with_daylight_saving():
-    steps = trend.utc_offset_steps("Europe/London", dt.datetime(2026, 1, 1, tzinfo=UTC),
-                                   dt.datetime(2027, 1, 1, tzinfo=UTC))
+    steps = trend.utc_offset_steps(
+        "Europe/London", dt.datetime(2026, 1, 1, tzinfo=UTC), dt.datetime(2027, 1, 1, tzinfo=UTC)
+    )
     assert [s.offset_s for s in steps] == [0.0, 3600.0, 0.0]
     assert steps[1].from_s == dt.datetime(2026, 3, 29, 1, tzinfo=UTC).timestamp()
     assert steps[2].from_s == dt.datetime(2026, 10, 25, 1, tzinfo=UTC).timestamp()
-    assert [s.offset_s for s in trend.utc_offset_steps("UTC", dt.datetime(2026, 1, 1, tzinfo=UTC),
-                                                       dt.datetime(2027, 1, 1, tzinfo=UTC))] == [0.0]
+    assert [
+        s.offset_s
+        for s in trend.utc_offset_steps(
+            "UTC", dt.datetime(2026, 1, 1, tzinfo=UTC), dt.datetime(2027, 1, 1, tzinfo=UTC)
+        )
+    ] == [0.0]
 
 
 def test_weekly_rates_fill_missing_weeks():

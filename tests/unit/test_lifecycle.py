@@ -14,21 +14,43 @@ def ok(current: str, target: str, consent: bool = True, device: bool = True) -> 
     return lifecycle.check("H-0001", current, target, has_consent=consent, has_device=device)
 
 
-@pytest.mark.parametrize("current,target", [
-    ("candidate", "screened"), ("candidate", "declined"), ("screened", "consented"), ("screened", "declined"),
-    ("consented", "installed"), ("consented", "withdrawn"), ("installed", "active"), ("installed", "paused"),
-    ("active", "paused"), ("active", "withdrawn"), ("paused", "active"), ("paused", "withdrawn"),
-    ("declined", "candidate"),
-])
+@pytest.mark.parametrize(
+    "current,target",
+    [
+        ("candidate", "screened"),
+        ("candidate", "declined"),
+        ("screened", "consented"),
+        ("screened", "declined"),
+        ("consented", "installed"),
+        ("consented", "withdrawn"),
+        ("installed", "active"),
+        ("installed", "paused"),
+        ("active", "paused"),
+        ("active", "withdrawn"),
+        ("paused", "active"),
+        ("paused", "withdrawn"),
+        ("declined", "candidate"),
+    ],
+)
 def test_allowed_steps(current, target):
     assert ok(current, target) is None
 
 
-@pytest.mark.parametrize("current,target", [
-    ("candidate", "installed"), ("candidate", "active"), ("screened", "active"), ("consented", "active"),
-    ("active", "candidate"), ("active", "installed"), ("declined", "consented"), ("withdrawn", "active"),
-    ("withdrawn", "candidate"), ("installed", "consented"),
-])
+@pytest.mark.parametrize(
+    "current,target",
+    [
+        ("candidate", "installed"),
+        ("candidate", "active"),
+        ("screened", "active"),
+        ("consented", "active"),
+        ("active", "candidate"),
+        ("active", "installed"),
+        ("declined", "consented"),
+        ("withdrawn", "active"),
+        ("withdrawn", "candidate"),
+        ("installed", "consented"),
+    ],
+)
 def test_illegal_steps_are_refused_with_a_sentence(current, target):
     r = ok(current, target)
     assert r is not None and r.code == "illegal_transition"
@@ -38,8 +60,9 @@ def test_illegal_steps_are_refused_with_a_sentence(current, target):
 def test_illegal_message_lists_the_way_forward():
     r = ok("candidate", "installed")
     assert r is not None
-    assert r.message == ("H-0001 cannot go from candidate to installed; from candidate it can go to: "
-                         "screened, declined.")
+    assert r.message == (
+        "H-0001 cannot go from candidate to installed; from candidate it can go to: screened, declined."
+    )
 
 
 def test_withdrawal_is_final():
@@ -72,6 +95,7 @@ def test_device_gate():
 
 # --- attribute values ---------------------------------------------------------------------------
 
+
 @dataclass
 class Spec:
     key: str
@@ -87,8 +111,10 @@ ONE_OF = Spec("dwelling_type", "Dwelling type", "one_of", ["flat", "detached hou
 NUMBER = Spec("occupants", "Number of occupants", "whole_number", [], 1, 30)
 
 
-@pytest.mark.parametrize("raw,expected", [("yes", True), ("No", False), (True, True), ("1", True),
-                                          ("", None), (None, None), ("  ", None)])
+@pytest.mark.parametrize(
+    "raw,expected",
+    [("yes", True), ("No", False), (True, True), ("1", True), ("", None), (None, None), ("  ", None)],
+)
 def test_yes_no_values(raw, expected):
     assert catalogue.parse_value(YES_NO, raw) is expected
 
@@ -104,19 +130,25 @@ def test_whole_numbers(raw, expected):
     assert catalogue.parse_value(NUMBER, raw) == expected
 
 
-@pytest.mark.parametrize("raw,message", [("2.5", "is not a whole number"), ("three", "is not a whole number"),
-                                         ("0", "below the smallest allowed value, 1"),
-                                         ("31", "above the largest allowed value, 30"),
-                                         (True, "not yes or no")])
+@pytest.mark.parametrize(
+    "raw,message",
+    [
+        ("2.5", "is not a whole number"),
+        ("three", "is not a whole number"),
+        ("0", "below the smallest allowed value, 1"),
+        ("31", "above the largest allowed value, 30"),
+        (True, "not yes or no"),
+    ],
+)
 def test_bad_whole_numbers(raw, message):
     with pytest.raises(ValueError, match=message):
         catalogue.parse_value(NUMBER, raw)
 
 
 def test_validate_attributes_collects_every_problem():
-    clean, errors = catalogue.validate_attributes([YES_NO, ONE_OF, NUMBER],
-                                                  {"dog": "yes", "dwelling_type": "castle", "occupants": "",
-                                                   "pool": "yes"})
+    clean, errors = catalogue.validate_attributes(
+        [YES_NO, ONE_OF, NUMBER], {"dog": "yes", "dwelling_type": "castle", "occupants": "", "pool": "yes"}
+    )
     assert clean == {"dog": True}
     assert set(errors) == {"dwelling_type", "pool"}
     assert errors["pool"] == "'pool' is not an attribute in this trial's catalogue."
@@ -132,6 +164,7 @@ def test_default_catalogue_covers_the_household_types():
 
 # --- intervals ----------------------------------------------------------------------------------
 
+
 def t(day: int, hour: int = 0) -> dt.datetime:
     return dt.datetime(2026, 3, day, hour, tzinfo=dt.UTC)
 
@@ -139,7 +172,7 @@ def t(day: int, hour: int = 0) -> dt.datetime:
 def test_overlap_is_half_open():
     assert timeline.overlaps(t(1), t(2), t(2), t(3)) is False  # touching: a move
     assert timeline.overlaps(t(1), t(3), t(2), t(4)) is True
-    assert timeline.overlaps(t(1), None, t(5), t(6)) is True   # open-ended
+    assert timeline.overlaps(t(1), None, t(5), t(6)) is True  # open-ended
     assert timeline.overlaps(t(5), t(6), t(1), t(5)) is False
 
 
@@ -150,21 +183,33 @@ def test_union_merges_overlapping_and_touching():
 def test_hours_per_week_split_at_local_monday():
     # 2026-03-02 is a Monday. 20:00 Sunday 1 March to 04:00 Monday 2 March UTC is 8 h; in UTC the week
     # boundary falls at 2 March 00:00, so 4 h land in the week of 23 Feb and 4 h in the week of 2 March.
-    rows = timeline.hours_per_week([(t(1, 20), t(2, 4))], "UTC", first_week=dt.date(2026, 2, 23),
-                                   last_week=dt.date(2026, 3, 9))
+    rows = timeline.hours_per_week(
+        [(t(1, 20), t(2, 4))], "UTC", first_week=dt.date(2026, 2, 23), last_week=dt.date(2026, 3, 9)
+    )
     assert [(r.week_start, r.hours) for r in rows] == [
-        (dt.date(2026, 2, 23), 4.0), (dt.date(2026, 3, 2), 4.0), (dt.date(2026, 3, 9), 0.0)]
+        (dt.date(2026, 2, 23), 4.0),
+        (dt.date(2026, 3, 2), 4.0),
+        (dt.date(2026, 3, 9), 0.0),
+    ]
 
 
 def test_hours_per_week_in_a_zone_ahead_of_utc():
     # In Europe/Helsinki (UTC+2 in winter) the Monday starts at Sunday 22:00 UTC: of the 8 h, 2 h
     # fall before it and 6 h after.
-    rows = timeline.hours_per_week([(t(1, 20), t(2, 4))], "Europe/Helsinki", first_week=dt.date(2026, 2, 23),
-                                   last_week=dt.date(2026, 3, 2))
+    rows = timeline.hours_per_week(
+        [(t(1, 20), t(2, 4))],
+        "Europe/Helsinki",
+        first_week=dt.date(2026, 2, 23),
+        last_week=dt.date(2026, 3, 2),
+    )
     assert [r.hours for r in rows] == [2.0, 6.0]
 
 
 def test_hours_per_week_counts_overlaps_once():
-    rows = timeline.hours_per_week([(t(3, 0), t(3, 10)), (t(3, 5), t(3, 12))], "UTC",
-                                   first_week=dt.date(2026, 3, 2), last_week=dt.date(2026, 3, 2))
+    rows = timeline.hours_per_week(
+        [(t(3, 0), t(3, 10)), (t(3, 5), t(3, 12))],
+        "UTC",
+        first_week=dt.date(2026, 3, 2),
+        last_week=dt.date(2026, 3, 2),
+    )
     assert rows[0].hours == 12.0

@@ -64,8 +64,12 @@ def test_yes_no_never_matches_the_number_one():
 
 def test_value_none_matches_any_answer():
     t = Target(9, "Dwelling answered", "dwelling_type", None, 1, None)
-    homes = [home("A", "active", dwelling_type="flat"), home("B", "active", dwelling_type=""),
-             home("C", "active"), home("D", "active", occupants=0)]
+    homes = [
+        home("A", "active", dwelling_type="flat"),
+        home("B", "active", dwelling_type=""),
+        home("C", "active"),
+        home("D", "active", occupants=0),
+    ]
     assert quota.count_targets([t], homes, COUNTING)[0].homes == ("A",)
     n = Target(10, "Occupants answered", "occupants", None, 1, None)
     assert quota.count_targets([n], [*homes, home("E", "active", occupants=2)], COUNTING)[0].homes == ("E",)
@@ -114,8 +118,15 @@ def test_counted_states_are_not_in_the_candidate_pool():
 
 def test_totals_by_state_and_counted():
     report = quota.evaluate([TOTAL], COUNTED + CANDIDATES, COUNTING)
-    assert report.by_state == {"active": 1, "installed": 1, "consented": 1, "withdrawn": 1, "paused": 1,
-                               "candidate": 4, "screened": 1}
+    assert report.by_state == {
+        "active": 1,
+        "installed": 1,
+        "consented": 1,
+        "withdrawn": 1,
+        "paused": 1,
+        "candidate": 4,
+        "screened": 1,
+    }
     assert report.counted == 3
 
 

@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 from scipy import stats
-from statsmodels.stats.proportion import proportion_confint
 from statsmodels.stats import rates as sm_rates
+from statsmodels.stats.proportion import proportion_confint
 
 from server.analytics import breakdowns, rates
 
@@ -140,7 +140,10 @@ def test_proportion_agrees_with_statsmodels_and_scipy(method, level):
             lo, hi = proportion_confint(x, n, alpha=1 - level, method=sm_method)
             assert (ours.low, ours.high) == (pytest.approx(lo, abs=1e-9), pytest.approx(hi, abs=1e-9))
             ci = stats.binomtest(x, n).proportion_ci(level, method=sp_method)
-            assert (ours.low, ours.high) == (pytest.approx(ci.low, abs=1e-9), pytest.approx(ci.high, abs=1e-9))
+            assert (ours.low, ours.high) == (
+                pytest.approx(ci.low, abs=1e-9),
+                pytest.approx(ci.high, abs=1e-9),
+            )
 
 
 # ---------------------------------------------------------------------------------------
@@ -217,8 +220,12 @@ def test_rate_ratio_limits_invert_the_exact_conditional_test():
     # checks.md section 4: at each limit the one-sided statsmodels p-value is exactly 0.025.
     for xa, ta, xb, tb in [(41, 28010, 15, 19017), (3, 10.0, 9, 12.0), (1, 2.0, 20, 5.0)]:
         rr = rates.rate_ratio(xa, ta, xb, tb)
-        p_hi = sm_rates.test_poisson_2indep(xa, ta, xb, tb, value=rr.high, method="exact-cond", alternative="smaller")
-        p_lo = sm_rates.test_poisson_2indep(xa, ta, xb, tb, value=rr.low, method="exact-cond", alternative="larger")
+        p_hi = sm_rates.test_poisson_2indep(
+            xa, ta, xb, tb, value=rr.high, method="exact-cond", alternative="smaller"
+        )
+        p_lo = sm_rates.test_poisson_2indep(
+            xa, ta, xb, tb, value=rr.low, method="exact-cond", alternative="larger"
+        )
         assert p_hi.pvalue == pytest.approx(0.025, abs=1e-7)
         assert p_lo.pvalue == pytest.approx(0.025, abs=1e-7)
 
@@ -229,8 +236,12 @@ def test_rate_ratio_test_agrees_with_statsmodels(alternative, mid_p):
     method = "cond-midp" if mid_p else "exact-cond"
     for xa, ta, xb, tb in [(41, 28010, 15, 19017), (0, 3.0, 5, 4.0), (7, 1.5, 7, 1.5), (12, 30.0, 2, 8.0)]:
         for value in (0.5, 1.0, 1.5, 3.0):
-            ours = rates.rate_ratio_test(xa, ta, xb, tb, null_ratio=value, alternative=alternative, mid_p=mid_p)
-            ref = sm_rates.test_poisson_2indep(xa, ta, xb, tb, value=value, method=method, alternative=alternative)
+            ours = rates.rate_ratio_test(
+                xa, ta, xb, tb, null_ratio=value, alternative=alternative, mid_p=mid_p
+            )
+            ref = sm_rates.test_poisson_2indep(
+                xa, ta, xb, tb, value=value, method=method, alternative=alternative
+            )
             assert ours.p_value == pytest.approx(min(1.0, ref.pvalue), abs=1e-10)
 
 
@@ -266,7 +277,9 @@ def test_bootstrap_collapses_when_homes_are_alike(method):
 def test_bootstrap_resamples_homes_not_events():
     # Same totals (20 events in 10 home-months); spread over ten homes alike, or all in one home.
     even = rates.home_bootstrap([2] * 10, [1.0] * 10, rng=np.random.default_rng(3), method="percentile")
-    piled = rates.home_bootstrap([20] + [0] * 9, [1.0] * 10, rng=np.random.default_rng(3), method="percentile")
+    piled = rates.home_bootstrap(
+        [20] + [0] * 9, [1.0] * 10, rng=np.random.default_rng(3), method="percentile"
+    )
     assert even.high - even.low == pytest.approx(0.0, abs=1e-12)
     assert piled.high - piled.low > 2.0
     # A percentile draw is a total of drawn homes over their time: 0 or 20 events per drawn home.
@@ -276,7 +289,9 @@ def test_bootstrap_resamples_homes_not_events():
 def test_bootstrap_percentile_matches_direct_resampling():
     x = np.array([0, 4, 1, 9, 2, 3, 0, 6])
     t = np.array([1.0, 2.0, 1.2, 3.0, 0.9, 1.5, 0.4, 2.6])
-    ours = rates.home_bootstrap_limits(x, t, rng=np.random.default_rng(11), resamples=3000, method="percentile")
+    ours = rates.home_bootstrap_limits(
+        x, t, rng=np.random.default_rng(11), resamples=3000, method="percentile"
+    )
     rng = np.random.default_rng(11)
     idx = rng.integers(0, len(x), size=(1, 3000, len(x)))[0]
     draws = x[idx].sum(axis=1) / t[idx].sum(axis=1)
@@ -338,8 +353,13 @@ def test_readiness_more_home_months_reaches_the_target():
 def test_rates_by_group_and_firmware_ratio():
     import pandas as pd
 
-    counts = pd.DataFrame({"firmware": ["2.1", "2.1", "2.2"], "false_alarms": [30, 11, 15],
-                           "home_months": [20000.0, 8010.0, 19017.0]})
+    counts = pd.DataFrame(
+        {
+            "firmware": ["2.1", "2.1", "2.2"],
+            "false_alarms": [30, 11, 15],
+            "home_months": [20000.0, 8010.0, 19017.0],
+        }
+    )
     table = breakdowns.rates_by(counts, "firmware")
     assert list(table["firmware"]) == ["2.1", "2.2"]
     assert table.loc[0, "false_alarms"] == 41 and table.loc[0, "home_months"] == pytest.approx(28010.0)

@@ -39,8 +39,9 @@ def test_gini_closed_forms(counts, population, small_sample, top_share):
     assert shares.gini(counts) * (n - 1) / n == pytest.approx(population, abs=1e-12)
     assert _population_gini(counts) == pytest.approx(population, abs=1e-12)
     assert _lorenz_gini(counts) == pytest.approx(population, abs=1e-12)
-    homes = pd.DataFrame({"home_code": [f"H-{i:04d}" for i in range(n)], "false_alarms": counts,
-                          "home_months": [1.0] * n})
+    homes = pd.DataFrame(
+        {"home_code": [f"H-{i:04d}" for i in range(n)], "false_alarms": counts, "home_months": [1.0] * n}
+    )
     assert shares.concentration(homes).top_home_share == pytest.approx(top_share)
 
 
@@ -56,18 +57,22 @@ def test_gini_agrees_with_mean_difference_on_random_counts():
 def test_gini_undefined_without_false_alarms_or_with_one_home():
     assert math.isnan(shares.gini([0, 0, 0]))
     assert math.isnan(shares.gini([4]))
-    homes = pd.DataFrame({"home_code": ["H-0001", "H-0002"], "false_alarms": [0, 0], "home_months": [1.0, 2.0]})
+    homes = pd.DataFrame(
+        {"home_code": ["H-0001", "H-0002"], "false_alarms": [0, 0], "home_months": [1.0, 2.0]}
+    )
     c = shares.concentration(homes)
     assert c.reason == shares.NO_FALSE_ALARMS and c.top_home is None and math.isnan(c.gini)
     assert c.rate_without_top.high == pytest.approx(3.688879 / 3.0, abs=1e-6)
 
 
 def test_pareto_table_orders_and_accumulates():
-    homes = pd.DataFrame({
-        "home_code": ["H-0003", "H-0001", "H-0002", "H-0004"],
-        "false_alarms": [2, 6, 2, 0],
-        "home_months": [1.0, 2.0, 0.5, 1.5],
-    })
+    homes = pd.DataFrame(
+        {
+            "home_code": ["H-0003", "H-0001", "H-0002", "H-0004"],
+            "false_alarms": [2, 6, 2, 0],
+            "home_months": [1.0, 2.0, 0.5, 1.5],
+        }
+    )
     table = shares.home_pareto(homes)
     # Ties on false alarms go to the higher rate (H-0002: 4 per home-month before H-0003: 2).
     assert list(table["home_code"]) == ["H-0001", "H-0002", "H-0003", "H-0004"]
@@ -79,8 +84,13 @@ def test_pareto_table_orders_and_accumulates():
 
 
 def test_concentration_rate_without_the_top_home():
-    homes = pd.DataFrame({"home_code": ["H-0001", "H-0002", "H-0003"], "false_alarms": [10, 3, 2],
-                          "home_months": [1.0, 3.0, 2.0]})
+    homes = pd.DataFrame(
+        {
+            "home_code": ["H-0001", "H-0002", "H-0003"],
+            "false_alarms": [10, 3, 2],
+            "home_months": [1.0, 3.0, 2.0],
+        }
+    )
     c = shares.concentration(homes)
     assert c.top_home == "H-0001" and c.top_home_share == pytest.approx(10 / 15)
     expected = rates.poisson_rate(5, 5.0)
@@ -101,13 +111,15 @@ def test_category_shares_by_cause_and_resemblance():
 
 
 def test_homes_above_target_counts_clearly_above_only_when_interval_is_above():
-    homes = pd.DataFrame({
-        "home_code": ["H-0001", "H-0002", "H-0003", "H-0004"],
-        # 12 in 2 home-months: lower limit 3.1 > 1 (clearly above); 2 in 1: above but not clearly;
-        # 0 in 3: below; no monitored time: not counted.
-        "false_alarms": [12, 2, 0, 1],
-        "home_months": [2.0, 1.0, 3.0, 0.0],
-    })
+    homes = pd.DataFrame(
+        {
+            "home_code": ["H-0001", "H-0002", "H-0003", "H-0004"],
+            # 12 in 2 home-months: lower limit 3.1 > 1 (clearly above); 2 in 1: above but not clearly;
+            # 0 in 3: below; no monitored time: not counted.
+            "false_alarms": [12, 2, 0, 1],
+            "home_months": [2.0, 1.0, 3.0, 0.0],
+        }
+    )
     res = shares.homes_above_target(shares.home_pareto(homes), 1.0)
     assert (res.homes, res.above, res.clearly_above) == (3, 2, 1)
     assert res.clearly_above_codes == ("H-0001",)

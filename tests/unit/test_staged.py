@@ -14,33 +14,53 @@ T0 = pd.Timestamp("2026-11-24 10:00:00", tz="UTC")
 
 
 def _events(*rows):
-    return pd.DataFrame([
-        {"staged_event_id": i, "home_id": h, "sound_class": c, "started_at": T0 + pd.Timedelta(seconds=s),
-         "ended_at": T0 + pd.Timedelta(seconds=e), "source": "test tone, hallway"}
-        for i, h, c, s, e in rows])
+    return pd.DataFrame(
+        [
+            {
+                "staged_event_id": i,
+                "home_id": h,
+                "sound_class": c,
+                "started_at": T0 + pd.Timedelta(seconds=s),
+                "ended_at": T0 + pd.Timedelta(seconds=e),
+                "source": "test tone, hallway",
+            }
+            for i, h, c, s, e in rows
+        ]
+    )
 
 
 def _alerts(*rows):
-    return pd.DataFrame([
-        {"alert_id": i, "device_id": d, "sound_class": c, "detected_at": T0 + pd.Timedelta(seconds=s), "score": sc}
-        for i, d, c, s, sc in rows])
+    return pd.DataFrame(
+        [
+            {
+                "alert_id": i,
+                "device_id": d,
+                "sound_class": c,
+                "detected_at": T0 + pd.Timedelta(seconds=s),
+                "score": sc,
+            }
+            for i, d, c, s, sc in rows
+        ]
+    )
 
 
-INSTALLS = pd.DataFrame({
-    "device_id": [1, 2, 3],
-    "home_id": [10, 10, 20],
-    "installed_at": [T0 - pd.Timedelta(days=30)] * 3,
-    "removed_at": [pd.NaT] * 3,
-})
+INSTALLS = pd.DataFrame(
+    {
+        "device_id": [1, 2, 3],
+        "home_id": [10, 10, 20],
+        "installed_at": [T0 - pd.Timedelta(days=30)] * 3,
+        "removed_at": [pd.NaT] * 3,
+    }
+)
 
 
 def test_window_edges_are_inclusive_at_the_tolerance():
     ev = _events((1, 10, "smoke_alarm", 0, 60))
     al = _alerts(
-        (100, 1, "smoke_alarm", -30.0, 0.9),   # exactly start - 30 s: matched
-        (101, 1, "smoke_alarm", -30.5, 0.9),   # just before: not matched
-        (102, 1, "smoke_alarm", 90.0, 0.8),    # exactly end + 30 s: matched
-        (103, 1, "smoke_alarm", 90.5, 0.8),    # just after: not matched
+        (100, 1, "smoke_alarm", -30.0, 0.9),  # exactly start - 30 s: matched
+        (101, 1, "smoke_alarm", -30.5, 0.9),  # just before: not matched
+        (102, 1, "smoke_alarm", 90.0, 0.8),  # exactly end + 30 s: matched
+        (103, 1, "smoke_alarm", 90.5, 0.8),  # just after: not matched
     )
     m = staged.match(ev, al, INSTALLS)
     assert sorted(m.matches["alert_id"]) == [100, 102]
@@ -77,12 +97,25 @@ def test_two_devices_in_one_home_both_detect_first_gives_latency():
 
 def test_device_in_another_home_or_not_yet_installed_does_not_detect():
     ev = _events((1, 10, "smoke_alarm", 0, 60))
-    installs = pd.concat([INSTALLS, pd.DataFrame({
-        "device_id": [4], "home_id": [10], "installed_at": [T0 + pd.Timedelta(seconds=30)],
-        "removed_at": [pd.NaT]})], ignore_index=True)
-    al = _alerts((100, 3, "smoke_alarm", 10.0, 0.9),   # device 3 is in home 20
-                 (101, 4, "smoke_alarm", 10.0, 0.9),   # device 4 installed 20 s later
-                 (102, 4, "smoke_alarm", 40.0, 0.9))   # ...and detects once installed
+    installs = pd.concat(
+        [
+            INSTALLS,
+            pd.DataFrame(
+                {
+                    "device_id": [4],
+                    "home_id": [10],
+                    "installed_at": [T0 + pd.Timedelta(seconds=30)],
+                    "removed_at": [pd.NaT],
+                }
+            ),
+        ],
+        ignore_index=True,
+    )
+    al = _alerts(
+        (100, 3, "smoke_alarm", 10.0, 0.9),  # device 3 is in home 20
+        (101, 4, "smoke_alarm", 10.0, 0.9),  # device 4 installed 20 s later
+        (102, 4, "smoke_alarm", 40.0, 0.9),
+    )  # ...and detects once installed
     m = staged.match(ev, al, installs)
     assert m.matches["alert_id"].tolist() == [102]
 
@@ -117,8 +150,9 @@ def test_detection_summary():
 
 
 def test_detection_with_no_events():
-    no_events = pd.DataFrame(columns=["staged_event_id", "home_id", "sound_class", "started_at", "ended_at",
-                                      "source"])
+    no_events = pd.DataFrame(
+        columns=["staged_event_id", "home_id", "sound_class", "started_at", "ended_at", "source"]
+    )
     no_alerts = pd.DataFrame(columns=["alert_id", "device_id", "sound_class", "detected_at", "score"])
     m = staged.match(no_events, no_alerts, INSTALLS)
     d = staged.detection(m.events)

@@ -42,8 +42,9 @@ def test_counts_and_detection_at_thresholds_match_brute_force():
 
 
 def test_grouped_scores_with_counts():
-    table = whatif.at_thresholds([0.7, 0.8, 0.9], 10.0, [], [0.7, 0.85], floor=0.7, target=1.0,
-                                 fa_counts=[5, 3, 2])
+    table = whatif.at_thresholds(
+        [0.7, 0.8, 0.9], 10.0, [], [0.7, 0.85], floor=0.7, target=1.0, fa_counts=[5, 3, 2]
+    )
     assert table["false_alarms"].tolist() == [10, 2]
     assert table["detected_share"].isna().all()
 
