@@ -3,33 +3,37 @@
 Counts and monitored seconds are summed in SQL (per monitoring window, week and class), so the
 cost grows with homes and weeks, not with alerts and listening segments.
 
-Frames of `PilotData` (all times aware UTC; epoch values are UTC seconds):
+Frames of `PilotData` (times are aware UTC; epoch values are UTC seconds; a missing cause or
+resemblance grade is ""):
 
 - homes: home_id (int), home_code (str), state (str).
-- devices: device_id, serial, hardware_model, firmware (the device's current firmware, str),
-  last_seen_at (datetime or NaT), clock_skew_s (float or NaN).
+- devices: device_id, serial, hardware_model, firmware (the device's current firmware),
+  last_seen_at (datetime, NaT if never), clock_skew_s (float, NaN if unknown).
 - installations: installation_id, device_id, home_id, room, installed_at, removed_at (NaT if open).
 - windows: `exposure.monitored_windows` (window_id, installation_id, device_id, home_id, room,
-  started_at, ended_at) plus hardware_model and firmware of the device.
+  started_at, ended_at) plus the device's hardware_model and firmware.
 - monitored: window_id, bucket (local ISO week index, see `trend`), seconds (float).
 - counted: window_id, period ("week" | "before"), sound_class, outcome, cause, resemblance, alerts:
   alerts detected inside a monitored window while their device was listening. outcome is
   "false_alarm" | "confirmed" | "unsure" | "unusable" (final verdicts) or "pending".
 - by_week: week_index, sound_class, outcome, alerts (counted alerts only).
-- fa_scores: period, sound_class, score_milli (floor(1000 x score)), alerts; false alarms only.
-- score_floors: sound_class, firmware, min_score over every alert the firmware sent.
+- fa_scores: period, sound_class, score_milli (floor(1000 x score)), alerts; counted false alarms.
+- score_floors: sound_class, firmware (as sent with the alert), min_score.
 - not_counted: period, sound_class, reason ("unassigned" | "not_monitored" | "offline"), alerts.
 - staged_events: staged_event_id, home_id, sound_class, started_at, ended_at, source.
-- staged_alerts: one row per alert that may detect a staged event, with alert_id, device_id,
-  sound_class, detected_at (clock skew corrected), score, window_id, counted (bool), period,
-  week_index, outcome, cause, resemblance, score_milli.
-
-A missing cause or resemblance grade is "" in every frame.
+- staged_alerts: alerts that may detect a staged event (same class, device installed in the
+  event's home, near its time): alert_id, device_id, home_id, sound_class, detected_at (clock skew
+  corrected, exact), score, window_id, counted (bool), period, week_index, outcome, cause,
+  resemblance, score_milli.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import logging
+import secrets
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
 
@@ -45,8 +49,9 @@ from server.devices.models import Alert, AlertState, Device, ListeningSegment
 from server.households.models import Home, HomeState, HomeStateChange, Installation, StagedEvent
 from server.trials.models import Trial
 
+log = logging.getLogger(__name__)
+
 EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
-# Alerts and listening are bucketed into local weeks; times are epoch seconds inside SQL.
 Expr = ColumnElement[Any]
 
 
@@ -81,7 +86,7 @@ class PilotData:
 def _epoch_s(dialect: str, col: Any) -> Expr:
     """Seconds since 1970 (UTC) of a UTCDateTime column, as a float."""
     if dialect == "sqlite":
-        # 2440587.5 is the Julian day number of 1970-01-01 00:00 UTC.
+        # 2440587.5 is the Julian day of 1970-01-01 00:00 UTC; julianday() keeps milliseconds.
         return (sa.func.julianday(col) - 2440587.5) * 86400.0
     return sa.cast(seconds_between(dialect, col, sa.literal(EPOCH, UTCDateTime)), sa.Float)
 
@@ -117,38 +122,58 @@ def _local_week(dialect: str, epoch: Any, steps: list[trend.OffsetStep]) -> Expr
     if len(steps) == 1:
         local = epoch + steps[0].offset_s
     else:
-        whens = [
-            (epoch < nxt.from_s, epoch + cur.offset_s) for cur, nxt in zip(steps, steps[1:], strict=False)
-        ]
-        local = sa.case(*whens, else_=epoch + steps[-1].offset_s)
-    return _floor_int(dialect, (local + trend.MONDAY_SHIFT_S) / float(trend.WEEK_S))
+        pairs = zip(steps, steps[1:], strict=False)
+        local = sa.case(
+            *[(epoch < nxt.from_s, epoch + cur.offset_s) for cur, nxt in pairs],
+            else_=epoch + steps[-1].offset_s,
+        )
+    week: Expr = _floor_int(dialect, (local + trend.MONDAY_SHIFT_S) / float(trend.WEEK_S))
+    return week
 
 
-def _windows_cte(windows: pd.DataFrame) -> Any:
-    """The monitored windows as a VALUES list of numbers (no bind parameters, so no count limit).
+@contextmanager
+def _window_table(session: Session, windows: pd.DataFrame) -> Iterator[sa.Table]:
+    """The monitored windows as a temporary table indexed by device and start.
 
-    Every value is an int or float we computed, rendered with repr(), so nothing from users is
-    spliced into the SQL.
+    Alerts are then read in one sequential pass, each finding its window through the index; a
+    VALUES list would be scanned once per alert on SQLite.
     """
-    rows = [
-        (int(r.window_id), int(r.device_id), float(r.ws), float(r.we))
-        for r in windows.assign(
-            ws=trend.epoch_s(windows["started_at"]), we=trend.epoch_s(windows["ended_at"])
-        ).itertuples()
-    ]
-    if not rows:
-        rows = [(-1, -1, 0.0, 0.0)]  # matches no device; VALUES cannot be empty
-    values = ", ".join(f"({w}, {d}, {a!r}, {b!r})" for w, d, a, b in rows)
-    text = sa.text(
-        "SELECT v.column1 AS window_id, v.column2 AS device_id, CAST(v.column3 AS FLOAT) AS ws, "
-        f"CAST(v.column4 AS FLOAT) AS we FROM (VALUES {values}) AS v"
+    name = f"analytics_window_{secrets.token_hex(6)}"
+    table = sa.Table(
+        name,
+        sa.MetaData(),
+        sa.Column("window_id", sa.Integer, primary_key=True, autoincrement=False),
+        sa.Column("device_id", sa.Integer, nullable=False),
+        sa.Column("ws", sa.Float, nullable=False),
+        sa.Column("we", sa.Float, nullable=False),
+        sa.Index(f"ix_{name}", "device_id", "ws"),
+        prefixes=["TEMPORARY"],
     )
-    return text.columns(
-        sa.column("window_id", sa.Integer),
-        sa.column("device_id", sa.Integer),
-        sa.column("ws", sa.Float),
-        sa.column("we", sa.Float),
-    ).cte("w")
+    conn = session.connection()
+    table.create(conn)
+    try:
+        if len(windows):
+            rows = pd.DataFrame(
+                {
+                    "window_id": windows["window_id"].astype(int),
+                    "device_id": windows["device_id"],
+                    "ws": trend.epoch_s(windows["started_at"]),
+                    "we": trend.epoch_s(windows["ended_at"]),
+                }
+            )
+            conn.execute(
+                table.insert(),
+                [
+                    {k: (int(v) if k in ("window_id", "device_id") else float(v)) for k, v in r.items()}
+                    for r in rows.to_dict("records")
+                ],
+            )
+        yield table
+    finally:
+        try:
+            table.drop(conn)
+        except sa.exc.DBAPIError:  # an aborted transaction: its rollback removes the table anyway
+            log.warning("could not drop temporary table %s", name, exc_info=True)
 
 
 def _frame(result: sa.Result[Any], columns: list[str]) -> pd.DataFrame:
@@ -157,6 +182,13 @@ def _frame(result: sa.Result[Any], columns: list[str]) -> pd.DataFrame:
     if not rows:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
     return pd.DataFrame(dict(zip(columns, (list(col) for col in zip(*rows, strict=True)), strict=True)))
+
+
+def _blank_missing(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+    """Missing causes and grades as "" (a NULL would drop out of, or split, pandas group keys)."""
+    for col in columns:
+        frame[col] = frame[col].fillna("").astype(str)
+    return frame
 
 
 def trial_window(trial: Trial, week: trend.Week, now: dt.datetime) -> tuple[dt.datetime, dt.datetime]:
@@ -174,7 +206,6 @@ def load_pilot(
     """Everything the weekly summary needs for `trial`, from its start to the end of `week`."""
     dialect = session.get_bind().dialect.name
     start, end = trial_window(trial, week, now)
-    tz = trial.timezone
     homes = _frame(
         session.execute(
             sa.select(Home.id, Home.code, Home.state).where(Home.trial_id == trial.id).order_by(Home.code)
@@ -214,47 +245,10 @@ def load_pilot(
         "installed_at",
         "removed_at",
     )
-    changes = _frame(
-        session.execute(
-            sa.select(
-                HomeStateChange.home_id,
-                HomeStateChange.at,
-                HomeStateChange.to_state,
-                HomeStateChange.listening,
-                HomeStateChange.id,
-            )
-            .join(Home, Home.id == HomeStateChange.home_id)
-            .where(Home.trial_id == trial.id)
-            .order_by(HomeStateChange.home_id, HomeStateChange.at, HomeStateChange.id)
-        ),
-        ["home_id", "at", "to_state", "listening", "id"],
+    windows = exposure.monitored_windows(
+        installations, _home_intervals(session, trial, homes, end), start=start, end=end
     )
-    # A home without a recorded history has been in its current state since it was created.
-    silent = homes[~homes["home_id"].isin(changes["home_id"])]
-    if len(silent):
-        created = dict(
-            session.execute(
-                sa.select(Home.id, Home.created_at).where(Home.id.in_(silent["home_id"].tolist()))
-            ).all()
-        )
-        extra = pd.DataFrame(
-            {
-                "home_id": silent["home_id"],
-                "at": silent["home_id"].map(created),
-                "to_state": silent["state"],
-                "listening": True,
-                "id": 0,
-            }
-        )
-        changes = pd.concat([changes, extra], ignore_index=True) if len(changes) else extra
-    intervals = exposure.home_intervals(changes, until=end, monitored_states=HomeState.monitored)
-    windows = exposure.monitored_windows(installations, intervals, start=start, end=end)
     windows = windows.merge(devices[["device_id", "hardware_model", "firmware"]], on="device_id", how="left")
-
-    steps = trend.utc_offset_steps(tz, start, end)
-    w = _windows_cte(windows)
-    monitored = _monitored(session, dialect, w, steps, tz)
-    parts = _alert_parts(session, dialect, trial, w, steps, start, end, week)
     staged_events = trend.as_utc(
         _frame(
             session.execute(
@@ -278,17 +272,22 @@ def load_pilot(
         "started_at",
         "ended_at",
     )
-    staged_alerts = _staged_alerts(
-        session,
-        dialect,
-        trial,
-        w,
-        steps,
-        start,
-        end,
-        week,
-        margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
-    )
+
+    steps = trend.utc_offset_steps(trial.timezone, start, end)
+    with _window_table(session, windows) as w:
+        monitored = _monitored(session, dialect, w, steps, trial.timezone)
+        parts = _alert_parts(session, dialect, trial, w, steps, start, end, week)
+        staged_alerts = _staged_alerts(
+            session,
+            dialect,
+            trial,
+            w,
+            steps,
+            start,
+            end,
+            week,
+            margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
+        )
     return PilotData(
         trial=trial,
         week=week,
@@ -310,40 +309,80 @@ def load_pilot(
     )
 
 
+def _home_intervals(session: Session, trial: Trial, homes: pd.DataFrame, end: dt.datetime) -> pd.DataFrame:
+    """Each home's monitored stretches from its recorded lifecycle."""
+    changes = _frame(
+        session.execute(
+            sa.select(
+                HomeStateChange.home_id,
+                HomeStateChange.at,
+                HomeStateChange.to_state,
+                HomeStateChange.listening,
+            )
+            .join(Home, Home.id == HomeStateChange.home_id)
+            .where(Home.trial_id == trial.id)
+            .order_by(HomeStateChange.home_id, HomeStateChange.at, HomeStateChange.id)
+        ),
+        ["home_id", "at", "to_state", "listening"],
+    )
+    # A home without a recorded history has been in its current state since it was created.
+    bare = homes[~homes["home_id"].isin(changes["home_id"])]
+    if len(bare):
+        created = dict(
+            session.execute(
+                sa.select(Home.id, Home.created_at).where(Home.id.in_(bare["home_id"].tolist()))
+            ).all()
+        )
+        extra = pd.DataFrame(
+            {
+                "home_id": bare["home_id"],
+                "at": bare["home_id"].map(created),
+                "to_state": bare["state"],
+                "listening": True,
+            }
+        )
+        changes = pd.concat([changes, extra], ignore_index=True) if len(changes) else extra
+    return exposure.home_intervals(changes, until=end, monitored_states=HomeState.monitored)
+
+
 def _monitored(
-    session: Session, dialect: str, w: Any, steps: list[trend.OffsetStep], tz: str
+    session: Session, dialect: str, w: sa.Table, steps: list[trend.OffsetStep], tz: str
 ) -> pd.DataFrame:
     """Listening seconds per window and local week: segments clipped to the windows, in SQL."""
     s = ListeningSegment.__table__.c
-    a = sql_greatest(dialect, _epoch_s(dialect, s.started_at), w.c.ws)
-    b = sql_least(dialect, _epoch_s(dialect, s.ended_at), w.c.we)
+    seg_a, seg_b = _epoch_s(dialect, s.started_at), _epoch_s(dialect, s.ended_at)
     pieces = (
-        sa.select(w.c.window_id, a.label("a"), b.label("b"))
-        .select_from(w.join(ListeningSegment.__table__, s.device_id == w.c.device_id))
-        # Index-friendly bounds (a second of slack each side); the clip above is exact.
-        .where(
-            s.started_at < _from_epoch(dialect, w.c.we + 1.0), s.ended_at > _from_epoch(dialect, w.c.ws - 1.0)
+        sa.select(
+            w.c.window_id,
+            sql_greatest(dialect, seg_a, w.c.ws).label("a"),
+            sql_least(dialect, seg_b, w.c.we).label("b"),
         )
-        # OFFSET 0 keeps the subquery from being merged into the outer query (both SQLite and
-        # PostgreSQL), so a and b are computed once per piece rather than once per use.
+        .select_from(
+            ListeningSegment.__table__.join(
+                w, (s.device_id == w.c.device_id) & (seg_a < w.c.we) & (seg_b > w.c.ws)
+            )
+        )
+        # OFFSET 0 keeps the subquery from being merged into the outer query (SQLite and
+        # PostgreSQL alike), so a and b are computed once per piece, not once per use.
         .offset(0)
         .subquery("pieces")
     )
-    first = _local_week(dialect, pieces.c.a, steps)
-    last = _local_week(dialect, pieces.c.b, steps)
-    rows = session.execute(
-        sa.select(
-            pieces.c.window_id,
-            first.label("first_bucket"),
-            last.label("last_bucket"),
-            sa.func.count().label("pieces"),
-            sa.func.sum(pieces.c.a),
-            sa.func.sum(pieces.c.b),
-        )
-        .where(pieces.c.b > pieces.c.a)
-        .group_by(pieces.c.window_id, first, last)
+    first, last = _local_week(dialect, pieces.c.a, steps), _local_week(dialect, pieces.c.b, steps)
+    agg = _frame(
+        session.execute(
+            sa.select(
+                pieces.c.window_id,
+                first,
+                last,
+                sa.func.count(),
+                sa.func.sum(pieces.c.a),
+                sa.func.sum(pieces.c.b),
+            )
+            .where(pieces.c.b > pieces.c.a)
+            .group_by(pieces.c.window_id, first, last)
+        ),
+        ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"],
     )
-    agg = _frame(rows, ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"])
     agg = agg.astype(
         {
             "window_id": np.int64,
@@ -360,26 +399,24 @@ def _monitored(
 def _alert_rows(
     dialect: str,
     trial: Trial,
-    w: Any,
+    w: sa.Table,
     steps: list[trend.OffsetStep],
     start: dt.datetime,
     end: dt.datetime,
     week: trend.Week,
     *where: Any,
-    in_windows_only: bool,
-) -> Any:
-    """Per-alert derived columns as a SELECT: effective time t (clock skew corrected, epoch s), the
-    monitored window holding it, whether the device was listening then (counted), period, local
-    week, outcome and score in thousandths.
-
-    in_windows_only: join the windows (the large case: the database walks windows and each
-    device's alerts by index) rather than left-join them (small candidate sets only).
-    """
+) -> sa.Select[Any]:
+    """Per-alert derived columns: effective time t (clock skew corrected, epoch s), the monitored
+    window holding it (NULL when none), whether the device was listening then (counted 0/1),
+    period, local week, outcome and the score in thousandths."""
     a = Alert.__table__.c
     t = _epoch_s(dialect, a.detected_at) - sa.func.coalesce(a.clock_skew_s, 0.0)
     t_at = sa.case(
         (a.clock_skew_s.is_(None), a.detected_at),
         else_=_minus_seconds(dialect, a.detected_at, a.clock_skew_s),
+    )
+    outcome = sa.case(
+        (a.state == AlertState.final, sa.func.coalesce(a.final_label, "pending")), else_="pending"
     )
     al = (
         sa.select(
@@ -390,7 +427,7 @@ def _alert_rows(
             a.score,
             a.firmware,
             a.clock_skew_s,
-            _outcome().label("outcome"),
+            outcome.label("outcome"),
             a.final_cause.label("cause"),
             a.final_resemblance.label("resemblance"),
             t.label("t"),
@@ -400,18 +437,17 @@ def _alert_rows(
         .subquery("al")
     )
     seg = ListeningSegment.__table__.c
-    # The segment that started last at or before the alert: the only one that can hold it
-    # (a device's segments do not overlap). One index seek per alert.
+    # The segment that started last at or before the alert is the only one that can hold it
+    # (a device's segments do not overlap): one index seek per alert. Compared as stored values,
+    # not epoch seconds, so that an index holding ended_at too answers it alone.
     seg_end = (
-        sa.select(_epoch_s(dialect, seg.ended_at))
+        sa.select(seg.ended_at)
         .where(seg.device_id == al.c.device_id, seg.started_at <= al.c.t_at)
         .order_by(seg.started_at.desc())
         .limit(1)
         .scalar_subquery()
     )
-    listening = sa.case((w.c.window_id.is_(None), 0), (seg_end >= al.c.t, 1), else_=0)
-    on = (w.c.device_id == al.c.device_id) & (al.c.t >= w.c.ws) & (al.c.t < w.c.we)
-    joined = w.join(al, on) if in_windows_only else al.outerjoin(w, on)
+    listening = sa.case((w.c.window_id.is_(None), 0), (seg_end >= al.c.t_at, 1), else_=0)
     return (
         sa.select(
             al.c.id,
@@ -424,31 +460,21 @@ def _alert_rows(
             al.c.outcome,
             al.c.cause,
             al.c.resemblance,
-            al.c.t,
             w.c.window_id,
             listening.label("counted"),
-            *_period_columns(dialect, al.c, steps, week),
+            sa.case((al.c.t >= week.start_at.timestamp(), "week"), else_="before").label("period"),
+            _local_week(dialect, al.c.t, steps).label("week_index"),
+            # The epsilon keeps a score like 0.57 (569.999... in binary) in bucket 570.
+            _floor_int(dialect, al.c.score * 1000.0 + 1e-6).label("score_milli"),
         )
-        .select_from(joined)
+        .select_from(
+            al.outerjoin(w, (w.c.device_id == al.c.device_id) & (al.c.t >= w.c.ws) & (al.c.t < w.c.we))
+        )
         .where(al.c.t >= start.timestamp(), al.c.t < end.timestamp())
     )
 
 
-def _outcome() -> Expr:
-    a = Alert.__table__.c
-    return sa.case((a.state == AlertState.final, sa.func.coalesce(a.final_label, "pending")), else_="pending")
-
-
-def _period_columns(dialect: str, c: Any, steps: list[trend.OffsetStep], week: trend.Week) -> list[Expr]:
-    return [
-        sa.case((c.t >= week.start_at.timestamp(), "week"), else_="before").label("period"),
-        _local_week(dialect, c.t, steps).label("week_index"),
-        # The epsilon keeps a score like 0.57 (569.99999... in binary) in bucket 570.
-        _floor_int(dialect, c.score * 1000.0 + 1e-6).label("score_milli"),
-    ]
-
-
-# The grouping keys of every part of the alert statement (a part leaves the others NULL).
+# The grouping keys of the parts of the alert statement (a part leaves the others NULL).
 _PART_KEYS: dict[str, Any] = {
     "window_id": sa.Integer,
     "period": sa.String,
@@ -468,31 +494,17 @@ def _alert_parts(
     session: Session,
     dialect: str,
     trial: Trial,
-    w: Any,
+    w: sa.Table,
     steps: list[trend.OffsetStep],
     start: dt.datetime,
     end: dt.datetime,
     week: trend.Week,
 ) -> dict[str, Any]:
-    """The alert aggregates in one statement, so the per-alert work (listening check) runs once.
+    """The alert aggregates in one statement over one pass of the alerts (materialised once)."""
+    base = _alert_rows(dialect, trial, w, steps, start, end, week).cte("base").prefix_with("MATERIALIZED")
+    c = base.c
 
-    `base` holds alerts inside a monitored window; `every` all of the trial's alerts in the period
-    (cheap: no window, no listening check). Alerts outside every window are the difference.
-    """
-    base = (
-        _alert_rows(dialect, trial, w, steps, start, end, week, in_windows_only=True)
-        .cte("base")
-        .prefix_with("MATERIALIZED")
-    )
-    a = Alert.__table__.c
-    t = (_epoch_s(dialect, a.detected_at) - sa.func.coalesce(a.clock_skew_s, 0.0)).label("t")
-    ev = (
-        sa.select(a.home_id, a.sound_class, a.score, a.clock_skew_s, t)
-        .where(a.trial_id == trial.id)
-        .subquery("ev")
-    )
-
-    def part(name: str, src: Any, keys: dict[str, Any], where: Any = None) -> Any:
+    def part(name: str, keys: dict[str, Any], where: Any = None) -> sa.Select[Any]:
         cols: list[Any] = [sa.literal(name).label("part")]
         cols += [
             keys[k].label(k) if k in keys else sa.cast(sa.null(), typ).label(k)
@@ -500,23 +512,18 @@ def _alert_parts(
         ]
         cols += [
             sa.func.count().label("alerts"),
-            sa.cast(sa.func.min(src.c.score), sa.Float).label("min_score"),
-            sa.cast(sa.func.max(sa.func.abs(sa.func.coalesce(src.c.clock_skew_s, 0.0))), sa.Float).label(
+            sa.cast(sa.func.min(c.score), sa.Float).label("min_score"),
+            sa.cast(sa.func.max(sa.func.abs(sa.func.coalesce(c.clock_skew_s, 0.0))), sa.Float).label(
                 "max_skew"
             ),
         ]
-        q = sa.select(*cols).select_from(src)
-        if where is not None:
-            q = q.where(where)
-        return q.group_by(*keys.values())
+        q = sa.select(*cols).select_from(base)
+        return (q if where is None else q.where(where)).group_by(*keys.values())
 
-    c = base.c
     assigned = sa.case((c.home_id.is_(None), 0), else_=1)
-    period = _period_columns(dialect, ev.c, steps, week)[0]
     stmt = sa.union_all(
         part(
             "main",
-            base,
             {
                 "window_id": c.window_id,
                 "period": c.period,
@@ -531,34 +538,21 @@ def _alert_parts(
         ),
         part(
             "by_week",
-            base,
             {"week_index": c.week_index, "sound_class": c.sound_class, "outcome": c.outcome},
             c.counted == 1,
         ),
         part(
             "fa_scores",
-            base,
             {"period": c.period, "sound_class": c.sound_class, "score_milli": c.score_milli},
             (c.counted == 1) & (c.outcome == "false_alarm"),
-        ),
-        part(
-            "every",
-            ev,
-            {
-                "period": period,
-                "sound_class": ev.c.sound_class,
-                "assigned": sa.case((ev.c.home_id.is_(None), 0), else_=1),
-            },
-            (ev.c.t >= start.timestamp()) & (ev.c.t < end.timestamp()),
         ),
     )
     df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score", "max_skew"])
 
     def pick(name: str, keep: list[str]) -> pd.DataFrame:
         out = df.loc[df["part"] == name, keep].reset_index(drop=True)
-        for col in ("window_id", "week_index", "score_milli", "alerts", "assigned", "counted"):
-            if col in keep:
-                out[col] = out[col].astype(np.int64)
+        for col in {"week_index", "score_milli", "alerts", "assigned", "counted"} & set(keep):
+            out[col] = out[col].astype(np.int64)
         return out
 
     main = _blank_missing(
@@ -581,58 +575,40 @@ def _alert_parts(
         ),
         ["cause", "resemblance"],
     )
-    counted = main[main["counted"] == 1]
-    floors = (
-        main.groupby(["sound_class", "firmware"], as_index=False)["min_score"]
-        .min()
-        .astype({"min_score": np.float64})
-    )
-    keys = ["period", "sound_class", "assigned"]
-    every = pick("every", [*keys, "alerts"]).set_index(keys)["alerts"]
-    inside = main.groupby(keys)["alerts"].sum()
+    counted = main[main["counted"] == 1].astype({"window_id": np.int64})
+    outside = main[main["counted"] == 0]
     # Outside every window: unassigned (no installation at ingest) or not monitored (the home's
-    # state or the installation dates exclude the time). Inside one but not listening: offline.
-    outside = every.sub(inside, fill_value=0).reset_index()
-    outside["reason"] = np.where(outside["assigned"] == 1, "not_monitored", "unassigned")
-    offline = main[main["counted"] == 0].assign(
-        reason=lambda f: np.where(f["assigned"] == 1, "offline", "unassigned")
+    # state or the installation dates exclude the time). Inside one, not listening: offline.
+    reason = np.where(
+        outside["assigned"] == 0,
+        "unassigned",
+        np.where(outside["window_id"].isna(), "not_monitored", "offline"),
     )
-    reasons = ["period", "sound_class", "reason"]
     not_counted = (
-        pd.concat([outside[[*reasons, "alerts"]], offline[[*reasons, "alerts"]]], ignore_index=True)
-        .groupby(reasons, as_index=False)["alerts"]
+        outside.assign(reason=reason)
+        .groupby(["period", "sound_class", "reason"], as_index=False)["alerts"]
         .sum()
     )
-    not_counted = not_counted[not_counted["alerts"] > 0].astype({"alerts": np.int64}).reset_index(drop=True)
-    skew = main["max_skew"].max() if len(main) else 0.0
+    skew = float(main["max_skew"].max()) if len(main) else 0.0
     return {
-        "counted": (
-            counted.groupby(
-                ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"],
-                as_index=False,
-                dropna=False,
-            )["alerts"].sum()
-        ),
+        "counted": counted.groupby(
+            ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"], as_index=False
+        )["alerts"].sum(),
         "by_week": pick("by_week", ["week_index", "sound_class", "outcome", "alerts"]),
         "fa_scores": pick("fa_scores", ["period", "sound_class", "score_milli", "alerts"]),
-        "score_floors": floors,
+        "score_floors": main.groupby(["sound_class", "firmware"], as_index=False)["min_score"]
+        .min()
+        .astype({"min_score": np.float64}),
         "not_counted": not_counted,
-        "max_skew_s": 0.0 if pd.isna(skew) else float(skew),
+        "max_skew_s": 0.0 if np.isnan(skew) else skew,
     }
-
-
-def _blank_missing(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
-    """Missing causes and grades as "" (a NULL would drop out of, or split, pandas group keys)."""
-    for col in columns:
-        frame[col] = frame[col].fillna("").astype(str)
-    return frame
 
 
 def _staged_alerts(
     session: Session,
     dialect: str,
     trial: Trial,
-    w: Any,
+    w: sa.Table,
     steps: list[trend.OffsetStep],
     start: dt.datetime,
     end: dt.datetime,
@@ -654,8 +630,8 @@ def _staged_alerts(
         .offset(0)
         .subquery("bounds")
     )
-    # Walk the events and each one's short time range on the (trial, detected_at) index.
     installed = sa.exists().where(i.device_id == a.device_id, i.home_id == bounds.c.home_id)
+    # Walk the events, each one's short time range on the (trial, detected_at) index.
     near = (
         sa.select(a.id)
         .select_from(
@@ -666,9 +642,7 @@ def _staged_alerts(
         )
         .where(a.sound_class == bounds.c.sound_class, installed)
     )
-    rows = _alert_rows(
-        dialect, trial, w, steps, start, end, week, a.id.in_(near), in_windows_only=False
-    ).subquery()
+    rows = _alert_rows(dialect, trial, w, steps, start, end, week, a.id.in_(near)).subquery()
     frame = _frame(
         session.execute(
             sa.select(

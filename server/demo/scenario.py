@@ -500,6 +500,7 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
     _plan_sources(b, listening, works, days)
     _plan_one_offs(b, listening)
     _ensure_heard(b, listening, ("mover_from", "mover_to", "erased"))
+    _ensure_cockatoo_leads(b, listening)
     _plan_staged(b, listening, homes)
     b.detections.sort(key=lambda d: (d.at, d.serial))
     _ensure_ambiguous(b)
@@ -621,7 +622,8 @@ def _plan_outages(b: _Builder, rng: np.random.Generator, days: float) -> None:
         nights = 1 + int(rng.integers(0, 3))
         for _ in range(nights):
             for _attempt in range(10):
-                day = (p.installed_at + dt.timedelta(days=float(rng.uniform(1.0, max(1.5, days - 2.0))))).date()
+                after = dt.timedelta(days=float(rng.uniform(1.0, max(1.5, days - 2.0))))
+                day = (p.installed_at + after).date()
                 s = local_time(day, float(rng.uniform(22.5, 23.8)))
                 e = local_time(day + dt.timedelta(days=1), float(rng.uniform(5.5, 7.5)))
                 if s > p.installed_at + dt.timedelta(hours=6) and e < b.end - dt.timedelta(hours=1):
@@ -801,6 +803,21 @@ def _ensure_heard(b: _Builder, listening: list[_Window], keys: Sequence[str], at
             placed = _place_event(b, _windows_of(listening, key), src.hours, tries=200)
             if placed:
                 _add_detection(b, src, *placed)
+
+
+def _ensure_cockatoo_leads(b: _Builder, listening: list[_Window], margin: int = 3) -> None:
+    """The cockatoo's home leads the baby-cry false alarms by a clear margin at every size."""
+    counts: dict[str, int] = {}
+    for d in b.detections:
+        if d.sound_class == "baby_cry" and d.truth_label == "false_alarm":
+            counts[d.home_key] = counts.get(d.home_key, 0) + 1
+    others = max((n for k, n in counts.items() if k != "cockatoo"), default=0)
+    src = SOURCES["cockatoo"]
+    windows = _windows_of(listening, "cockatoo")
+    for _ in range(max(0, others + margin - counts.get("cockatoo", 0))):
+        placed = _place_event(b, windows, src.hours, tries=200)
+        if placed:
+            _add_detection(b, src, *placed)
 
 
 def _ensure_ambiguous(b: _Builder, at_least: int = 2) -> None:

@@ -19,6 +19,7 @@ import multiprocessing
 import os
 import secrets
 import shutil
+import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -175,7 +176,8 @@ def _make_clip(job: tuple[str, int]) -> tuple[bytes, float]:
 class _ClipMaker:
     """Clips in plan order, synthesised by a forked worker a little ahead of the replay.
 
-    The worker is forked before the app and its threads exist, and it only runs numpy.
+    The worker is forked before the app and its threads exist, and it only runs numpy; in a
+    process that already has other threads (where fork is unsafe) the clips are made inline.
     """
 
     AHEAD = 48
@@ -185,7 +187,8 @@ class _ClipMaker:
         self.pool: cf.ProcessPoolExecutor | None = None
         self.futures: dict[int, cf.Future[tuple[bytes, float]]] = {}
         self.submitted = 0
-        if workers > 0 and len(self.jobs) >= 16 and "fork" in multiprocessing.get_all_start_methods():
+        if (workers > 0 and len(self.jobs) >= 16 and threading.active_count() == 1
+                and "fork" in multiprocessing.get_all_start_methods()):
             self.pool = cf.ProcessPoolExecutor(max_workers=workers,
                                                mp_context=multiprocessing.get_context("fork"))
             self._top_up(0)

@@ -125,25 +125,23 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     # invalid_request, like every other heartbeat body error.
     _check_time_window(beat.sent_at, now, settings, "sent_at", InvalidRequest)
     _lock_device(session, device)
-    # Read before changing the device, so that all the changes go out in one flush.
-    seg = session.scalar(
-        select(ListeningSegment)
-        .where(ListeningSegment.device_id == device.id, ListeningSegment.is_open.is_(True))
-        .order_by(ListeningSegment.started_at.desc()).limit(1))
+    gap = dt.timedelta(seconds=device.heartbeat_interval_s * settings.heartbeat_gap_factor)
+    open_seg = (ListeningSegment.device_id == device.id) & ListeningSegment.is_open.is_(True)
+    # Statements rather than loaded rows: the usual beat extends the open segment in one UPDATE.
+    # (One device's beats are serialised by _lock_device, so at most one segment is open.)
+    if beat.listening:
+        extended = session.execute(
+            update(ListeningSegment)
+            .where(open_seg, ListeningSegment.ended_at <= now, ListeningSegment.ended_at >= now - gap)
+            .values(ended_at=now, heartbeats=ListeningSegment.heartbeats + 1)).rowcount
+        if not extended:
+            session.execute(update(ListeningSegment).where(open_seg).values(is_open=False))
+            session.add(ListeningSegment(device_id=device.id, started_at=now, ended_at=now, is_open=True))
+    else:
+        session.execute(update(ListeningSegment).where(open_seg).values(is_open=False))
     device.last_seen_at = now
     device.firmware = beat.firmware
     device.clock_skew_s = round((beat.sent_at - now).total_seconds(), 3)
-    gap = dt.timedelta(seconds=device.heartbeat_interval_s * settings.heartbeat_gap_factor)
-    if beat.listening:
-        if seg is not None and dt.timedelta(0) <= now - seg.ended_at <= gap:
-            seg.ended_at = now
-            seg.heartbeats += 1
-        else:
-            if seg is not None:
-                seg.is_open = False
-            session.add(ListeningSegment(device_id=device.id, started_at=now, ended_at=now, is_open=True))
-    elif seg is not None:
-        seg.is_open = False
     session.flush()
     r = rng or random
     jitter = settings.heartbeat_jitter
@@ -285,13 +283,11 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
                           f"{info.duration_s:.3f} s.", field="clip_offset_s")
     size = upload.size
     key = store.put_file(upload.path, sha)  # durable before the row commits
-    clip = _get_or_create_clip(session, sha, key, info, size)
     skew = device.clock_skew_s if device.clock_skew_s and abs(device.clock_skew_s) >= 1.0 else None
     alert = Alert(device_id=device.id, trial_id=device.trial_id, event_id=event_id,
                   sound_class=meta.sound_class, score=meta.score, detected_at=meta.detected_at,
                   detected_at_text=str(data.get("detected_at"))[:64], clock_skew_s=skew,
-                  received_at=now, firmware=meta.firmware, clip_id=clip.id,
-                  clip_offset_s=meta.clip_offset_s)
+                  received_at=now, firmware=meta.firmware, clip_offset_s=meta.clip_offset_s)
     placed = session.execute(
         select(Installation.id, Installation.home_id)
         .where(Installation.device_id == device.id, Installation.installed_at <= alert.effective_at,
@@ -299,40 +295,43 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
         .order_by(Installation.installed_at.desc()).limit(1)).first()  # as installation_at, columns only
     if placed is not None:
         alert.installation_id, alert.home_id = placed.id, placed.home_id
-    try:
-        with session.begin_nested():
-            session.add(alert)
-            session.flush()
-    except IntegrityError:
-        # A simultaneous upload of the same event_id won the unique constraint.
-        existing = find_alert_by_event(session, device.id, event_id)
-        if existing is None:
-            raise
-        return _duplicate_or_conflict(existing, sha)
-    alert.clip = clip
-    return IngestResult(alert, False)
+    for attempt in (1, 2):
+        clip = _stored_clip(session, sha, key)
+        try:
+            # One savepoint and one flush for both rows (a new clip is inserted first).
+            with session.begin_nested():
+                alert.clip = clip if clip is not None else _new_clip(sha, key, info, size)
+                session.add(alert)
+                session.flush()
+            return IngestResult(alert, False)
+        except IntegrityError:
+            # A simultaneous upload won a unique constraint: this device's event_id (a resend), or
+            # the same bytes from another device (then its clip row is used on the second try).
+            existing = find_alert_by_event(session, device.id, event_id)
+            if existing is not None:
+                return _duplicate_or_conflict(existing, sha)
+            if attempt == 2:
+                raise
+    raise AssertionError("unreachable")
 
 
-def _get_or_create_clip(session: Session, sha: str, key: str, info: audio.ClipInfo, size: int) -> Clip:
+def _stored_clip(session: Session, sha: str, key: str) -> Clip | None:
+    """The clip row for these bytes, brought back if its file had been erased; None for new bytes."""
     clip_id = session.scalar(select(Clip.id).where(Clip.sha256 == sha))  # usually none: new bytes
-    clip = session.get(Clip, clip_id) if clip_id is not None else None
-    if clip is not None:
-        if clip.erased_at is not None:
-            clip.erased_at, clip.erased_reason, clip.storage_key = None, None, key
-        return clip
-    clip = Clip(sha256=sha, storage_key=key, format=info.format, subtype=info.subtype,
+    if clip_id is None:
+        return None
+    clip = session.get(Clip, clip_id)
+    assert clip is not None
+    if clip.erased_at is not None:
+        clip.erased_at, clip.erased_reason, clip.storage_key = None, None, key
+    return clip
+
+
+def _new_clip(sha: str, key: str, info: audio.ClipInfo, size: int) -> Clip:
+    return Clip(sha256=sha, storage_key=key, format=info.format, subtype=info.subtype,
                 sample_rate_hz=info.sample_rate_hz, channels=info.channels, frames=info.frames,
                 duration_s=info.duration_s, peak_dbfs=info.peak_dbfs, rms_dbfs=info.rms_dbfs,
                 clipped_fraction=info.clipped_fraction, size_bytes=size)
-    try:
-        with session.begin_nested():
-            session.add(clip)
-            session.flush()
-    except IntegrityError:
-        clip = session.scalar(select(Clip).where(Clip.sha256 == sha))
-        if clip is None:
-            raise
-    return clip
 
 
 def list_alerts(session: Session, *, limit: int = 200, offset: int = 0, device_id: int | None = None,

@@ -199,7 +199,9 @@ def _listening_allowed() -> ColumnElement[bool]:
 
 @functools.cache
 def _clip_present() -> ColumnElement[bool]:
-    return ~exists().where(Clip.id == Alert.clip_id, Clip.erased_at.is_not(None))
+    # A scalar subquery, looked up by primary key for each alert walked: as NOT EXISTS,
+    # PostgreSQL turns it into an anti-join that reads the whole clip table first.
+    return select(Clip.erased_at).where(Clip.id == Alert.clip_id).scalar_subquery().is_(None)
 
 
 @functools.cache

@@ -80,6 +80,13 @@ def bare_app(url: str, root: Path) -> Any:
     tmp = root / "tmp"
     tmp.mkdir(parents=True, exist_ok=True)
 
+    def fsync_dir(d: Path) -> None:
+        dfd = os.open(d, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+
     def lookup(token: str) -> int | None:
         with engine.connect() as conn:
             return conn.execute(sa.select(device.c.id).where(
@@ -151,12 +158,15 @@ def bare_app(url: str, root: Path) -> Any:
                     if found is not None:
                         os.unlink(name)
                         return found, True
-                    final = root / sha[:2] / sha
-                    final.parent.mkdir(parents=True, exist_ok=True)
+                    # The same two-level content layout as the clip store; a new directory's
+                    # entry is made durable too (fsync of its parent).
+                    final = root / sha[:2] / sha[2:4] / sha
+                    for d in (final.parent.parent, final.parent):
+                        if not d.is_dir():
+                            d.mkdir(exist_ok=True)
+                            fsync_dir(d.parent)
                     os.replace(name, final)
-                    dfd = os.open(final.parent, os.O_RDONLY)
-                    os.fsync(dfd)
-                    os.close(dfd)
+                    fsync_dir(final.parent)
                     new_id = conn.execute(clip.insert().values(
                         device_id=device_id, event_id=event_id, sha256=sha, size_bytes=final.stat().st_size,
                         received_at=time.time())).inserted_primary_key[0]
@@ -435,9 +445,9 @@ def stop_server(proc: subprocess.Popen[bytes]) -> None:
 
 
 def clear_clip_files(data_dir: Path) -> None:
-    """Between measurements: keep the disk small (rows stay; only content files and caches go)."""
-    for sub in (data_dir / "clips").glob("??"):
-        shutil.rmtree(sub, ignore_errors=True)
+    """Between measurements: keep the disk small. Rows and bucket directories stay; files and caches go."""
+    for f in (data_dir / "clips").glob("??/??/*"):
+        f.unlink(missing_ok=True)
     shutil.rmtree(data_dir / "cache", ignore_errors=True)
 
 
