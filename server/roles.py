@@ -13,7 +13,7 @@ CAPABILITIES: dict[str, frozenset[str]] = {
     "staff.self": ALL,                                           # own account, personal API tokens
     "devices.view": frozenset({ADMIN, COORDINATOR, LEAD}),
     "devices.manage": frozenset({ADMIN, COORDINATOR}),           # register, revoke
-    "alerts.view": frozenset({ADMIN, COORDINATOR, REVIEWER, LEAD}),
+    "alerts.view": frozenset({ADMIN, COORDINATOR, LEAD}),           # reviewers work from the desk, blind
     "clips.listen": frozenset({ADMIN, COORDINATOR, REVIEWER}),   # audio and its images
     "homes.view": frozenset({ADMIN, COORDINATOR, LEAD}),         # codes and attributes only
     "homes.manage": frozenset({ADMIN, COORDINATOR}),

@@ -761,18 +761,20 @@ def test_simultaneous_identical_uploads_give_one_201_and_the_rest_200(fresh_sett
         assert s.scalar(select(func.count(Clip.id))) == 1
 
 
-def test_upload_losing_the_unique_constraint_race_becomes_a_duplicate(fresh_settings: Settings) -> None:
-    """The constraint, not a check-then-insert, decides: the second writer saw no row, then lost the insert."""
+@pytest.mark.parametrize("second_device", [False, True])
+def test_upload_losing_a_unique_constraint_race(second_device: bool, fresh_settings: Settings) -> None:
+    """The constraints, not a check-then-insert, decide. The second writer saw no row, then lost the
+    insert: the same event_id from the same device becomes a duplicate; the same bytes from another
+    device become that device's own alert sharing the stored clip."""
     with committed_session(fresh_settings) as s:
         trial = factories.make_trial(s)
-        dev, _ = factories.make_device(s, trial)
-        device_id = dev.id
+        ids = [factories.make_device(s, trial)[0].id for _ in range(2)]
     app = create_app(fresh_settings)
     store = app.state.clip_store
     clip = sine(seed=81)
     raw = json.dumps(meta(event_id="race-2", detected_at=dt.datetime.now(dt.UTC).isoformat())).encode()
 
-    def ingest(session: Session) -> devices_service.IngestResult:
+    def ingest(session: Session, device_id: int) -> devices_service.IngestResult:
         device = session.get(Device, device_id)
         assert device is not None
         up = store.spool()
@@ -783,17 +785,19 @@ def test_upload_losing_the_unique_constraint_race_becomes_a_duplicate(fresh_sett
 
     first = app.state.writer_session_factory()
     second = app.state.writer_session_factory()
+    second_id = ids[1] if second_device else ids[0]
     try:
-        won = ingest(first)  # flushed, not committed
+        won = ingest(first, ids[0])  # flushed, not committed
         assert won.duplicate is False
         out: dict[str, Any] = {}
         if first.get_bind().dialect.name != "sqlite":
-            # The second writer looks first and sees nothing: the row is not committed yet.
-            assert devices_service.find_alert_by_event(second, device_id, "race-2") is None
+            # The second writer looks first and sees nothing: the rows are not committed yet.
+            assert devices_service.find_alert_by_event(second, ids[0], "race-2") is None
+            assert second.scalar(select(func.count(Clip.id))) == 0
 
         def run() -> None:
             try:
-                out["result"] = ingest(second)
+                out["result"] = ingest(second, second_id)
                 second.commit()
             except BaseException as exc:
                 out["error"] = exc
@@ -805,14 +809,20 @@ def test_upload_losing_the_unique_constraint_race_becomes_a_duplicate(fresh_sett
         first.commit()
         t.join(30)
         assert "error" not in out, out.get("error")
-        assert out["result"].duplicate is True
-        assert out["result"].alert.id == won.alert.id
+        result = out["result"]
+        if second_device:
+            assert result.duplicate is False and result.alert.id != won.alert.id
+            assert result.alert.clip_id == won.alert.clip_id
+        else:
+            assert result.duplicate is True and result.alert.id == won.alert.id
     finally:
         first.close()
         second.close()
         app.state.engine.dispose()
     with committed_session(fresh_settings) as s:
-        assert s.scalar(select(func.count(Alert.id))) == 1
+        assert s.scalar(select(func.count(Alert.id))) == (2 if second_device else 1)
+        assert s.scalar(select(func.count(Clip.id))) == 1
+    assert len(list(ClipStore(fresh_settings.clip_dir).iter_keys())) == 1
 
 
 # --- attribution ------------------------------------------------------------------------------
