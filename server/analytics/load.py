@@ -630,17 +630,22 @@ def _staged_alerts(
         .offset(0)
         .subquery("bounds")
     )
-    installed = sa.exists().where(i.device_id == a.device_id, i.home_id == bounds.c.home_id)
-    # Walk the events, each one's short time range on the (trial, detected_at) index.
+    cand = Alert.__table__.alias("candidate")
+    installed = sa.exists().where(i.device_id == cand.c.device_id, i.home_id == bounds.c.home_id)
+    # Walk the events, each one's short time range on the (trial, detected_at) index. Not
+    # correlated with the outer query: it runs once, whatever the planner.
     near = (
-        sa.select(a.id)
+        sa.select(cand.c.id)
         .select_from(
             bounds.join(
-                Alert.__table__,
-                (a.trial_id == trial.id) & (a.detected_at >= bounds.c.lo) & (a.detected_at <= bounds.c.hi),
+                cand,
+                (cand.c.trial_id == trial.id)
+                & (cand.c.detected_at >= bounds.c.lo)
+                & (cand.c.detected_at <= bounds.c.hi),
             )
         )
-        .where(a.sound_class == bounds.c.sound_class, installed)
+        .where(cand.c.sound_class == bounds.c.sound_class, installed)
+        .correlate(None)
     )
     rows = _alert_rows(dialect, trial, w, steps, start, end, week, a.id.in_(near)).subquery()
     frame = _frame(

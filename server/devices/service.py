@@ -9,9 +9,10 @@ import random
 from dataclasses import dataclass
 
 from pydantic import ValidationError
-from sqlalchemy import func, select, update
+from sqlalchemy import bindparam, func, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
+from sqlalchemy.orm.attributes import set_committed_value
 
 from server import audit
 from server.db import utcnow
@@ -84,8 +85,28 @@ def list_devices(session: Session) -> list[Device]:
     return list(session.scalars(select(Device).order_by(Device.serial)))
 
 
+# Statements on the device hot paths are built once: building a statement and its cache key on
+# every request costs more CPU than running it. Parameters are bound at execution.
+_DEVICE_BY_TOKEN = select(Device).where(Device.token_hash == bindparam("token_hash_v"))
+_TOUCH_DEVICE = (update(Device).where(Device.id == bindparam("device_id_v"))
+                 .values(last_seen_at=bindparam("seen_v"), firmware=bindparam("firmware_v"),
+                         clock_skew_s=bindparam("skew_v"))
+                 .execution_options(synchronize_session=False))
+_EXTEND_SEGMENT = (update(ListeningSegment)
+                   .where(ListeningSegment.device_id == bindparam("device_id_v"),
+                          ListeningSegment.is_open.is_(True),
+                          ListeningSegment.ended_at <= bindparam("now_v"),
+                          ListeningSegment.ended_at >= bindparam("since_v"))
+                   .values(ended_at=bindparam("now_v"), heartbeats=ListeningSegment.heartbeats + 1)
+                   .execution_options(synchronize_session=False))
+_CLOSE_SEGMENT = (update(ListeningSegment)
+                  .where(ListeningSegment.device_id == bindparam("device_id_v"), ListeningSegment.is_open.is_(True))
+                  .values(is_open=False)
+                  .execution_options(synchronize_session=False))
+
+
 def authenticate_device(session: Session, token: str) -> Device:
-    device = session.scalar(select(Device).where(Device.token_hash == token_digest(token)))
+    device = session.scalar(_DEVICE_BY_TOKEN, {"token_hash_v": token_digest(token)})
     if device is None:
         raise InvalidToken()
     if device.revoked:
@@ -107,12 +128,6 @@ def _check_time_window(value: dt.datetime, now: dt.datetime, settings: Settings,
 
 # --- heartbeats -----------------------------------------------------------------------------
 
-def _lock_device(session: Session, device: Device) -> None:
-    """Serialise concurrent writes of one device (a row lock on PostgreSQL; SQLite locks the file)."""
-    if session.get_bind().dialect.name != "sqlite":
-        session.execute(select(Device.id).where(Device.id == device.id).with_for_update())
-
-
 def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, settings: Settings,
                      now: dt.datetime | None = None, rng: random.Random | None = None) -> tuple[dt.datetime, int]:
     """Extend or close the device's open listening segment; return (received_at, next interval s).
@@ -124,24 +139,26 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     now = now or utcnow()
     # invalid_request, like every other heartbeat body error.
     _check_time_window(beat.sent_at, now, settings, "sent_at", InvalidRequest)
-    _lock_device(session, device)
+    # The device row is written first, unconditionally: on PostgreSQL that UPDATE takes the row lock
+    # that serialises one device's beats (SQLite serialises all writers), so at most one segment is
+    # ever open. The object in the session is given the same values without a second UPDATE.
+    seen = {"last_seen_at": now, "firmware": beat.firmware,
+            "clock_skew_s": round((beat.sent_at - now).total_seconds(), 3)}
+    session.execute(_TOUCH_DEVICE, {"device_id_v": device.id, "seen_v": now, "firmware_v": beat.firmware,
+                                    "skew_v": seen["clock_skew_s"]})
+    for key, value in seen.items():
+        set_committed_value(device, key, value)
+    # Segments change through UPDATE statements (the usual beat extends the open one in a single
+    # statement); ListeningSegment objects already loaded in this session are not refreshed.
     gap = dt.timedelta(seconds=device.heartbeat_interval_s * settings.heartbeat_gap_factor)
-    open_seg = (ListeningSegment.device_id == device.id) & ListeningSegment.is_open.is_(True)
-    # Statements rather than loaded rows: the usual beat extends the open segment in one UPDATE.
-    # (One device's beats are serialised by _lock_device, so at most one segment is open.)
     if beat.listening:
-        extended = session.execute(
-            update(ListeningSegment)
-            .where(open_seg, ListeningSegment.ended_at <= now, ListeningSegment.ended_at >= now - gap)
-            .values(ended_at=now, heartbeats=ListeningSegment.heartbeats + 1)).rowcount
+        extended = session.execute(_EXTEND_SEGMENT, {"device_id_v": device.id, "now_v": now,
+                                                     "since_v": now - gap}).rowcount
         if not extended:
-            session.execute(update(ListeningSegment).where(open_seg).values(is_open=False))
+            session.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
             session.add(ListeningSegment(device_id=device.id, started_at=now, ended_at=now, is_open=True))
     else:
-        session.execute(update(ListeningSegment).where(open_seg).values(is_open=False))
-    device.last_seen_at = now
-    device.firmware = beat.firmware
-    device.clock_skew_s = round((beat.sent_at - now).total_seconds(), 3)
+        session.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
     session.flush()
     r = rng or random
     jitter = settings.heartbeat_jitter
@@ -192,6 +209,18 @@ def reattribute_alerts(session: Session, device_id: int) -> int:
 
 # --- alerts ---------------------------------------------------------------------------------
 
+_UPLOAD_FACTS = select(
+    select(Alert.id).where(Alert.device_id == bindparam("device_id_v"), Alert.event_id == bindparam("event_id_v"))
+    .scalar_subquery().label("alert_id"),
+    select(Trial.sound_classes).where(Trial.id == bindparam("trial_id_v")).scalar_subquery().label("classes"),
+    select(Clip.id).where(Clip.sha256 == bindparam("sha_v")).scalar_subquery().label("clip_id"))
+# As installation_at, columns only.
+_PLACED_AT = (select(Installation.id, Installation.home_id)
+              .where(Installation.device_id == bindparam("device_id_v"), Installation.installed_at <= bindparam("at_v"),
+                     (Installation.removed_at.is_(None)) | (Installation.removed_at > bindparam("at_v")))
+              .order_by(Installation.installed_at.desc()).limit(1))
+
+
 @dataclass(frozen=True)
 class IngestResult:
     alert: Alert
@@ -230,11 +259,6 @@ def find_alert_by_event(session: Session, device_id: int, event_id: str) -> Aler
     return session.scalar(select(Alert).where(Alert.device_id == device_id, Alert.event_id == event_id))
 
 
-def _stored_event(session: Session, device_id: int, event_id: str) -> int | None:
-    """The id of the device's alert with this event_id, without loading it (the usual answer is none)."""
-    return session.scalar(select(Alert.id).where(Alert.device_id == device_id, Alert.event_id == event_id))
-
-
 def _duplicate_or_conflict(existing: Alert, sha: str) -> IngestResult:
     if existing.clip.sha256 == sha:
         return IngestResult(existing, True)
@@ -260,7 +284,10 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
                            min_duration_s=settings.min_clip_s, max_duration_s=settings.max_clip_s)
     except (UnreadableAudio, UnsupportedAudio, UnsupportedChannels) as exc:
         audio_error = exc
-    if _stored_event(session, device.id, event_id) is not None:
+    # One round trip for the three look-ups every upload needs (the first takes SQLite's write lock).
+    facts = session.execute(_UPLOAD_FACTS, {"device_id_v": device.id, "event_id_v": event_id,
+                                            "trial_id_v": device.trial_id, "sha_v": sha}).one()
+    if facts.alert_id is not None:
         existing = find_alert_by_event(session, device.id, event_id)
         assert existing is not None
         return _duplicate_or_conflict(existing, sha)
@@ -268,7 +295,7 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
         meta = AlertMeta.model_validate_json(meta_raw)
     except ValidationError as exc:
         raise InvalidMeta(_first_error(exc)) from exc
-    classes = session.scalar(select(Trial.sound_classes).where(Trial.id == device.trial_id)) or []
+    classes: list[str] = facts.classes or []
     if meta.sound_class not in classes:
         raise UnknownSoundClass(f"sound_class '{meta.sound_class}' is not one of this trial's classes: "
                                 f"{', '.join(classes)}.", field="sound_class")
@@ -288,15 +315,12 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
                   sound_class=meta.sound_class, score=meta.score, detected_at=meta.detected_at,
                   detected_at_text=str(data.get("detected_at"))[:64], clock_skew_s=skew,
                   received_at=now, firmware=meta.firmware, clip_offset_s=meta.clip_offset_s)
-    placed = session.execute(
-        select(Installation.id, Installation.home_id)
-        .where(Installation.device_id == device.id, Installation.installed_at <= alert.effective_at,
-               (Installation.removed_at.is_(None)) | (Installation.removed_at > alert.effective_at))
-        .order_by(Installation.installed_at.desc()).limit(1)).first()  # as installation_at, columns only
+    placed = session.execute(_PLACED_AT, {"device_id_v": device.id, "at_v": alert.effective_at}).first()
     if placed is not None:
         alert.installation_id, alert.home_id = placed.id, placed.home_id
+    clip_id: int | None = facts.clip_id
     for attempt in (1, 2):
-        clip = _stored_clip(session, sha, key)
+        clip = _stored_clip(session, clip_id, key)
         try:
             # One savepoint and one flush for both rows (a new clip is inserted first).
             with session.begin_nested():
@@ -312,12 +336,12 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
                 return _duplicate_or_conflict(existing, sha)
             if attempt == 2:
                 raise
+            clip_id = session.scalar(select(Clip.id).where(Clip.sha256 == sha))
     raise AssertionError("unreachable")
 
 
-def _stored_clip(session: Session, sha: str, key: str) -> Clip | None:
+def _stored_clip(session: Session, clip_id: int | None, key: str) -> Clip | None:
     """The clip row for these bytes, brought back if its file had been erased; None for new bytes."""
-    clip_id = session.scalar(select(Clip.id).where(Clip.sha256 == sha))  # usually none: new bytes
     if clip_id is None:
         return None
     clip = session.get(Clip, clip_id)
