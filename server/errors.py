@@ -14,6 +14,7 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, JSONResponse, Response
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.requests import ClientDisconnect
 
 log = logging.getLogger(__name__)
 
@@ -206,6 +207,13 @@ def install_handlers(app: FastAPI) -> None:
         if exc.status_code == 405:
             detail = f"{request.method} is not allowed on {request.url.path}."
         return render_error(request, exc.status_code, code, detail, getattr(exc, "headers", None))
+
+    @app.exception_handler(ClientDisconnect)
+    async def _gone(request: Request, exc: ClientDisconnect) -> Response:
+        # The client hung up mid-body (a device losing its link mid-upload): nothing was stored and
+        # nobody reads the answer, so this is not a server error.
+        log.info("client disconnected during %s %s", request.method, request.url.path)
+        return render_error(request, 400, "client_disconnected", "The request body ended early: the client went away.")
 
     @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception) -> Response:

@@ -52,6 +52,8 @@ from server.trials.models import Trial
 log = logging.getLogger(__name__)
 
 EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
+# Candidate alert ids per IN list (well under SQLite's and PostgreSQL's bound-parameter limits).
+_ID_CHUNK = 5000
 Expr = ColumnElement[Any]
 
 
@@ -630,62 +632,69 @@ def _staged_alerts(
         .offset(0)
         .subquery("bounds")
     )
-    cand = Alert.__table__.alias("candidate")
-    installed = sa.exists().where(i.device_id == cand.c.device_id, i.home_id == bounds.c.home_id)
-    # Walk the events, each one's short time range on the (trial, detected_at) index. Not
-    # correlated with the outer query: it runs once, whatever the planner.
+    installed = sa.exists().where(i.device_id == a.device_id, i.home_id == bounds.c.home_id)
+    # First the candidates' ids: walk the events, each one's short time range on the
+    # (trial, detected_at) index. A separate statement, because inside the next one a planner may
+    # choose to test every alert against every event.
     near = (
-        sa.select(cand.c.id)
+        sa.select(a.id)
         .select_from(
             bounds.join(
-                cand,
-                (cand.c.trial_id == trial.id)
-                & (cand.c.detected_at >= bounds.c.lo)
-                & (cand.c.detected_at <= bounds.c.hi),
+                Alert.__table__,
+                (a.trial_id == trial.id) & (a.detected_at >= bounds.c.lo) & (a.detected_at <= bounds.c.hi),
             )
         )
-        .where(cand.c.sound_class == bounds.c.sound_class, installed)
-        .correlate(None)
+        .where(a.sound_class == bounds.c.sound_class, installed)
+        .distinct()
     )
-    rows = _alert_rows(dialect, trial, w, steps, start, end, week, a.id.in_(near)).subquery()
-    frame = _frame(
-        session.execute(
-            sa.select(
-                rows.c.id,
-                rows.c.device_id,
-                rows.c.home_id,
-                rows.c.sound_class,
-                a.detected_at,
-                rows.c.clock_skew_s,
-                rows.c.score,
-                rows.c.window_id,
-                rows.c.counted,
-                rows.c.period,
-                rows.c.week_index,
-                rows.c.outcome,
-                rows.c.cause,
-                rows.c.resemblance,
-                rows.c.score_milli,
-            ).join_from(rows, Alert.__table__, a.id == rows.c.id)
-        ),
-        [
-            "alert_id",
-            "device_id",
-            "home_id",
-            "sound_class",
-            "detected_at",
-            "clock_skew_s",
-            "score",
-            "window_id",
-            "counted",
-            "period",
-            "week_index",
-            "outcome",
-            "cause",
-            "resemblance",
-            "score_milli",
-        ],
-    )
+    ids = sorted(session.scalars(near))
+    columns = [
+        "alert_id",
+        "device_id",
+        "home_id",
+        "sound_class",
+        "detected_at",
+        "clock_skew_s",
+        "score",
+        "window_id",
+        "counted",
+        "period",
+        "week_index",
+        "outcome",
+        "cause",
+        "resemblance",
+        "score_milli",
+    ]
+    chunks = []
+    for k in range(0, max(len(ids), 1), _ID_CHUNK):
+        rows = _alert_rows(
+            dialect, trial, w, steps, start, end, week, a.id.in_(ids[k : k + _ID_CHUNK])
+        ).subquery()
+        chunks.append(
+            _frame(
+                session.execute(
+                    sa.select(
+                        rows.c.id,
+                        rows.c.device_id,
+                        rows.c.home_id,
+                        rows.c.sound_class,
+                        a.detected_at,
+                        rows.c.clock_skew_s,
+                        rows.c.score,
+                        rows.c.window_id,
+                        rows.c.counted,
+                        rows.c.period,
+                        rows.c.week_index,
+                        rows.c.outcome,
+                        rows.c.cause,
+                        rows.c.resemblance,
+                        rows.c.score_milli,
+                    ).join_from(rows, Alert.__table__, a.id == rows.c.id)
+                ),
+                columns,
+            )
+        )
+    frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0]
     # Matching happens at the window edges, so the time comes exact from the column (the epoch
     # seconds computed in SQL carry SQLite's julianday rounding, some tens of microseconds).
     skew = pd.to_numeric(frame["clock_skew_s"], errors="coerce").fillna(0.0).astype(np.float64)

@@ -12,6 +12,7 @@ import datetime as dt
 import hashlib
 import io
 import json
+import logging
 import os
 import shutil
 import socket
@@ -587,6 +588,24 @@ def test_oversized_upload_is_answered_before_the_client_has_sent_it_all(chunked:
             time.sleep(0.05)
         assert spool_files(store) == []  # the spool was discarded
         assert list(store.iter_keys()) == []
+        assert httpx.get(f"{srv.url}/api/v1/health", timeout=10).status_code == 200
+
+
+def test_device_hanging_up_mid_upload_is_not_a_server_error(fresh_settings: Settings,
+                                                           caplog: pytest.LogCaptureFixture) -> None:
+    tok, _ = _live_device(fresh_settings)
+    body = alert_body(meta(detected_at=dt.datetime.now(dt.UTC).isoformat()), sine(seconds=3.0, seed=55))
+    with LiveServer(fresh_settings) as srv, caplog.at_level(logging.INFO):
+        store = srv.app.state.clip_store
+        with socket.create_connection(("127.0.0.1", srv.port), timeout=20) as sock:
+            sock.sendall(_raw_request_head(srv.port, tok, len(body)) + body[: len(body) // 3])
+            time.sleep(0.3)
+        deadline = time.time() + 5
+        while not any("client disconnected" in r.getMessage() for r in caplog.records) and time.time() < deadline:
+            time.sleep(0.05)
+        assert any("client disconnected" in r.getMessage() for r in caplog.records)
+        assert not [r for r in caplog.records if r.levelno >= logging.ERROR], caplog.text
+        assert spool_files(store) == [] and list(store.iter_keys()) == []
         assert httpx.get(f"{srv.url}/api/v1/health", timeout=10).status_code == 200
 
 
