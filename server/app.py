@@ -61,6 +61,17 @@ class SecurityHeaders:
         await self.app(scope, receive, send_with_headers)
 
 
+def _lower_priority() -> None:
+    """Background work (review images for new clips) yields the CPU to requests: nice the thread."""
+    import os
+    import threading
+
+    try:
+        os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 15)
+    except (AttributeError, OSError):  # not Linux, or not permitted: run at normal priority
+        pass
+
+
 def create_app(settings: Settings | None = None, *, check_schema: bool = True) -> FastAPI:
     settings = settings or Settings()
     settings.data_dir.mkdir(parents=True, exist_ok=True)
@@ -71,7 +82,8 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
         if check_schema:
             migrate.check_schema(engine)
         app.state.schema_revision = migrate.current_revision(engine)
-        app.state.background = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trialhouse-bg")
+        app.state.background = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trialhouse-bg",
+                                                  initializer=_lower_priority)
         try:
             yield
         finally:

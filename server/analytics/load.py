@@ -44,14 +44,13 @@ from sqlalchemy.orm import Session
 from sqlalchemy.sql.elements import ColumnElement
 
 from server.analytics import exposure, trend
-from server.db import UTCDateTime, seconds_between, sql_greatest, sql_least
+from server.db import sql_greatest, sql_least
 from server.devices.models import Alert, AlertState, Device, ListeningSegment
 from server.households.models import Home, HomeState, HomeStateChange, Installation, StagedEvent
 from server.trials.models import Trial
 
 log = logging.getLogger(__name__)
 
-EPOCH = dt.datetime(1970, 1, 1, tzinfo=dt.UTC)
 # Candidate alert ids per IN list (well under SQLite's and PostgreSQL's bound-parameter limits).
 _ID_CHUNK = 5000
 Expr = ColumnElement[Any]
@@ -90,7 +89,8 @@ def _epoch_s(dialect: str, col: Any) -> Expr:
     if dialect == "sqlite":
         # 2440587.5 is the Julian day of 1970-01-01 00:00 UTC; julianday() keeps milliseconds.
         return (sa.func.julianday(col) - 2440587.5) * 86400.0
-    return sa.cast(seconds_between(dialect, col, sa.literal(EPOCH, UTCDateTime)), sa.Float)
+    # date_part gives double precision; EXTRACT gives numeric, several times slower to compute with.
+    return sa.func.date_part("epoch", col, type_=sa.Float)
 
 
 def _from_epoch(dialect: str, seconds: Any) -> Expr:
@@ -174,7 +174,7 @@ def _window_table(session: Session, windows: pd.DataFrame) -> Iterator[sa.Table]
     finally:
         try:
             table.drop(conn)
-        except sa.exc.DBAPIError:  # an aborted transaction: its rollback removes the table anyway
+        except sa.exc.SQLAlchemyError:  # a failed transaction: its rollback removes the table anyway
             log.warning("could not drop temporary table %s", name, exc_info=True)
 
 
@@ -276,6 +276,12 @@ def load_pilot(
     )
 
     steps = trend.utc_offset_steps(trial.timezone, start, end)
+    max_skew = float(
+        session.scalar(
+            sa.select(sa.func.max(sa.func.abs(Alert.clock_skew_s))).where(Alert.trial_id == trial.id)
+        )
+        or 0.0
+    )
     with _window_table(session, windows) as w:
         monitored = _monitored(session, dialect, w, steps, trial.timezone)
         parts = _alert_parts(session, dialect, trial, w, steps, start, end, week)
@@ -288,7 +294,7 @@ def load_pilot(
             start,
             end,
             week,
-            margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
+            margin_s=staged_tolerance_s + max_skew + 1.0,
         )
     return PilotData(
         trial=trial,
@@ -307,7 +313,7 @@ def load_pilot(
         not_counted=parts["not_counted"],
         staged_events=staged_events,
         staged_alerts=staged_alerts,
-        max_skew_s=parts["max_skew_s"],
+        max_skew_s=max_skew,
     )
 
 
@@ -503,7 +509,23 @@ def _alert_parts(
     week: trend.Week,
 ) -> dict[str, Any]:
     """The alert aggregates in one statement over one pass of the alerts (materialised once)."""
-    base = _alert_rows(dialect, trial, w, steps, start, end, week).cte("base").prefix_with("MATERIALIZED")
+    rows = _alert_rows(dialect, trial, w, steps, start, end, week).subquery("rows")
+    # Only the columns the parts group or aggregate are kept (the materialised copy stays narrow).
+    keep = (
+        "window_id",
+        "home_id",
+        "sound_class",
+        "outcome",
+        "cause",
+        "resemblance",
+        "firmware",
+        "counted",
+        "period",
+        "week_index",
+        "score_milli",
+        "score",
+    )
+    base = sa.select(*[rows.c[k] for k in keep]).cte("base").prefix_with("MATERIALIZED")
     c = base.c
 
     def part(name: str, keys: dict[str, Any], where: Any = None) -> sa.Select[Any]:
@@ -515,9 +537,6 @@ def _alert_parts(
         cols += [
             sa.func.count().label("alerts"),
             sa.cast(sa.func.min(c.score), sa.Float).label("min_score"),
-            sa.cast(sa.func.max(sa.func.abs(sa.func.coalesce(c.clock_skew_s, 0.0))), sa.Float).label(
-                "max_skew"
-            ),
         ]
         q = sa.select(*cols).select_from(base)
         return (q if where is None else q.where(where)).group_by(*keys.values())
@@ -549,7 +568,7 @@ def _alert_parts(
             (c.counted == 1) & (c.outcome == "false_alarm"),
         ),
     )
-    df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score", "max_skew"])
+    df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score"])
 
     def pick(name: str, keep: list[str]) -> pd.DataFrame:
         out = df.loc[df["part"] == name, keep].reset_index(drop=True)
@@ -572,7 +591,6 @@ def _alert_parts(
                 "counted",
                 "alerts",
                 "min_score",
-                "max_skew",
             ],
         ),
         ["cause", "resemblance"],
@@ -591,7 +609,6 @@ def _alert_parts(
         .groupby(["period", "sound_class", "reason"], as_index=False)["alerts"]
         .sum()
     )
-    skew = float(main["max_skew"].max()) if len(main) else 0.0
     return {
         "counted": counted.groupby(
             ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"], as_index=False
@@ -602,7 +619,6 @@ def _alert_parts(
         .min()
         .astype({"min_score": np.float64}),
         "not_counted": not_counted,
-        "max_skew_s": 0.0 if np.isnan(skew) else skew,
     }
 
 
@@ -644,7 +660,9 @@ def _staged_alerts(
                 (a.trial_id == trial.id) & (a.detected_at >= bounds.c.lo) & (a.detected_at <= bounds.c.hi),
             )
         )
-        .where(a.sound_class == bounds.c.sound_class, installed)
+        # No class condition here: SQLite would index the events by class and scan every alert.
+        # Alerts of other classes are dropped by the matching itself.
+        .where(installed)
         .distinct()
     )
     ids = sorted(session.scalars(near))
@@ -668,7 +686,14 @@ def _staged_alerts(
     chunks = []
     for k in range(0, max(len(ids), 1), _ID_CHUNK):
         rows = _alert_rows(
-            dialect, trial, w, steps, start, end, week, a.id.in_(ids[k : k + _ID_CHUNK])
+            dialect,
+            trial,
+            w,
+            steps,
+            start,
+            end,
+            week,
+            a.id.in_(ids[k : k + _ID_CHUNK]),
         ).subquery()
         chunks.append(
             _frame(

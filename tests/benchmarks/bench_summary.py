@@ -8,11 +8,13 @@ script times, in the same run:
 - summary: `weekly.build_summary(...)` for the last week, trial to date (everything it shows).
 
 It prints the summary's time over the bare queries' time and its peak memory (Python heap as seen
-by tracemalloc, which counts numpy buffers, and the process's peak resident size), for 1,000 homes
-and for 100 homes (growth: time per home should not rise from 100 to 1,000 homes).
-Targets: ratio <= 3, peak memory < 1 GB, growth no faster than linear. It asserts nothing.
+by tracemalloc, which counts numpy buffers, and the peak resident size of a fresh process that
+builds the summary once), for 1,000 homes and for 100 homes (growth: time per home should not rise
+from 100 to 1,000 homes). Targets: ratio <= 3, peak memory < 1 GB, growth no faster than linear.
+It asserts nothing. Times are medians of --repeats runs on warm caches.
 
     python tests/benchmarks/bench_summary.py [--postgres-url URL] [--homes 1000] [--small 100]
+                                             [--proposed-index]
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ import datetime as dt
 import gc
 import resource
 import statistics
+import subprocess
 import sys
 import tempfile
 import time
@@ -404,7 +407,7 @@ def run_summary(engine: sa.Engine, code: str) -> object:
 
 
 def timed(fn, repeats: int) -> tuple[float, float, float]:  # type: ignore[no-untyped-def]
-    """Median wall time over `repeats`, tracemalloc peak (MB) and peak RSS (MB) of one run."""
+    """Median wall time over `repeats`, tracemalloc peak (MB) of one more run, and this process's peak RSS."""
     times = []
     for _ in range(repeats):
         gc.collect()
@@ -420,59 +423,92 @@ def timed(fn, repeats: int) -> tuple[float, float, float]:  # type: ignore[no-un
     return statistics.median(times), peak, rss
 
 
-def bench(url: str, label: str, homes_list: list[int], repeats: int) -> None:
+PROPOSED_INDEX = (
+    "CREATE INDEX ix_bench_listening_segment_device_span "
+    "ON listening_segment (device_id, started_at, ended_at)"
+)
+
+
+def peak_rss_of_summary(url: str, code: str) -> float:
+    """Peak resident size (MB) of a fresh process that builds the summary once."""
+    out = subprocess.run(
+        [sys.executable, __file__, "--rss-of", url, code], capture_output=True, text=True, check=True
+    )
+    return float(out.stdout.strip().splitlines()[-1])
+
+
+def bench(url: str, label: str, homes_list: list[int], repeats: int, proposed_index: bool) -> None:
     engine = make_engine(url)
     migrate.upgrade(engine)
-    results = {}
+    codes = {}
     for homes in homes_list:
         scale = homes / 1000
         t0 = time.perf_counter()
-        code = build_pilot(engine, homes=homes, alerts=int(500_000 * scale), segments=int(1_000_000 * scale))
-        if engine.dialect.name == "postgresql":
+        codes[homes] = build_pilot(
+            engine, homes=homes, alerts=int(500_000 * scale), segments=int(1_000_000 * scale)
+        )
+        with engine.begin() as conn:
+            conn.exec_driver_sql("ANALYZE")
+        print(
+            f"[{label}] built {homes} homes, {int(500_000 * scale)} alerts, "
+            f"{int(1_000_000 * scale)} segments "
+            f"in {time.perf_counter() - t0:.0f} s",
+            flush=True,
+        )
+    variants = [("schema as migrated", None)]
+    if proposed_index:
+        variants.append(("with a (device_id, started_at, ended_at) segment index", PROPOSED_INDEX))
+    for title, ddl in variants:
+        if ddl:
             with engine.begin() as conn:
+                conn.exec_driver_sql(ddl)
                 conn.exec_driver_sql("ANALYZE")
-        else:
-            with engine.begin() as conn:
-                conn.exec_driver_sql("ANALYZE")
-        build_s = time.perf_counter() - t0
-        bare_t, bare_mem, _ = timed(lambda c=code: bare_queries(engine, c), repeats)
-        sum_t, sum_mem, rss = timed(lambda c=code: run_summary(engine, c), repeats)
-        results[homes] = sum_t
-        print(
-            f"[{label}] {homes} homes, {int(500_000 * scale)} alerts, {int(1_000_000 * scale)} segments "
-            f"(built in {build_s:.0f} s)"
-        )
-        print(
-            f"[{label}]   bare SQL aggregation: {bare_t:.2f} s; summary: {sum_t:.2f} s; "
-            f"ratio {sum_t / bare_t:.2f} (target <= 3)"
-        )
-        print(
-            f"[{label}]   summary peak memory: {sum_mem:.0f} MB traced, process peak RSS {rss:.0f} MB "
-            f"(target < 1024 MB)"
-        )
-    if len(homes_list) == 2:
-        small, large = sorted(homes_list)
-        growth = (results[large] / results[small]) / (large / small)
-        print(
-            f"[{label}] growth {small} -> {large} homes: time x{results[large] / results[small]:.2f} "
-            f"for x{large / small:.0f} homes (per-home time ratio {growth:.2f}; <= 1 is linear or better)"
-        )
+        results = {}
+        for homes, code in codes.items():
+            bare_t, _, _ = timed(lambda c=code: bare_queries(engine, c), repeats)
+            sum_t, sum_mem, _ = timed(lambda c=code: run_summary(engine, c), repeats)
+            results[homes] = sum_t
+            rss = peak_rss_of_summary(url, code)
+            print(
+                f"[{label}, {title}] {homes} homes: bare SQL aggregation {bare_t:.2f} s; "
+                f"summary {sum_t:.2f} s; "
+                f"ratio {sum_t / bare_t:.2f} (target <= 3); summary peak memory {sum_mem:.0f} MB traced, "
+                f"{rss:.0f} MB peak RSS of a process building it (target < 1024 MB)",
+                flush=True,
+            )
+        if len(results) == 2:
+            small, large = sorted(results)
+            growth = (results[large] / results[small]) / (large / small)
+            print(
+                f"[{label}, {title}] growth {small} -> {large} homes: "
+                f"time x{results[large] / results[small]:.2f} "
+                f"for x{large / small:.0f} homes (per-home ratio {growth:.2f}; <= 1 is linear or better)",
+                flush=True,
+            )
     engine.dispose()
 
 
 def main() -> None:
+    if len(sys.argv) == 4 and sys.argv[1] == "--rss-of":
+        run_summary(make_engine(sys.argv[2]), sys.argv[3])
+        print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)
+        return
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--postgres-url", help="an empty PostgreSQL database to build the pilot in")
     p.add_argument("--homes", type=int, default=1000)
     p.add_argument("--small", type=int, default=100)
     p.add_argument("--repeats", type=int, default=3)
-    p.add_argument("--sqlite-only", action="store_true")
+    p.add_argument(
+        "--proposed-index",
+        action="store_true",
+        help="also time the summary after adding a covering index on listening segments",
+    )
     args = p.parse_args()
     homes = sorted({args.small, args.homes})
     with tempfile.TemporaryDirectory() as tmp:
-        bench(f"sqlite:///{tmp}/bench.db", "sqlite", homes, args.repeats)
+        bench(f"sqlite:///{tmp}/bench.db", "sqlite", homes, args.repeats, args.proposed_index)
     if args.postgres_url:
-        bench(args.postgres_url, "postgresql", homes, args.repeats)
+        bench(args.postgres_url, "postgresql", homes, args.repeats, args.proposed_index)
 
 
 if __name__ == "__main__":
