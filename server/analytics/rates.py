@@ -23,6 +23,7 @@ NO_EVENTS = "no_events"
 NO_TRIALS = "no_trials"
 TOO_FEW_HOMES = "fewer_than_two_homes"
 RATE_NOT_BELOW_TARGET = "rate_not_below_target"
+HOMES_DIFFER = "homes_differ"
 
 Floats = NDArray[np.float64]
 
@@ -139,6 +140,8 @@ class Readiness:
     confidence_level: float
     more_home_months: float | None
     reason: str | None = None
+    # Upper limit of the home-level bootstrap, when it was given to readiness().
+    home_bootstrap_high: float | None = None
 
 
 def _check_level(confidence_level: float) -> None:
@@ -591,7 +594,8 @@ def overdispersion(events: ArrayLike, home_months: ArrayLike) -> Overdispersion:
 # Readiness
 
 
-def readiness(events: int, home_months: float, target: float, *, confidence_level: float = 0.95) -> Readiness:
+def readiness(events: int, home_months: float, target: float, *, confidence_level: float = 0.95,
+              home_bootstrap_high: float | None = None) -> Readiness:
     """Whether the false-alarm rate is shown to be at or below `target` per home-month.
 
     Uses the two-sided exact interval (the one printed beside the rate): "met" when its upper
@@ -600,6 +604,11 @@ def readiness(events: int, home_months: float, target: float, *, confidence_leve
     the smallest extra monitored time T' - T at which the upper limit for r T' expected events
     (r the current rate; counts treated as continuous through the chi-square quantile) falls to
     the target.
+
+    With `home_bootstrap_high` (the home-level bootstrap's upper limit), "met" also needs that limit
+    at or below the target: when homes are not alike the Poisson interval is too narrow, so a target
+    met by it alone is reported "not_yet_shown" with reason HOMES_DIFFER (more homes, not only more
+    months, are needed).
     """
     if target <= 0:
         raise ValueError("the target must be positive")
@@ -615,11 +624,14 @@ def readiness(events: int, home_months: float, target: float, *, confidence_leve
             confidence_level=confidence_level,
             more_home_months=more,
             reason=reason,
+            home_bootstrap_high=home_bootstrap_high,
         )
 
     if rate.reason is not None:
         return result("not_yet_shown", None, rate.reason)
     if rate.high <= target:
+        if home_bootstrap_high is not None and math.isfinite(home_bootstrap_high) and home_bootstrap_high > target:
+            return result("not_yet_shown", None, HOMES_DIFFER)
         return result("met", 0.0)
     if rate.low > target:
         return result("not_met", None)

@@ -449,7 +449,8 @@ class _Context:
             detection=detection,
             whatif=table,
             whatif_floor=floor,
-            readiness=rates.readiness(total_fa, total_hm, target, confidence_level=level),
+            readiness=rates.readiness(total_fa, total_hm, target, confidence_level=level,
+                                      home_bootstrap_high=boot.high),
         )
 
     def _whatif(
