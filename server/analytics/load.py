@@ -276,12 +276,6 @@ def load_pilot(
     )
 
     steps = trend.utc_offset_steps(trial.timezone, start, end)
-    max_skew = float(
-        session.scalar(
-            sa.select(sa.func.max(sa.func.abs(Alert.clock_skew_s))).where(Alert.trial_id == trial.id)
-        )
-        or 0.0
-    )
     with _window_table(session, windows) as w:
         monitored = _monitored(session, dialect, w, steps, trial.timezone)
         parts = _alert_parts(session, dialect, trial, w, steps, start, end, week)
@@ -294,7 +288,7 @@ def load_pilot(
             start,
             end,
             week,
-            margin_s=staged_tolerance_s + max_skew + 1.0,
+            margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
         )
     return PilotData(
         trial=trial,
@@ -313,7 +307,7 @@ def load_pilot(
         not_counted=parts["not_counted"],
         staged_events=staged_events,
         staged_alerts=staged_alerts,
-        max_skew_s=max_skew,
+        max_skew_s=parts["max_skew_s"],
     )
 
 
@@ -524,6 +518,7 @@ def _alert_parts(
         "week_index",
         "score_milli",
         "score",
+        "clock_skew_s",
     )
     base = sa.select(*[rows.c[k] for k in keep]).cte("base").prefix_with("MATERIALIZED")
     c = base.c
@@ -537,6 +532,7 @@ def _alert_parts(
         cols += [
             sa.func.count().label("alerts"),
             sa.cast(sa.func.min(c.score), sa.Float).label("min_score"),
+            sa.cast(sa.func.max(sa.func.abs(c.clock_skew_s)), sa.Float).label("max_skew"),
         ]
         q = sa.select(*cols).select_from(base)
         return (q if where is None else q.where(where)).group_by(*keys.values())
@@ -568,7 +564,7 @@ def _alert_parts(
             (c.counted == 1) & (c.outcome == "false_alarm"),
         ),
     )
-    df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score"])
+    df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score", "max_skew"])
 
     def pick(name: str, keep: list[str]) -> pd.DataFrame:
         out = df.loc[df["part"] == name, keep].reset_index(drop=True)
@@ -591,6 +587,7 @@ def _alert_parts(
                 "counted",
                 "alerts",
                 "min_score",
+                "max_skew",
             ],
         ),
         ["cause", "resemblance"],
@@ -609,7 +606,9 @@ def _alert_parts(
         .groupby(["period", "sound_class", "reason"], as_index=False)["alerts"]
         .sum()
     )
+    skew = pd.to_numeric(main["max_skew"], errors="coerce").max() if len(main) else 0.0
     return {
+        "max_skew_s": 0.0 if pd.isna(skew) else float(skew),
         "counted": counted.groupby(
             ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"], as_index=False
         )["alerts"].sum(),

@@ -630,7 +630,8 @@ def readiness(events: int, home_months: float, target: float, *, confidence_leve
     if rate.reason is not None:
         return result("not_yet_shown", None, rate.reason)
     if rate.high <= target:
-        if home_bootstrap_high is not None and math.isfinite(home_bootstrap_high) and home_bootstrap_high > target:
+        homes_high = home_bootstrap_high
+        if homes_high is not None and math.isfinite(homes_high) and homes_high > target:
             return result("not_yet_shown", None, HOMES_DIFFER)
         return result("met", 0.0)
     if rate.low > target:

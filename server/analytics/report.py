@@ -41,9 +41,9 @@ def readiness_text(r: rates.Readiness) -> str:
         return f"Not met: even the {level} lower limit, {_n(r.low, 3)}, is above the target of {r.target:g}."
     if r.reason == rates.HOMES_DIFFER:
         return (
-            f"Not yet shown: the exact {level} upper limit, {_n(r.high, 3)}, meets the target of {r.target:g}, "
-            f"but the home bootstrap's, {_n(r.home_bootstrap_high, 3)}, does not. Homes are not alike, so "
-            "the figure needs more homes, not only more months."
+            f"Not yet shown: the exact {level} upper limit, {_n(r.high, 3)}, meets the target of "
+            f"{r.target:g}, but the home bootstrap's, {_n(r.home_bootstrap_high or math.nan, 3)}, does not. "
+            "Homes are not alike, so the figure needs more homes, not only more months."
         )
     if r.reason == rates.NO_MONITORED_TIME:
         return "Not yet shown: there is no monitored time."
