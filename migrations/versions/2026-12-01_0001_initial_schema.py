@@ -325,8 +325,6 @@ def upgrade() -> None:
     sa.Column('cause', sa.String(length=40), nullable=True),
     sa.Column('resemblance', sa.String(length=20), nullable=True),
     sa.Column('note', sa.Text(), nullable=True),
-    sa.Column('is_gold_serving', sa.Boolean(), nullable=False),
-    sa.Column('opened_at', server.db.UTCDateTime(timezone=True), nullable=True),
     sa.Column('created_at', server.db.UTCDateTime(timezone=True), nullable=False),
     sa.ForeignKeyConstraint(['alert_id'], ['alert.id'], name=op.f('fk_verdict_alert_id_alert'), ondelete='CASCADE'),
     sa.ForeignKeyConstraint(['reviewer_id'], ['user_account.id'], name=op.f('fk_verdict_reviewer_id_user_account')),

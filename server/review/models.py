@@ -28,8 +28,6 @@ class Verdict(Base):
     cause: Mapped[str | None] = mapped_column(String(40))
     resemblance: Mapped[str | None] = mapped_column(String(20))
     note: Mapped[str | None] = mapped_column(Text)
-    is_gold_serving: Mapped[bool] = mapped_column(default=False)
-    opened_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
     reviewer: Mapped[User] = relationship(lazy="joined")

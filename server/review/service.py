@@ -239,7 +239,6 @@ def record_verdict(
         cause=cause,
         resemblance=resemblance,
         note=note,
-        is_gold_serving=False,
         created_at=now,
     )
     session.add(verdict)
@@ -414,7 +413,6 @@ def adjudicate(
         cause=cause,
         resemblance=resemblance,
         note=note,
-        is_gold_serving=False,
         created_at=now,
     )
     session.add(verdict)

@@ -217,7 +217,6 @@ def build(engine: sa.Engine, n_alerts: int, rng: np.random.Generator) -> dict[st
                     "reviewer_id": reviewers[1 + j % 5],
                     "round": 1,
                     "label": row["final_label"] or "unsure",
-                    "is_gold_serving": False,
                     "created_at": row["received_at"],
                 }
             )
