@@ -6,6 +6,8 @@ Dialect-specific code lives here and nowhere else.
 from __future__ import annotations
 
 import datetime as dt
+import sqlite3
+import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import Any
@@ -27,6 +29,9 @@ NAMING_CONVENTION = {
 class Base(DeclarativeBase):
     metadata = MetaData(naming_convention=NAMING_CONVENTION)
     type_annotation_map = {dict[str, Any]: JSON, list[str]: JSON, list[dict[str, Any]]: JSON}
+
+
+SQLITE_BUSY_TIMEOUT_S = 30.0
 
 
 def utcnow() -> dt.datetime:
@@ -57,9 +62,58 @@ class UTCDateTime(TypeDecorator[dt.datetime]):
         return value.astimezone(dt.UTC)
 
 
+class _SQLiteConnection(sqlite3.Connection):
+    """A pysqlite connection whose write transactions queue on a lock in this process.
+
+    SQLite lets one writer in at a time and makes the others poll with growing sleeps (up to
+    100 ms each), so under concurrent ingest most of the wait is sleeping after the lock was
+    already free. Writers of this process wait on a lock instead and are woken the moment it is
+    released; other processes still meet SQLite's own lock and busy timeout.
+    """
+
+    _writer_locks: dict[str, threading.Lock] = {}
+    _guard = threading.Lock()
+
+    def acquire_writer(self, database: str, timeout_s: float) -> None:
+        with self._guard:
+            lock = self._writer_locks.setdefault(database, threading.Lock())
+        # On a timeout (this thread already holds a write transaction elsewhere, say) carry on
+        # without it: SQLite's busy timeout then decides, as it would without the lock.
+        if lock.acquire(timeout=timeout_s):
+            self._held = lock
+
+    def release_writer(self) -> None:
+        lock, self._held = getattr(self, "_held", None), None
+        if lock is not None:
+            lock.release()
+
+    def commit(self) -> None:
+        try:
+            super().commit()
+        finally:
+            self.release_writer()
+
+    def rollback(self) -> None:
+        try:
+            super().rollback()
+        finally:
+            self.release_writer()
+
+    def close(self) -> None:
+        try:
+            super().close()
+        finally:
+            self.release_writer()
+
+
 def make_engine(url: str, **kw: Any) -> Engine:
     if url.startswith("sqlite"):
-        engine = create_engine(url, connect_args={"timeout": 30, "check_same_thread": False}, **kw)
+        engine = create_engine(
+            url,
+            connect_args={"timeout": SQLITE_BUSY_TIMEOUT_S, "check_same_thread": False,
+                          "factory": _SQLiteConnection},
+            **kw,
+        )
         _configure_sqlite(engine)
         return engine
     if url.startswith("postgresql://"):
@@ -79,13 +133,23 @@ def _configure_sqlite(engine: Engine) -> None:
         cur.execute("PRAGMA journal_mode=WAL")
         # FULL: a commit that returned has survived a power cut (WAL is fsynced on commit).
         cur.execute("PRAGMA synchronous=FULL")
-        cur.execute("PRAGMA busy_timeout=30000")
+        cur.execute(f"PRAGMA busy_timeout={int(SQLITE_BUSY_TIMEOUT_S * 1000)}")
         cur.close()
+
+    database = engine.url.database or ":memory:"
 
     @event.listens_for(engine, "begin")
     def _on_begin(conn: Any) -> None:
         if conn.get_execution_options().get("sqlite_immediate"):
-            conn.exec_driver_sql("BEGIN IMMEDIATE")
+            dbapi_conn = conn.connection.driver_connection
+            if isinstance(dbapi_conn, _SQLiteConnection):
+                dbapi_conn.acquire_writer(database, SQLITE_BUSY_TIMEOUT_S)
+            try:
+                conn.exec_driver_sql("BEGIN IMMEDIATE")
+            except BaseException:
+                if isinstance(dbapi_conn, _SQLiteConnection):
+                    dbapi_conn.release_writer()
+                raise
         else:
             conn.exec_driver_sql("BEGIN")
 
