@@ -7,13 +7,14 @@ from collections.abc import AsyncIterator
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import asynccontextmanager
 
+import anyio
 from fastapi import FastAPI
 from starlette.datastructures import MutableHeaders
 from starlette.middleware.sessions import SessionMiddleware
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server import errors, health, migrate
-from server.db import utcnow, make_engine, make_session_factory, writer_engine
+from server.db import make_engine, make_session_factory, utcnow, writer_engine
 from server.devices.clipstore import ClipStore
 from server.settings import Settings
 from server.web.templating import make_templates
@@ -84,6 +85,9 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
         app.state.schema_revision = migrate.current_revision(engine)
         app.state.background = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trialhouse-bg",
                                                   initializer=_lower_priority)
+        # Device writes run a few at a time: dozens of threads taking turns at the interpreter lock
+        # get less done than a handful working while the rest queue (see devices/api.py).
+        app.state.device_work_limiter = anyio.CapacityLimiter(settings.device_work_slots)
         try:
             yield
         finally:
@@ -99,7 +103,6 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     app.state.clip_store = ClipStore(settings.clip_dir)
     app.state.clip_store.ensure()
     app.state.templates = make_templates()
-    app.state.ingest_hooks = []
     # The server's clock for device time (monitored time, receipt). The demo replays weeks through it.
     app.state.clock = utcnow
     app.state.schema_revision = None
@@ -127,7 +130,4 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     for module in (auth_pages, web_pages, devices_api, devices_pages, households_api, households_pages,
                    review_api, review_pages, analytics_api, analytics_pages):
         app.include_router(module.router)
-        setup = getattr(module, "setup", None)
-        if setup is not None:
-            setup(app)  # e.g. register ingest hooks
     return app

@@ -35,6 +35,8 @@ class Settings(BaseSettings):
     # Times sent by devices must lie in this window around the server's clock.
     max_past_days: int = 400
     max_future_hours: int = 24
+    # Device calls whose database and file work runs at once; the others wait their turn.
+    device_work_slots: int = Field(default=4, ge=1, le=64)
 
     # Review
     claim_minutes: float = 5.0

@@ -392,8 +392,6 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
     clock = ReplayClock(plan.start)
     app = create_app(settings)
     app.state.clock = clock
-    # Review images are drawn when a reviewer first opens a clip, not during seeding.
-    app.state.ingest_hooks = []
     alert_ids: dict[str, int] = {}
     try:
         with TestClient(app, base_url="http://demo.invalid") as client:

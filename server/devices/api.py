@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from collections.abc import Callable
+from typing import Annotated, TypeVar
 
+from anyio import to_thread
 from fastapi import APIRouter, Depends, Query, Request
 from fastapi.responses import FileResponse, JSONResponse
 from pydantic import ValidationError
 from sqlalchemy.orm import Session
-from starlette.concurrency import run_in_threadpool
 
 from server.auth.models import User
 from server.deps import ClipStoreDep, DbSession, SettingsDep, require
@@ -28,6 +29,7 @@ from server.errors import ClipTooLarge, InvalidRequest, MissingToken, Validation
 from server.trials import service as trials_service
 
 router = APIRouter()
+T = TypeVar("T")
 
 HEARTBEAT_BODY_LIMIT = 16 * 1024
 
@@ -49,6 +51,16 @@ def current_device(request: Request, session: DbSession) -> Device:
 
 
 CurrentDevice = Annotated[Device, Depends(current_device)]
+
+
+async def _run_device_work(request: Request, work: Callable[[], T]) -> T:
+    """Run a device call's database and file work on a worker thread, a few calls at a time.
+
+    Every call still gets its turn; past the app's limit (set in its lifespan) the rest wait on the
+    event loop rather than crowd the interpreter lock.
+    """
+    limiter = getattr(request.app.state, "device_work_limiter", None)
+    return await to_thread.run_sync(work, limiter=limiter)
 
 
 async def _read_limited(request: Request, limit: int) -> bytes:
@@ -82,7 +94,7 @@ async def post_heartbeat(request: Request, device: CurrentDevice, session: DbSes
         # A ready response: FastAPI would otherwise validate and encode the model a second time.
         return JSONResponse(HeartbeatOut(received_at=received_at, next_heartbeat_s=next_s).model_dump(mode="json"))
 
-    return await run_in_threadpool(work)
+    return await _run_device_work(request, work)
 
 
 @router.post("/api/v1/alerts", status_code=201, response_model=AlertReceipt, tags=["device"],
@@ -110,11 +122,9 @@ async def post_alert(request: Request, device: CurrentDevice, session: DbSession
                                           meta_raw=meta, upload=clip, now=request.app.state.clock())
             alert_id, duplicate = result.alert.id, result.duplicate
             session.commit()
-        if not duplicate:
-            views.after_ingest(request.app, alert_id)
         return alert_id, duplicate
 
-    alert_id, duplicate = await run_in_threadpool(work)
+    alert_id, duplicate = await _run_device_work(request, work)
     return JSONResponse({"alert_id": alert_id, "duplicate": duplicate}, status_code=200 if duplicate else 201)
 
 

@@ -581,14 +581,16 @@ def _short(exc: Exception) -> str:
 def _levels(x: np.ndarray, header: _Header) -> tuple[float, float, float]:
     if x.size == 0:
         return LEVEL_FLOOR_DBFS, LEVEL_FLOOR_DBFS, 0.0
-    x64 = x.astype(np.float64)
-    peak = float(np.max(np.abs(x64)))
-    rms = math.sqrt(float(np.mean(x64 * x64)))
+    # Straight on the float32 samples, with no float64 copy: the extremes are exact as they are,
+    # the sum of squares accumulates in float64, and einsum (not dot) starts no BLAS threads.
+    peak = max(float(x.max()), -float(x.min()))
+    rms = math.sqrt(float(np.einsum("i,i->", x, x, dtype=np.float64)) / x.size)
     # One LSB of a b-bit code is 2**-(b-1) of full scale; the largest positive code is
     # 1 - LSB, so "within one LSB of full scale" is |x| >= 1 - 2 LSB. Float clips use the
-    # 24-bit step (float32 carries a 24-bit significand).
+    # 24-bit step (float32 carries a 24-bit significand, so the threshold is exact in it).
     lsb = 2.0 ** -((24 if header.subtype == "FLOAT" else header.bits) - 1)
-    clipped = float(np.mean(np.abs(x64) >= 1.0 - 2.0 * lsb))
+    threshold = np.float32(1.0 - 2.0 * lsb)
+    clipped = float(np.count_nonzero(x >= threshold) + np.count_nonzero(x <= -threshold)) / x.size
     return _dbfs(peak), _dbfs(rms), clipped
 
 

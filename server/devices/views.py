@@ -93,26 +93,6 @@ def clip_file_for(session: Session, store: ClipStore, user: User, alert_id: int)
     return store.path(clip.storage_key), MEDIA_TYPES.get(clip.format, "application/octet-stream")
 
 
-def after_ingest(app: Any, alert_id: int) -> None:
-    """Run the registered ingest hooks (e.g. precomputing review images) off the request path."""
-    hooks = getattr(app.state, "ingest_hooks", [])
-    executor = getattr(app.state, "background", None)
-    for hook in hooks:
-        if executor is None:
-            continue
-        try:
-            executor.submit(_safe, hook, app, alert_id)
-        except RuntimeError:  # executor shut down
-            pass
-
-
-def _safe(hook: Any, app: Any, alert_id: int) -> None:
-    try:
-        hook(app, alert_id)
-    except Exception:
-        log.exception("ingest hook %r failed for alert %s", hook, alert_id)
-
-
 def recent_segments(session: Session, device_id: int, limit: int = 30) -> list[dict[str, Any]]:
     from server.devices.models import ListeningSegment
 

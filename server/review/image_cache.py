@@ -17,7 +17,7 @@ from typing import Any
 
 from server.devices import audio
 from server.devices.clipstore import ClipStore
-from server.devices.models import Alert, Clip
+from server.devices.models import Clip
 from server.review import images
 
 log = logging.getLogger(__name__)
@@ -98,19 +98,6 @@ def forget(cache_dir: Path, sha256: str) -> int:
         except FileNotFoundError:
             pass
     return removed
-
-
-def precompute_for_alert(app: Any, alert_id: int) -> None:
-    """Ingest hook: put a new alert's images in the cache before anyone opens it."""
-    session = app.state.session_factory()
-    try:
-        alert = session.get(Alert, alert_id)
-        if alert is None or alert.clip.erased_at is not None:
-            return
-        sha, key = alert.clip.sha256, alert.clip.storage_key
-    finally:
-        session.close()
-    _precompute(app, sha, key)
 
 
 def _precompute(app: Any, sha256: str, storage_key: str) -> None:

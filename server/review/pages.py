@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, Depends, FastAPI, Form, Query, Request
+from fastapi import APIRouter, Depends, Form, Query, Request
 from fastapi.responses import FileResponse, JSONResponse, RedirectResponse
 from starlette.responses import Response
 
@@ -37,11 +37,6 @@ RESEMBLANCE_CHOICES = [
     ("unrelated", "Unrelated", "an unforgivable error", "d"),
 ]
 FILTER_KEY = "review_filter"
-
-
-def setup(app: FastAPI) -> None:
-    """Compute a clip's review images as soon as it arrives, off the request path."""
-    app.state.ingest_hooks.append(image_cache.precompute_for_alert)
 
 
 def _filter(request: Request) -> dict[str, str | None]:

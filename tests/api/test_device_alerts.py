@@ -739,27 +739,7 @@ def test_rejected_upload_reserves_nothing(first_fault: str, clocked, client, tok
 
 
 def _post_many(url: str, token: str, body: bytes, n: int) -> list[httpx.Response]:
-    barrier = threading.Barrier(n)
-    results: list[httpx.Response | BaseException] = [None] * n  # type: ignore[list-item]
-
-    def send(i: int) -> None:
-        with httpx.Client(base_url=url, timeout=30) as c:
-            barrier.wait()
-            try:
-                results[i] = c.post("/api/v1/alerts", content=body,
-                                    headers={"Content-Type": MULTIPART, **bearer(token)})
-            except BaseException as exc:  # reported below
-                results[i] = exc
-
-    threads = [threading.Thread(target=send, args=(i,)) for i in range(n)]
-    for t in threads:
-        t.start()
-    for t in threads:
-        t.join(60)
-    for res in results:
-        if not isinstance(res, httpx.Response):
-            raise AssertionError(f"a concurrent upload failed: {res!r}")
-    return results  # type: ignore[return-value]
+    return _post_all(url, token, [body] * n)
 
 
 def test_simultaneous_identical_uploads_give_one_201_and_the_rest_200(fresh_settings: Settings) -> None:
@@ -778,6 +758,46 @@ def test_simultaneous_identical_uploads_give_one_201_and_the_rest_200(fresh_sett
     with committed_session(fresh_settings) as s:
         assert s.scalar(select(func.count(Alert.id)).where(Alert.event_id == "race-1")) == 1
         assert s.scalar(select(func.count(Clip.id))) == 1
+
+
+def test_device_work_queues_behind_its_slots_and_every_upload_lands(fresh_settings: Settings) -> None:
+    """With one slot, simultaneous uploads take turns: each is stored, none is refused."""
+    fresh_settings.device_work_slots = 1
+    tok, _ = _live_device(fresh_settings)
+    n = 6
+    with LiveServer(fresh_settings) as srv:
+        assert srv.app.state.device_work_limiter.total_tokens == 1
+        bodies = [alert_body(meta(event_id=f"slot-{i}", detected_at=dt.datetime.now(dt.UTC).isoformat()),
+                             sine(seconds=1.0, seed=90 + i)) for i in range(n)]
+        results = _post_all(srv.url, tok, bodies)
+    assert [r.status_code for r in results] == [201] * n
+    with committed_session(fresh_settings) as s:
+        assert s.scalar(select(func.count(Alert.id)).where(Alert.event_id.like("slot-%"))) == n
+
+
+def _post_all(url: str, token: str, bodies: list[bytes]) -> list[httpx.Response]:
+    """One upload per body, sent at once (released together by a barrier)."""
+    barrier = threading.Barrier(len(bodies))
+    results: list[httpx.Response | BaseException | None] = [None] * len(bodies)
+
+    def send(i: int) -> None:
+        with httpx.Client(base_url=url, timeout=30) as c:
+            barrier.wait()
+            try:
+                results[i] = c.post("/api/v1/alerts", content=bodies[i],
+                                    headers={"Content-Type": MULTIPART, **bearer(token)})
+            except BaseException as exc:  # reported below
+                results[i] = exc
+
+    threads = [threading.Thread(target=send, args=(i,)) for i in range(len(bodies))]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join(60)
+    for res in results:
+        if not isinstance(res, httpx.Response):
+            raise AssertionError(f"a concurrent upload failed: {res!r}")
+    return results  # type: ignore[return-value]
 
 
 @pytest.mark.parametrize("second_device", [False, True])

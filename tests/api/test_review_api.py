@@ -354,40 +354,50 @@ def test_clip_images_are_served_cached_and_guarded(client, staff_client, session
     _health_ok(client)
 
 
-def test_ingest_hook_computes_images_before_anyone_opens_the_clip(fresh_settings):
+def test_images_are_drawn_when_clips_are_handed_out_not_at_ingest(fresh_settings):
+    """Ingest only stores the clip; claiming draws the current and the next clip's images."""
+    import hashlib
+
     from fastapi.testclient import TestClient
 
     from server.app import create_app
+    from server.auth import service as auth_service
     from tests.conftest import committed_session
 
     with committed_session(fresh_settings) as s:
         trial = factories.make_trial(s)
+        trial.second_review_share = 0.0
         _, token = factories.make_device(s, trial)
+        reviewer, _ = factories.make_user(s, role="reviewer")
+        _, staff_token = auth_service.create_api_token(s, reviewer, "test")
     app = create_app(fresh_settings)
-    assert image_cache.precompute_for_alert in app.state.ingest_hooks
-    clip = factories.sine_wav(seconds=2.0)
-    meta = {
-        "event_id": "hook-1",
-        "sound_class": "smoke_alarm",
-        "score": 0.9,
-        "detected_at": dt.datetime.now(dt.UTC).isoformat(),
-        "clip_offset_s": 0.4,
-        "firmware": "1.0",
-    }
+    clips = [factories.sine_wav(seconds=2.0, freq=f) for f in (500.0, 900.0, 1300.0)]
+    shas = [hashlib.sha256(c).hexdigest() for c in clips]
     with TestClient(app) as c:
-        r = c.post(
-            "/api/v1/alerts",
-            headers={"Authorization": f"Bearer {token}"},
-            files={"meta": (None, json.dumps(meta)), "clip": ("c.wav", clip)},
-        )
-        assert r.status_code == 201, r.text
-        app.state.background.submit(lambda: None).result(timeout=30)  # one worker: runs after the hook
-    import hashlib
-
-    sha = hashlib.sha256(clip).hexdigest()
-    cached = image_cache.cached_meta(fresh_settings.cache_dir, sha)
-    assert cached is not None and cached.duration_s == pytest.approx(2.0)
-    assert image_cache.path_for(fresh_settings.cache_dir, sha, "spectrogram").is_file()
+        for n, clip in enumerate(clips):
+            meta = {
+                "event_id": f"img-{n}",
+                "sound_class": "smoke_alarm",
+                "score": 0.9,
+                "detected_at": dt.datetime.now(dt.UTC).isoformat(),
+                "clip_offset_s": 0.4,
+                "firmware": "1.0",
+            }
+            r = c.post(
+                "/api/v1/alerts",
+                headers={"Authorization": f"Bearer {token}"},
+                files={"meta": (None, json.dumps(meta)), "clip": ("c.wav", clip)},
+            )
+            assert r.status_code == 201, r.text
+        app.state.background.submit(lambda: None).result(timeout=30)  # one worker: drains the queue
+        assert [image_cache.cached_meta(fresh_settings.cache_dir, sha) for sha in shas] == [None] * 3
+        r = c.post("/api/v1/review/claims", json={}, headers={"Authorization": f"Bearer {staff_token}"})
+        assert r.status_code == 200, r.text
+        app.state.background.submit(lambda: None).result(timeout=30)
+    cached = [image_cache.cached_meta(fresh_settings.cache_dir, sha) for sha in shas]
+    assert cached[0] is not None and cached[0].duration_s == pytest.approx(2.0)
+    assert cached[1] is not None and cached[2] is None  # the current and the next clip only
+    assert image_cache.path_for(fresh_settings.cache_dir, shas[0], "spectrogram").is_file()
 
 
 # --- gold checks through the page -----------------------------------------------------------------

@@ -2,7 +2,7 @@
 
 Two servers run under uvicorn on 127.0.0.1, each in its own process, on the same database server:
 
-- trialhouse: ``create_app(Settings(...))`` as shipped (its ingest hooks included unless --no-hooks);
+- trialhouse: ``create_app(Settings(...))`` as shipped;
 - bare: a Starlette app that looks up the token, parses the multipart body (python-multipart, streamed
   to a temporary file in the store), checks the RIFF/WAVE header, hashes the clip, checks the
   event_id, writes and fsyncs the file (rename, directory fsync) and inserts one row; for heartbeats
@@ -17,7 +17,7 @@ reported with requests/s, p50 and p99 latency, and the ratio trialhouse/bare.
 Targets: ratio >= 0.5 for clips and heartbeats, p99 < 250 ms at 32 clients. It asserts nothing.
 
     python tests/benchmarks/bench_ingest.py [--postgres URL] [--rounds 3] [--seconds 4]
-                                            [--clients 1,8,32] [--backends sqlite,postgres] [--no-hooks]
+                                            [--clients 1,8,32] [--backends sqlite,postgres]
 
 Without --postgres a private PostgreSQL cluster is started in a temporary directory (initdb and
 pg_ctl, as the ``postgres`` user when run as root) with its default durability settings.
@@ -195,7 +195,7 @@ def bare_app(url: str, root: Path) -> Any:
                              Route("/api/v1/heartbeats", heartbeats, methods=["POST"])]), meta_sa, device
 
 
-def serve(kind: str, url: str, data_dir: Path, port: int, hooks: bool) -> None:
+def serve(kind: str, url: str, data_dir: Path, port: int) -> None:
     import uvicorn
 
     if kind == "bare":
@@ -205,8 +205,6 @@ def serve(kind: str, url: str, data_dir: Path, port: int, hooks: bool) -> None:
         from server.settings import Settings
 
         app = create_app(Settings(data_dir=data_dir, database_url=url, secret_key="bench-" + "k" * 40))
-        if not hooks:
-            app.state.ingest_hooks.clear()
     uvicorn.run(app, host="127.0.0.1", port=port, log_level="warning", access_log=False)
 
 
@@ -416,10 +414,10 @@ def wait_idle(pids: list[int], limit_s: float = 300.0) -> float:
     return time.time() - t0
 
 
-def start_server(kind: str, url: str, data_dir: Path, hooks: bool) -> tuple[subprocess.Popen[bytes], int]:
+def start_server(kind: str, url: str, data_dir: Path) -> tuple[subprocess.Popen[bytes], int]:
     port = free_port()
     cmd = [sys.executable, str(Path(__file__).resolve()), "--serve", kind, "--url", url,
-           "--data-dir", str(data_dir), "--port", str(port)] + ([] if hooks else ["--no-hooks"])
+           "--data-dir", str(data_dir), "--port", str(port)]
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     proc = subprocess.Popen(cmd, cwd=ROOT, env=env)
     deadline = time.time() + 60
@@ -466,8 +464,8 @@ def run_backend(name: str, th_url: str, bare_url: str, work: Path, args: argpars
     th_dir, bare_dir = work / f"{name}-th", work / f"{name}-bare"
     max_clients = max(args.clients)
     tokens = prepare(th_url, bare_url, th_dir, bare_dir, max_clients)
-    th, th_port = start_server("trialhouse", th_url, th_dir, args.hooks)
-    bare, bare_port = start_server("bare", bare_url, bare_dir, True)
+    th, th_port = start_server("trialhouse", th_url, th_dir)
+    bare, bare_port = start_server("bare", bare_url, bare_dir)
     cells: dict[tuple[str, int], Cell] = {}
     try:
         for kind in ("clip", "heartbeat"):
@@ -559,22 +557,20 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--rounds", type=int, default=3)
     p.add_argument("--seconds", type=float, default=4.0)
     p.add_argument("--warmup", type=float, default=0.5)
-    p.add_argument("--no-hooks", dest="hooks", action="store_false",
-                   help="trialhouse without its ingest hooks (review images)")
     p.add_argument("--serve", choices=["trialhouse", "bare"], help=argparse.SUPPRESS)
     p.add_argument("--url", help=argparse.SUPPRESS)
     p.add_argument("--data-dir", help=argparse.SUPPRESS)
     p.add_argument("--port", type=int, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.serve:
-        serve(args.serve, args.url, Path(args.data_dir), args.port, args.hooks)
+        serve(args.serve, args.url, Path(args.data_dir), args.port)
         return 0
     args.clients = [int(x) for x in args.clients.split(",")]
     args.rounds = max(3, args.rounds)
     backends = [b.strip() for b in args.backends.split(",") if b.strip()]
     clips = make_clips(8)
     print(f"clips: {len(clips)} distinct 10 s 16 kHz mono PCM16 WAVs of {len(clips[0])} bytes; "
-          f"{args.rounds} rounds x {args.seconds:g} s per side; ingest hooks {'on' if args.hooks else 'off'}; "
+          f"{args.rounds} rounds x {args.seconds:g} s per side; "
           f"{os.cpu_count()} CPUs", flush=True)
     out: list[str] = []
     with tempfile.TemporaryDirectory(prefix="trialhouse-bench-") as tmp:
