@@ -26,6 +26,9 @@ class Device(Base):
     last_seen_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     # Device clock minus server clock at the last heartbeat (positive: device runs ahead).
     clock_skew_s: Mapped[float | None] = mapped_column(Float)
+    # The earliest effective detection time among this device's alerts not yet known to lie inside a
+    # listening segment (see Alert.within_listening); the next heartbeat looks at them. NULL: none.
+    listening_check_from: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
     def __repr__(self) -> str:
@@ -108,6 +111,11 @@ class Alert(Base):
     firmware: Mapped[str] = mapped_column(String(64))
     clip_id: Mapped[int] = mapped_column(ForeignKey("clip.id"), index=True)
     clip_offset_s: Mapped[float] = mapped_column(Float)
+    # True once the effective detection time is known to lie inside one of the device's listening
+    # segments. Segments only ever grow, so True never goes stale; NULL means "not known yet" (the
+    # device was not listening then, or no heartbeat has covered that time yet) and analytics checks
+    # the segments for itself. It only spares the weekly summary a segment look-up per alert.
+    within_listening: Mapped[bool | None] = mapped_column()
 
     state: Mapped[str] = mapped_column(String(20), default=AlertState.pending)
     needs_second_review: Mapped[bool] = mapped_column(default=False)

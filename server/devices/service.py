@@ -9,7 +9,7 @@ import random
 from dataclasses import dataclass
 
 from pydantic import ValidationError
-from sqlalchemy import bindparam, func, select, update
+from sqlalchemy import bindparam, case, func, select, update
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 from sqlalchemy.orm.attributes import set_committed_value
@@ -160,10 +160,50 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     else:
         session.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
     session.flush()
+    if device.listening_check_from is not None:
+        settle_listening(session, device, now)
     r = rng or random
     jitter = settings.heartbeat_jitter
     interval = device.heartbeat_interval_s * (1.0 + r.uniform(-jitter, jitter))
     return now, max(1, round(interval))
+
+
+def settle_listening(session: Session, device: Device, now: dt.datetime) -> int:
+    """Mark the device's recent alerts that now lie inside a listening segment; return how many.
+
+    Runs after a heartbeat of a device that has alerts detected since ``check_from`` whose
+    listening was not yet known. An alert left unmarked is not lost: analytics checks the
+    segments itself for every alert not marked. The mark is a cache, never a verdict.
+    """
+    device_id, check_from = device.id, device.listening_check_from
+    if check_from is None:
+        return 0
+    # One day of slack covers clock-skew corrections; an alert outside it simply stays unmarked.
+    rows = session.execute(
+        select(Alert.id, Alert.detected_at, Alert.clock_skew_s)
+        .where(Alert.device_id == device_id, Alert.within_listening.is_(None),
+               Alert.detected_at >= check_from - dt.timedelta(days=1))).all()
+    inside, later = [], []
+    for alert_id, detected_at, skew in rows:
+        at = detected_at - dt.timedelta(seconds=skew) if skew else detected_at
+        if at < check_from:
+            continue
+        end = session.scalar(_SEGMENT_END_AT, {"device_id_v": device_id, "at_v": at})
+        if end is not None and end >= at:
+            inside.append(alert_id)
+        elif at > now:  # detected "after" this heartbeat: a later one may still cover it
+            later.append(at)
+    if inside:
+        session.execute(update(Alert).where(Alert.id.in_(inside)).values(within_listening=True)
+                        .execution_options(synchronize_session=False))
+    # Compare-and-set: an alert that arrived meanwhile moved the mark, and keeps it.
+    mark = min(later) if later else None
+    session.execute(update(Device)
+                    .where(Device.id == device_id, Device.listening_check_from == check_from)
+                    .values(listening_check_from=mark)
+                    .execution_options(synchronize_session=False))
+    set_committed_value(device, "listening_check_from", mark)
+    return len(inside)
 
 
 def listening_seconds(session: Session, device_ids: list[int], since: dt.datetime,
@@ -214,11 +254,24 @@ _UPLOAD_FACTS = select(
     .scalar_subquery().label("alert_id"),
     select(Trial.sound_classes).where(Trial.id == bindparam("trial_id_v")).scalar_subquery().label("classes"),
     select(Clip.id).where(Clip.sha256 == bindparam("sha_v")).scalar_subquery().label("clip_id"))
-# As installation_at, columns only.
+# As installation_at, columns only, with the end of the device's last segment started by then.
 _PLACED_AT = (select(Installation.id, Installation.home_id)
               .where(Installation.device_id == bindparam("device_id_v"), Installation.installed_at <= bindparam("at_v"),
                      (Installation.removed_at.is_(None)) | (Installation.removed_at > bindparam("at_v")))
-              .order_by(Installation.installed_at.desc()).limit(1))
+              .order_by(Installation.installed_at.desc()).limit(1).subquery("placed"))
+_SEGMENT_END_AT = (select(ListeningSegment.ended_at)
+                   .where(ListeningSegment.device_id == bindparam("device_id_v"),
+                          ListeningSegment.started_at <= bindparam("at_v"))
+                   .order_by(ListeningSegment.started_at.desc()).limit(1))
+_PLACEMENT = select(select(_PLACED_AT.c.id).scalar_subquery().label("installation_id"),
+                    select(_PLACED_AT.c.home_id).scalar_subquery().label("home_id"),
+                    _SEGMENT_END_AT.scalar_subquery().label("segment_end"))
+_NOTE_LISTENING_CHECK = (update(Device).where(Device.id == bindparam("device_id_v"))
+                         .values(listening_check_from=case(
+                             (Device.listening_check_from.is_(None)
+                              | (Device.listening_check_from > bindparam("at_v")), bindparam("at_v")),
+                             else_=Device.listening_check_from))
+                         .execution_options(synchronize_session=False))
 
 
 @dataclass(frozen=True)
@@ -315,9 +368,14 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
                   sound_class=meta.sound_class, score=meta.score, detected_at=meta.detected_at,
                   detected_at_text=str(data.get("detected_at"))[:64], clock_skew_s=skew,
                   received_at=now, firmware=meta.firmware, clip_offset_s=meta.clip_offset_s)
-    placed = session.execute(_PLACED_AT, {"device_id_v": device.id, "at_v": alert.effective_at}).first()
-    if placed is not None:
-        alert.installation_id, alert.home_id = placed.id, placed.home_id
+    at = alert.effective_at
+    placed = session.execute(_PLACEMENT, {"device_id_v": device.id, "at_v": at}).one()
+    alert.installation_id, alert.home_id = placed.installation_id, placed.home_id
+    if placed.segment_end is not None and placed.segment_end >= at:
+        alert.within_listening = True
+    else:
+        # Usually the detection came after the last heartbeat: the next one decides.
+        session.execute(_NOTE_LISTENING_CHECK, {"device_id_v": device.id, "at_v": at})
     clip_id: int | None = facts.clip_id
     for attempt in (1, 2):
         clip = _stored_clip(session, clip_id, key)

@@ -12,7 +12,7 @@ import io
 import re
 
 import pytest
-from sqlalchemy import func, select
+from sqlalchemy import func, select, update
 from sqlalchemy.orm import Session
 
 from server.analytics import rates, weekly
@@ -254,9 +254,11 @@ def test_heartbeat_gaps_and_alerts_while_offline_are_not_monitored(session, stor
     for h in range(12, 19):
         hb(at(1, h))
     hb(at(1, 19), listening=False)  # muted: closes the segment at its last listening beat
-    alert(session, store, settings, device, at(0, 10))
-    alert(session, store, settings, device, at(1, 6))  # in the heartbeat gap
-    alert(session, store, settings, device, at(1, 21))  # while muted
+    heard = alert(session, store, settings, device, at(0, 10))
+    gap = alert(session, store, settings, device, at(1, 6))  # in the heartbeat gap
+    muted = alert(session, store, settings, device, at(1, 21))  # while muted
+    # Only the alert inside a stored segment is marked at ingest; the others are left for analytics.
+    assert [a.within_listening for a in (heard, gap, muted)] == [True, None, None]
     segments = session.scalars(select(ListeningSegment).where(ListeningSegment.device_id == device.id)).all()
     assert sorted((s.ended_at - s.started_at).total_seconds() / 3600 for s in segments) == [6.0, 24.0]
 
@@ -267,6 +269,10 @@ def test_heartbeat_gaps_and_alerts_while_offline_are_not_monitored(session, stor
     assert f["alerts"]["outside_monitored_time"] == 2
     assert {r["reason"]: r["alerts"] for r in js["operations"]["outside_monitored_time"]} == {"offline": 2}
     assert js["operations"]["uptime_share"] == pytest.approx(30 / (7 * 24))
+    # The mark only spares analytics a segment look-up: with it cleared the summary is the same.
+    session.execute(update(Alert).values(within_listening=None))
+    session.flush()
+    assert summary(lead) == js
 
 
 def test_zero_monitored_time_is_a_state_not_a_division(session, store, settings, larch, lead):  # type: ignore[no-untyped-def]

@@ -300,3 +300,39 @@ def test_window_edges_and_unknown_fields_are_accepted(app, client, session: Sess
         r = _http_beat(client, tok, sent, battery=0.8, rssi_dbm=-61)
         assert r.status_code == 200, r.text
     assert session.get(Device, dev.id).clock_skew_s == pytest.approx(24 * 3600.0)  # type: ignore[union-attr]
+
+
+# --- alerts known to lie inside listening time (Alert.within_listening) -------------------------------
+
+def _flags(session: Session, alerts: list[Any], device: Device) -> tuple[list[bool | None], dt.datetime | None]:
+    session.expire_all()
+    return [session.get(type(a), a.id).within_listening for a in alerts], session.get(Device, device.id).listening_check_from
+
+
+def test_alert_after_the_last_beat_is_marked_by_the_next_beat(session: Session, device, store,  # type: ignore[no-untyped-def]
+                                                              plain_settings: Settings) -> None:
+    dev, _ = device
+    for k in range(3):
+        service.record_heartbeat(session, device=dev, beat=beat(sent_at=T0 + 60 * k * S), settings=plain_settings,
+                                 now=T0 + 60 * k * S)
+    inside = factories.make_alert(session, store, plain_settings, dev, detected_at=T0 + 30 * S, now=T0 + 125 * S)
+    after = factories.make_alert(session, store, plain_settings, dev, detected_at=T0 + 150 * S, now=T0 + 151 * S)
+    # Detected before the last beat: inside a stored segment at once. After it: not known yet.
+    assert _flags(session, [inside, after], dev) == ([True, None], T0 + 150 * S)
+    service.record_heartbeat(session, device=dev, beat=beat(sent_at=T0 + 180 * S), settings=plain_settings,
+                             now=T0 + 180 * S)
+    assert _flags(session, [inside, after], dev) == ([True, True], None)
+
+
+def test_alert_in_a_gap_stays_unmarked_and_the_device_is_cleared(session: Session, device, store,  # type: ignore[no-untyped-def]
+                                                                 plain_settings: Settings) -> None:
+    dev, _ = device
+    service.record_heartbeat(session, device=dev, beat=beat(sent_at=T0), settings=plain_settings, now=T0)
+    gap_alert = factories.make_alert(session, store, plain_settings, dev, detected_at=T0 + 200 * S,
+                                     now=T0 + 201 * S)
+    assert _flags(session, [gap_alert], dev) == ([None], T0 + 200 * S)
+    # Ten minutes of silence: the next beat opens a new segment, so the alert's time stays offline.
+    service.record_heartbeat(session, device=dev, beat=beat(sent_at=T0 + 600 * S), settings=plain_settings,
+                             now=T0 + 600 * S)
+    assert _flags(session, [gap_alert], dev) == ([None], None)
+    assert [s[:2] for s in segments(session, dev)] == [(T0, T0), (T0 + 600 * S, T0 + 600 * S)]
