@@ -1,7 +1,10 @@
 """The only analytics module that reads the database: aggregated frames for the weekly summary.
 
-Counts and monitored seconds are summed in SQL (per monitoring window, week and class), so the
-cost grows with homes and weeks, not with alerts and listening segments.
+Monitored seconds are summed in SQL per monitoring window and week, so that part grows with homes
+and weeks, not with listening segments. Alerts come back as one narrow row each (their text
+values coded into one integer) and are placed in windows and weeks, and counted, by pandas: on
+SQLite every GROUP BY sorts all its rows, so three groupings cost several times one read. Alerts
+already known to lie in a listening segment (`Alert.within_listening`) skip the segment look-up.
 
 Frames of `PilotData` (times are aware UTC; epoch values are UTC seconds; a missing cause or
 resemblance grade is ""):
@@ -23,13 +26,14 @@ resemblance grade is ""):
 - staged_events: staged_event_id, home_id, sound_class, started_at, ended_at, source.
 - staged_alerts: alerts that may detect a staged event (same class, device installed in the
   event's home, near its time): alert_id, device_id, home_id, sound_class, detected_at (clock skew
-  corrected, exact), score, window_id, counted (bool), period, week_index, outcome, cause,
-  resemblance, score_milli.
+  corrected, exact), score, window_id (float, NaN outside every window), counted (bool), period,
+  week_index, outcome, cause, resemblance, score_milli.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import gc
 import logging
 import secrets
 from collections.abc import Iterator
@@ -133,13 +137,43 @@ def _local_week(dialect: str, epoch: Any, steps: list[trend.OffsetStep]) -> Expr
     return week
 
 
-@contextmanager
-def _window_table(session: Session, windows: pd.DataFrame) -> Iterator[sa.Table]:
-    """The monitored windows as a temporary table indexed by device and start.
+def _roomier_sorts(session: Session, dialect: str) -> None:
+    """PostgreSQL, for this transaction only: hash joins and aggregates stay in memory (the default
+    4 MB sends a million listening segments to disk in batches), and no query is compiled to
+    machine code first (large row estimates trigger it, and it costs more than it saves here)."""
+    if dialect == "postgresql":
+        session.execute(sa.text("SET LOCAL work_mem = '64MB'"))
+        session.execute(sa.text("SET LOCAL jit = off"))
 
-    Alerts are then read in one sequential pass, each finding its window through the index; a
-    VALUES list would be scanned once per alert on SQLite.
+
+@contextmanager
+def _window_table(session: Session, dialect: str, windows: pd.DataFrame) -> Iterator[sa.FromClause]:
+    """The monitored windows (window_id, device_id, ws, we in epoch s) as a table to join.
+
+    SQLite: a temporary table indexed by device and start, so segments are joined through the
+    index (a VALUES list would be scanned once per segment). PostgreSQL: an inline VALUES list,
+    which hash-joins and, unlike a temporary table, lets the planner scan segments in parallel.
     """
+    if dialect == "postgresql":
+        rows = [
+            (int(i), int(d), float(a), float(b))
+            for i, d, a, b in zip(
+                windows["window_id"],
+                windows["device_id"],
+                trend.epoch_s(windows["started_at"]),
+                trend.epoch_s(windows["ended_at"]),
+                strict=True,
+            )
+        ] or [(-1, -1, 0.0, 0.0)]  # VALUES needs a row; this one matches no segment
+        yield sa.values(
+            sa.column("window_id", sa.Integer),
+            sa.column("device_id", sa.Integer),
+            sa.column("ws", sa.Float),
+            sa.column("we", sa.Float),
+            name="w",
+            literal_binds=True,
+        ).data(rows)
+        return
     name = f"analytics_window_{secrets.token_hex(6)}"
     table = sa.Table(
         name,
@@ -184,13 +218,6 @@ def _frame(result: sa.Result[Any], columns: list[str]) -> pd.DataFrame:
     if not rows:
         return pd.DataFrame({c: pd.Series(dtype=object) for c in columns})
     return pd.DataFrame(dict(zip(columns, (list(col) for col in zip(*rows, strict=True)), strict=True)))
-
-
-def _blank_missing(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
-    """Missing causes and grades as "" (a NULL would drop out of, or split, pandas group keys)."""
-    for col in columns:
-        frame[col] = frame[col].fillna("").astype(str)
-    return frame
 
 
 def trial_window(trial: Trial, week: trend.Week, now: dt.datetime) -> tuple[dt.datetime, dt.datetime]:
@@ -276,20 +303,23 @@ def load_pilot(
     )
 
     steps = trend.utc_offset_steps(trial.timezone, start, end)
-    with _window_table(session, windows) as w:
+    _roomier_sorts(session, dialect)
+    with _window_table(session, dialect, windows) as w:
         monitored = _monitored(session, dialect, w, steps, trial.timezone)
-        parts = _alert_parts(session, dialect, trial, w, steps, start, end, week)
-        staged_alerts = _staged_alerts(
-            session,
-            dialect,
-            trial,
-            w,
-            steps,
-            start,
-            end,
-            week,
-            margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
-        )
+    book = _codebook(trial, devices["firmware"].tolist())
+    parts = _alert_parts(session, dialect, trial, book, windows, steps, start, end, week)
+    staged_alerts = _staged_alerts(
+        session,
+        dialect,
+        trial,
+        book,
+        windows,
+        steps,
+        start,
+        end,
+        week,
+        margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
+    )
     return PilotData(
         trial=trial,
         week=week,
@@ -348,7 +378,7 @@ def _home_intervals(session: Session, trial: Trial, homes: pd.DataFrame, end: dt
 
 
 def _monitored(
-    session: Session, dialect: str, w: sa.Table, steps: list[trend.OffsetStep], tz: str
+    session: Session, dialect: str, w: sa.FromClause, steps: list[trend.OffsetStep], tz: str
 ) -> pd.DataFrame:
     """Listening seconds per window and local week: segments clipped to the windows, in SQL."""
     s = ListeningSegment.__table__.c
@@ -370,19 +400,18 @@ def _monitored(
         .subquery("pieces")
     )
     first, last = _local_week(dialect, pieces.c.a, steps), _local_week(dialect, pieces.c.b, steps)
-    agg = _frame(
-        session.execute(
-            sa.select(
-                pieces.c.window_id,
-                first,
-                last,
-                sa.func.count(),
-                sa.func.sum(pieces.c.a),
-                sa.func.sum(pieces.c.b),
-            )
-            .where(pieces.c.b > pieces.c.a)
-            .group_by(pieces.c.window_id, first, last)
-        ),
+    agg = _fetch(
+        session,
+        sa.select(
+            pieces.c.window_id,
+            first,
+            last,
+            sa.func.count(),
+            sa.func.sum(pieces.c.a),
+            sa.func.sum(pieces.c.b),
+        )
+        .where(pieces.c.b > pieces.c.a)
+        .group_by(pieces.c.window_id, first, last),
         ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"],
     )
     agg = agg.astype(
@@ -398,234 +427,306 @@ def _monitored(
     return exposure.spread_over_buckets(agg, lambda k: trend.week_start_s(k, tz))
 
 
-def _alert_rows(
-    dialect: str,
-    trial: Trial,
-    w: sa.Table,
-    steps: list[trend.OffsetStep],
-    start: dt.datetime,
-    end: dt.datetime,
-    week: trend.Week,
-    *where: Any,
+# Text columns of an alert read travel as small integer codes packed into one number (a driver
+# builds a Python object per value, and those objects are most of the read's cost); a value outside
+# the known list comes back as text in a column of its own, so nothing is lost.
+_TEXT_KEYS = ("sound_class", "outcome", "cause", "resemblance", "firmware")
+_OUTCOMES = ("false_alarm", "confirmed", "unsure", "unusable", "pending")
+_GRADES = ("resembles", "unrelated")
+
+
+@dataclass(frozen=True)
+class _Codebook:
+    """Known values per text column; code 0 is NULL, 1..n the values, n + 1 "see the text column"."""
+
+    known: dict[str, tuple[str, ...]]
+
+    def radix(self, key: str) -> int:
+        return len(self.known[key]) + 2
+
+
+def _codebook(trial: Trial, firmware: list[str]) -> _Codebook:
+    return _Codebook(
+        {
+            "sound_class": tuple(trial.sound_classes or ()),
+            "outcome": _OUTCOMES,
+            "cause": tuple(c["code"] for c in (trial.causes or [])),
+            "resemblance": _GRADES,
+            "firmware": tuple(sorted(set(firmware))),
+        }
+    )
+
+
+# Joins the text values of an alert with an unknown value: no such value holds a control character
+# (device firmware strings are checked at the door; the rest are the trial's own codes).
+_SEP = "\x1f"
+
+
+def _alert_facts(
+    dialect: str, trial: Trial, book: _Codebook, start: dt.datetime, end: dt.datetime, *where: Any
 ) -> sa.Select[Any]:
-    """Per-alert derived columns: effective time t (clock skew corrected, epoch s), the monitored
-    window holding it (NULL when none), whether the device was listening then (counted 0/1),
-    period, local week, outcome and the score in thousandths."""
+    """One row per alert of the trial whose effective time t (clock skew corrected, epoch s) lies in
+    [start, end): t, packed (device_id, listening, assigned and the text codes; see `_unpack`),
+    score, and rest: NULL, or when any text value is not in `book`, all five joined by `_SEP`."""
     a = Alert.__table__.c
     t = _epoch_s(dialect, a.detected_at) - sa.func.coalesce(a.clock_skew_s, 0.0)
     t_at = sa.case(
         (a.clock_skew_s.is_(None), a.detected_at),
         else_=_minus_seconds(dialect, a.detected_at, a.clock_skew_s),
     )
-    outcome = sa.case(
-        (a.state == AlertState.final, sa.func.coalesce(a.final_label, "pending")), else_="pending"
-    )
-    al = (
-        sa.select(
-            a.id,
-            a.device_id,
-            a.home_id,
-            a.sound_class,
-            a.score,
-            a.firmware,
-            a.clock_skew_s,
-            outcome.label("outcome"),
-            a.final_cause.label("cause"),
-            a.final_resemblance.label("resemblance"),
-            t.label("t"),
-            t_at.label("t_at"),
-        )
-        .where(a.trial_id == trial.id, *where)
-        .subquery("al")
-    )
     seg = ListeningSegment.__table__.c
-    # The segment that started last at or before the alert is the only one that can hold it
-    # (a device's segments do not overlap): one index seek per alert. Compared as stored values,
-    # not epoch seconds, so that an index holding ended_at too answers it alone.
+    # The segment that started last at or before the alert is the only one that can hold it (a
+    # device's segments do not overlap): one index seek, and only for alerts not already known to
+    # lie inside a segment (Alert.within_listening), which in a running pilot are few.
     seg_end = (
         sa.select(seg.ended_at)
-        .where(seg.device_id == al.c.device_id, seg.started_at <= al.c.t_at)
+        .where(seg.device_id == a.device_id, seg.started_at <= t_at)
         .order_by(seg.started_at.desc())
         .limit(1)
         .scalar_subquery()
     )
-    listening = sa.case((w.c.window_id.is_(None), 0), (seg_end >= al.c.t_at, 1), else_=0)
-    return (
-        sa.select(
-            al.c.id,
-            al.c.device_id,
-            al.c.home_id,
-            al.c.sound_class,
-            al.c.score,
-            al.c.firmware,
-            al.c.clock_skew_s,
-            al.c.outcome,
-            al.c.cause,
-            al.c.resemblance,
-            w.c.window_id,
-            listening.label("counted"),
-            sa.case((al.c.t >= week.start_at.timestamp(), "week"), else_="before").label("period"),
-            _local_week(dialect, al.c.t, steps).label("week_index"),
-            # The epsilon keeps a score like 0.57 (569.999... in binary) in bucket 570.
-            _floor_int(dialect, al.c.score * 1000.0 + 1e-6).label("score_milli"),
-        )
-        .select_from(
-            al.outerjoin(w, (w.c.device_id == al.c.device_id) & (al.c.t >= w.c.ws) & (al.c.t < w.c.we))
-        )
-        .where(al.c.t >= start.timestamp(), al.c.t < end.timestamp())
+    listening = sa.case((a.within_listening.is_(True), 1), (seg_end >= t_at, 1), else_=0)
+    outcome = sa.case(
+        (a.state == AlertState.final, sa.func.coalesce(a.final_label, "pending")), else_="pending"
     )
+    text = {
+        "sound_class": a.sound_class,
+        "outcome": outcome,
+        "cause": a.final_cause,
+        "resemblance": a.final_resemblance,
+        "firmware": a.firmware,
+    }
+    # 64-bit throughout: PostgreSQL would otherwise overflow a 32-bit product before any cast.
+    packed: Any = sa.cast(listening, sa.BigInteger) + 2 * sa.case((a.home_id.is_(None), 0), else_=1)
+    scale = 4
+    unknown = []
+    for key in _TEXT_KEYS:
+        known, col = book.known[key], text[key]
+        whens = [(col.is_(None), 0)] + [(col == v, i + 1) for i, v in enumerate(known)]
+        packed = packed + scale * sa.case(*whens, else_=len(known) + 1)
+        scale *= book.radix(key)
+        unknown.append(col.not_in(known) if known else col.is_not(None))
+    packed = packed + scale * sa.cast(a.device_id, sa.BigInteger)
+    joined: Any = sa.literal("", sa.String)
+    for n, key in enumerate(_TEXT_KEYS):
+        joined = joined + (_SEP if n else "") + sa.func.coalesce(text[key], "")
+    return sa.select(
+        t.label("t"),
+        packed.label("packed"),
+        a.score,
+        sa.case((sa.or_(*unknown), joined), else_=sa.null()).label("rest"),
+    ).where(a.trial_id == trial.id, t >= start.timestamp(), t < end.timestamp(), *where)
 
 
-# The grouping keys of the parts of the alert statement (a part leaves the others NULL).
-_PART_KEYS: dict[str, Any] = {
-    "window_id": sa.Integer,
-    "period": sa.String,
-    "week_index": sa.BigInteger,
-    "sound_class": sa.String,
-    "outcome": sa.String,
-    "cause": sa.String,
-    "resemblance": sa.String,
-    "firmware": sa.String,
-    "score_milli": sa.BigInteger,
-    "assigned": sa.Integer,
-    "counted": sa.Integer,
+_FACT_COLUMNS = ["t", "packed", "score", "rest"]
+
+
+def _unpack(frame: pd.DataFrame, book: _Codebook) -> pd.DataFrame:
+    """The packed column back into device_id, listening, assigned and the text columns (a NULL
+    cause or grade as "")."""
+    packed = frame.pop("packed").to_numpy(dtype=np.int64)
+    rest_text = frame.pop("rest").to_numpy(dtype=object)
+    frame["listening"] = packed % 2
+    frame["assigned"] = (packed // 2) % 2
+    rest = packed // 4
+    others = np.flatnonzero(pd.notna(rest_text))
+    split = [str(v).split(_SEP) for v in rest_text[others]]
+    for n, key in enumerate(_TEXT_KEYS):
+        known = book.known[key]
+        code = rest % book.radix(key)
+        rest = rest // book.radix(key)
+        # Categorical columns group on their integer codes. Slot 0 (NULL) is "" for a cause or
+        # grade; the other columns are never NULL, so their slot 0 only needs a unique name.
+        categories = ["" if key in ("cause", "resemblance") else "\x00null", *known]
+        other = others[code[others] == len(known) + 1]
+        if len(other):
+            by_row = dict(zip(others.tolist(), (parts[n] for parts in split), strict=True))
+            extra, codes = np.unique(
+                np.array([by_row[r] for r in other.tolist()], dtype=object), return_inverse=True
+            )
+            fresh = [v for v in extra.tolist() if v not in categories]
+            where = {v: i for i, v in enumerate([*categories, *fresh])}
+            categories = [*categories, *fresh]
+            code = code.copy()
+            code[other] = np.array([where[v] for v in extra.tolist()], dtype=np.int64)[codes]
+        frame[key] = pd.Categorical.from_codes(code, categories=categories)
+    frame["device_id"] = rest
+    return frame
+
+
+def _max_skew_s(session: Session, trial: Trial) -> float:
+    """The largest clock-skew correction among the trial's alerts (s), for search margins."""
+    a = Alert.__table__.c
+    value = session.scalar(sa.select(sa.func.max(sa.func.abs(a.clock_skew_s))).where(a.trial_id == trial.id))
+    return float(value or 0.0)
+
+
+# How the columns of a large read are typed: numbers go straight into numpy arrays; text stays as
+# Python objects, which pandas groups fastest.
+_KINDS: dict[str, str] = {
+    "packed": "int",
+    "alert_id": "int",
+    "t": "float",
+    "score": "float",
+    "clock_skew_s": "float",
 }
+
+
+def _fetch(session: Session, stmt: sa.Select[Any], columns: list[str]) -> pd.DataFrame:
+    """Rows of `stmt` as a frame, read through the driver's own cursor.
+
+    Hundreds of thousands of rows come back here: result-row objects and pandas' type inference
+    would cost more than the query itself, so the driver's rows are taken as they are.
+    """
+    conn = session.connection()
+    # Half a million row tuples would set off the cyclic garbage collector again and again; none
+    # of them can be part of a cycle.
+    collecting = gc.isenabled()
+    gc.disable()
+    try:
+        if conn.dialect.name == "postgresql":
+            # Binary transfer: numbers arrive as numbers, with no text to parse for each one.
+            compiled = stmt.compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
+            with conn.connection.driver_connection.cursor(binary=True) as cursor:  # type: ignore[union-attr]
+                cursor.execute(compiled.string, compiled.params)
+                rows = cursor.fetchall()
+        else:
+            result = conn.execute(stmt)
+            try:
+                rows = result.cursor.fetchall()
+            finally:
+                result.close()
+        cols: list[Any] = list(zip(*rows, strict=True)) if rows else [() for _ in columns]
+        del rows
+    finally:
+        if collecting:
+            gc.enable()
+    data: dict[str, Any] = {}
+    for name, values in zip(columns, cols, strict=True):
+        kind = _KINDS.get(name, "object")
+        if kind == "int":
+            data[name] = np.array(values, dtype=np.int64)
+        elif kind == "float":
+            data[name] = np.array(values, dtype=np.float64)  # NULL becomes NaN
+        else:
+            arr = np.empty(len(values), dtype=object)
+            arr[:] = values
+            data[name] = pd.Series(arr, dtype=object)
+    return pd.DataFrame(data)
+
+
+def place_alerts(
+    facts: pd.DataFrame, windows: pd.DataFrame, steps: list[trend.OffsetStep], week: trend.Week
+) -> pd.DataFrame:
+    """Give each alert its monitored window, counted flag, local week, period and score bucket.
+
+    Pure. `facts` has device_id, t (epoch s), listening (0/1) and score; `windows` has window_id,
+    device_id, started_at, ended_at (a device's windows do not overlap). An alert is in a window
+    when ws <= t < we; it is counted when it is in a window and its device was listening. Every
+    alert of `facts` lies before the end of `week`, so period is "week" exactly when its local week
+    index is the week's.
+    """
+    out = facts.reset_index(drop=True)
+    n = len(out)
+    window_id = np.full(n, -1, dtype=np.int64)
+    if n and len(windows):
+        w = pd.DataFrame(
+            {
+                "device_id": windows["device_id"].astype(np.int64).to_numpy(),
+                "ws": trend.epoch_s(windows["started_at"]),
+                "we": trend.epoch_s(windows["ended_at"]),
+                "wid": windows["window_id"].astype(np.int64).to_numpy(),
+            }
+        ).sort_values("ws", kind="mergesort")
+        order = np.argsort(out["t"].to_numpy(), kind="mergesort")
+        left = pd.DataFrame(
+            {"device_id": out["device_id"].to_numpy()[order], "t": out["t"].to_numpy()[order]}
+        )
+        hit = pd.merge_asof(left, w, left_on="t", right_on="ws", by="device_id", direction="backward")
+        inside = (hit["t"] < hit["we"]).to_numpy()
+        window_id[order[inside]] = hit["wid"].to_numpy()[inside].astype(np.int64)
+    t = out["t"].to_numpy(dtype=np.float64)
+    if len(steps) > 1:
+        nexts = np.array([s.from_s for s in steps[1:]], dtype=np.float64)
+        offsets = np.array([s.offset_s for s in steps], dtype=np.float64)[
+            np.searchsorted(nexts, t, side="right")
+        ]
+    else:
+        offsets = np.full(n, steps[0].offset_s if steps else 0.0)
+    week_index = np.floor((t + offsets + trend.MONDAY_SHIFT_S) / float(trend.WEEK_S)).astype(np.int64)
+    out["window_id"] = window_id
+    out["counted"] = (window_id >= 0) & (out["listening"].to_numpy() == 1)
+    out["week_index"] = week_index
+    out["period"] = np.where(week_index >= week.index, "week", "before")
+    # The epsilon keeps a score like 0.57 (569.999... in binary) in bucket 570.
+    out["score_milli"] = np.floor(out["score"].to_numpy(dtype=np.float64) * 1000.0 + 1e-6).astype(np.int64)
+    return out
 
 
 def _alert_parts(
     session: Session,
     dialect: str,
     trial: Trial,
-    w: sa.Table,
+    book: _Codebook,
+    windows: pd.DataFrame,
     steps: list[trend.OffsetStep],
     start: dt.datetime,
     end: dt.datetime,
     week: trend.Week,
 ) -> dict[str, Any]:
-    """The alert aggregates in one statement over one pass of the alerts (materialised once)."""
-    rows = _alert_rows(dialect, trial, w, steps, start, end, week).subquery("rows")
-    # Only the columns the parts group or aggregate are kept (the materialised copy stays narrow).
-    keep = (
-        "window_id",
-        "home_id",
-        "sound_class",
-        "outcome",
-        "cause",
-        "resemblance",
-        "firmware",
-        "counted",
-        "period",
-        "week_index",
-        "score_milli",
-        "score",
-        "clock_skew_s",
+    """The alert aggregates from one read of the trial's alerts.
+
+    One narrow row per alert comes back and pandas groups it three ways: on SQLite a GROUP BY
+    sorts every row, so three of them cost several times one read.
+    """
+    facts = place_alerts(
+        _unpack(_fetch(session, _alert_facts(dialect, trial, book, start, end), _FACT_COLUMNS), book),
+        windows,
+        steps,
+        week,
     )
-    base = sa.select(*[rows.c[k] for k in keep]).cte("base").prefix_with("MATERIALIZED")
-    c = base.c
-
-    def part(name: str, keys: dict[str, Any], where: Any = None) -> sa.Select[Any]:
-        cols: list[Any] = [sa.literal(name).label("part")]
-        cols += [
-            keys[k].label(k) if k in keys else sa.cast(sa.null(), typ).label(k)
-            for k, typ in _PART_KEYS.items()
-        ]
-        cols += [
-            sa.func.count().label("alerts"),
-            sa.cast(sa.func.min(c.score), sa.Float).label("min_score"),
-            sa.cast(sa.func.max(sa.func.abs(c.clock_skew_s)), sa.Float).label("max_skew"),
-        ]
-        q = sa.select(*cols).select_from(base)
-        return (q if where is None else q.where(where)).group_by(*keys.values())
-
-    assigned = sa.case((c.home_id.is_(None), 0), else_=1)
-    stmt = sa.union_all(
-        part(
-            "main",
-            {
-                "window_id": c.window_id,
-                "period": c.period,
-                "sound_class": c.sound_class,
-                "outcome": c.outcome,
-                "cause": c.cause,
-                "resemblance": c.resemblance,
-                "firmware": c.firmware,
-                "assigned": assigned,
-                "counted": c.counted,
-            },
-        ),
-        part(
-            "by_week",
-            {"week_index": c.week_index, "sound_class": c.sound_class, "outcome": c.outcome},
-            c.counted == 1,
-        ),
-        part(
-            "fa_scores",
-            {"period": c.period, "sound_class": c.sound_class, "score_milli": c.score_milli},
-            (c.counted == 1) & (c.outcome == "false_alarm"),
-        ),
-    )
-    df = _frame(session.execute(stmt), ["part", *_PART_KEYS, "alerts", "min_score", "max_skew"])
-
-    def pick(name: str, keep: list[str]) -> pd.DataFrame:
-        out = df.loc[df["part"] == name, keep].reset_index(drop=True)
-        for col in {"week_index", "score_milli", "alerts", "assigned", "counted"} & set(keep):
-            out[col] = out[col].astype(np.int64)
-        return out
-
-    main = _blank_missing(
-        pick(
-            "main",
-            [
-                "window_id",
-                "period",
-                "sound_class",
-                "outcome",
-                "cause",
-                "resemblance",
-                "firmware",
-                "assigned",
-                "counted",
-                "alerts",
-                "min_score",
-                "max_skew",
-            ],
-        ),
-        ["cause", "resemblance"],
-    )
-    counted = main[main["counted"] == 1].astype({"window_id": np.int64})
-    outside = main[main["counted"] == 0]
+    counted = facts[facts["counted"]]
+    outside = facts[~facts["counted"]]
     # Outside every window: unassigned (no installation at ingest) or not monitored (the home's
     # state or the installation dates exclude the time). Inside one, not listening: offline.
     reason = np.where(
         outside["assigned"] == 0,
         "unassigned",
-        np.where(outside["window_id"].isna(), "not_monitored", "offline"),
+        np.where(outside["window_id"] < 0, "not_monitored", "offline"),
     )
-    not_counted = (
-        outside.assign(reason=reason)
-        .groupby(["period", "sound_class", "reason"], as_index=False)["alerts"]
-        .sum()
-    )
-    skew = pd.to_numeric(main["max_skew"], errors="coerce").max() if len(main) else 0.0
+
+    def tally(frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+        out = frame.groupby(keys, as_index=False, observed=True).size().rename(columns={"size": "alerts"})
+        return _plain_text(out)
+
+    fa = counted[counted["outcome"] == "false_alarm"]
+    floors = facts.groupby(["sound_class", "firmware"], as_index=False, observed=True)["score"].min()
     return {
-        "max_skew_s": 0.0 if pd.isna(skew) else float(skew),
-        "counted": counted.groupby(
-            ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"], as_index=False
-        )["alerts"].sum(),
-        "by_week": pick("by_week", ["week_index", "sound_class", "outcome", "alerts"]),
-        "fa_scores": pick("fa_scores", ["period", "sound_class", "score_milli", "alerts"]),
-        "score_floors": main.groupby(["sound_class", "firmware"], as_index=False)["min_score"]
-        .min()
-        .astype({"min_score": np.float64}),
-        "not_counted": not_counted,
+        "max_skew_s": _max_skew_s(session, trial),
+        "counted": tally(counted, ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]),
+        "by_week": tally(counted, ["week_index", "sound_class", "outcome"]),
+        "fa_scores": tally(fa, ["period", "sound_class", "score_milli"]),
+        "score_floors": _plain_text(floors.rename(columns={"score": "min_score"})).astype(
+            {"min_score": np.float64}
+        ),
+        "not_counted": tally(outside.assign(reason=reason), ["period", "sound_class", "reason"]),
     }
+
+
+def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:
+    """Categorical columns back to plain text (object) columns, as the rest of analytics expects."""
+    for col in frame.columns:
+        if isinstance(frame[col].dtype, pd.CategoricalDtype):
+            frame[col] = frame[col].astype(object)
+    return frame
 
 
 def _staged_alerts(
     session: Session,
     dialect: str,
     trial: Trial,
-    w: sa.Table,
+    book: _Codebook,
+    windows: pd.DataFrame,
     steps: list[trend.OffsetStep],
     start: dt.datetime,
     end: dt.datetime,
@@ -665,13 +766,26 @@ def _staged_alerts(
         .distinct()
     )
     ids = sorted(session.scalars(near))
-    columns = [
+    columns = [*_FACT_COLUMNS, "alert_id", "home_id", "detected_at", "clock_skew_s"]
+    chunks = []
+    for k in range(0, max(len(ids), 1), _ID_CHUNK):
+        stmt = _alert_facts(dialect, trial, book, start, end, a.id.in_(ids[k : k + _ID_CHUNK])).add_columns(
+            a.id, a.home_id, a.detected_at, a.clock_skew_s
+        )
+        chunks.append(_unpack(_fetch(session, stmt, columns), book))
+    frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0]
+    frame = place_alerts(frame, windows, steps, week)
+    # Matching happens at the window edges, so the time comes exact from the column (the epoch
+    # seconds computed in SQL carry SQLite's julianday rounding, some tens of microseconds).
+    skew = pd.to_numeric(frame["clock_skew_s"], errors="coerce").fillna(0.0).astype(np.float64)
+    frame["detected_at"] = pd.to_datetime(frame["detected_at"], utc=True) - pd.to_timedelta(skew, unit="s")
+    frame["window_id"] = frame["window_id"].astype(float).where(frame["window_id"] >= 0)
+    keep = [
         "alert_id",
         "device_id",
         "home_id",
         "sound_class",
         "detected_at",
-        "clock_skew_s",
         "score",
         "window_id",
         "counted",
@@ -682,46 +796,4 @@ def _staged_alerts(
         "resemblance",
         "score_milli",
     ]
-    chunks = []
-    for k in range(0, max(len(ids), 1), _ID_CHUNK):
-        rows = _alert_rows(
-            dialect,
-            trial,
-            w,
-            steps,
-            start,
-            end,
-            week,
-            a.id.in_(ids[k : k + _ID_CHUNK]),
-        ).subquery()
-        chunks.append(
-            _frame(
-                session.execute(
-                    sa.select(
-                        rows.c.id,
-                        rows.c.device_id,
-                        rows.c.home_id,
-                        rows.c.sound_class,
-                        a.detected_at,
-                        rows.c.clock_skew_s,
-                        rows.c.score,
-                        rows.c.window_id,
-                        rows.c.counted,
-                        rows.c.period,
-                        rows.c.week_index,
-                        rows.c.outcome,
-                        rows.c.cause,
-                        rows.c.resemblance,
-                        rows.c.score_milli,
-                    ).join_from(rows, Alert.__table__, a.id == rows.c.id)
-                ),
-                columns,
-            )
-        )
-    frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0]
-    # Matching happens at the window edges, so the time comes exact from the column (the epoch
-    # seconds computed in SQL carry SQLite's julianday rounding, some tens of microseconds).
-    skew = pd.to_numeric(frame["clock_skew_s"], errors="coerce").fillna(0.0).astype(np.float64)
-    frame["detected_at"] = pd.to_datetime(frame["detected_at"], utc=True) - pd.to_timedelta(skew, unit="s")
-    frame["counted"] = frame["counted"].astype(bool)
-    return _blank_missing(frame.drop(columns="clock_skew_s"), ["cause", "resemblance"])
+    return _plain_text(frame[keep].astype({"alert_id": np.int64}))
