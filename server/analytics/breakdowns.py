@@ -49,16 +49,38 @@ def rates_by(counts: pd.DataFrame, key: str, *, confidence_level: float = 0.95) 
     Returns <key>, false_alarms, home_months, rate, low, high, reason, by most monitored time.
     """
     g = counts.groupby(key, as_index=False, dropna=False)[["false_alarms", "home_months"]].sum()
-    g = g.sort_values(["home_months", key], ascending=[False, True], kind="mergesort").reset_index(drop=True)
-    r = rates.poisson_rates(
+    return rates_table(
+        key,
+        pd.Index(g[key]),
         g["false_alarms"].to_numpy(),
-        g["home_months"].to_numpy(dtype=np.float64),
+        g["home_months"].to_numpy(),
         confidence_level=confidence_level,
     )
-    g["false_alarms"] = r["events"].to_numpy()
-    g["rate"], g["low"], g["high"] = r["estimate"].to_numpy(), r["low"].to_numpy(), r["high"].to_numpy()
-    g["reason"] = pd.Series(r["reason"].to_numpy(), dtype=object)
-    return g
+
+
+def rates_table(
+    key: str,
+    groups: pd.Index,
+    false_alarms: ArrayLike,
+    home_months: ArrayLike,
+    *,
+    confidence_level: float = 0.95,
+) -> pd.DataFrame:
+    """`rates_by` for counts already summed: group values, and false alarms and home-months per group."""
+    fa, hm = np.asarray(false_alarms), np.asarray(home_months)
+    order = rates.sort_order([hm, groups], [False, True])
+    r = rates.poisson_rate_arrays(fa[order], hm[order].astype(np.float64), confidence_level=confidence_level)
+    return pd.DataFrame(
+        {
+            key: groups.take(order),
+            "false_alarms": r.events,
+            "home_months": hm[order],
+            "rate": r.estimate,
+            "low": r.low,
+            "high": r.high,
+            "reason": r.reasons(),
+        }
+    )
 
 
 def heterogeneity(
@@ -96,8 +118,11 @@ def heterogeneity(
     p = t / t.sum()
     expected = n * p
     observed = float(((x - expected) ** 2 / expected).sum())
-    sims = rng.multinomial(n, p, size=draws)
-    sim_stats = ((sims - expected) ** 2 / expected).sum(axis=1)
+    # (sims - expected) ** 2 / expected, summed per draw, in one buffer.
+    sim = rng.multinomial(n, p, size=draws) - expected
+    np.square(sim, out=sim)
+    np.divide(sim, expected, out=sim)
+    sim_stats = sim.sum(axis=1)
     # A relative slack so that ties with the observed statistic count despite rounding.
     hits = int((sim_stats >= observed * (1 - 1e-9)).sum())
     p_value = (1 + hits) / (1 + draws)
@@ -129,8 +154,11 @@ def firmware_ratio(
     """
 
     def pick(v: str) -> tuple[int, float]:
-        row = table[table[key] == v]
-        return (int(row["false_alarms"].sum()), float(row["home_months"].sum()))
+        rows = (table[key] == v).to_numpy(dtype=bool)
+        return (
+            int(table["false_alarms"].to_numpy()[rows].sum()),
+            float(table["home_months"].to_numpy()[rows].sum()),
+        )
 
     (xa, ta), (xb, tb) = pick(version_a), pick(version_b)
     return rates.rate_ratio(xa, ta, xb, tb, confidence_level=confidence_level)

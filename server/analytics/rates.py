@@ -6,12 +6,13 @@ Pure functions over numbers and numpy arrays: no database, clock or global rando
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
-from scipy import optimize, stats
+from scipy import optimize, special, stats
 
 # A home-month is 365.25 / 12 = 30.4375 days of monitored time.
 HOME_MONTH_DAYS = 365.25 / 12
@@ -144,6 +145,35 @@ class Readiness:
     home_bootstrap_high: float | None = None
 
 
+def sort_order(keys: Sequence[ArrayLike | pd.Series], ascending: Sequence[bool]) -> NDArray[np.intp]:
+    """Row order of a stable sort by several keys, missing values last.
+
+    The order `DataFrame.sort_values(..., kind="mergesort", na_position="last")` gives (it ranks
+    the keys the same way, then calls np.lexsort), for the short tables of a summary, where
+    building and sorting a frame costs far more than the sort itself.
+    """
+    labels = []
+    for i, (key, asc) in enumerate(zip(reversed(keys), reversed(ascending), strict=True)):
+        series = key if isinstance(key, pd.Series) else pd.Series(key)
+        values = series.to_numpy() if isinstance(series.dtype, np.dtype) else series.array
+        if isinstance(values, np.ndarray) and values.dtype.kind == "f":
+            labels.append(values if asc else -values)  # NaN stays NaN and sorts last
+        elif isinstance(values, np.ndarray) and values.dtype.kind in "iub":
+            labels.append(values if asc else ~values)
+        elif i == 0 and asc and series.is_monotonic_increasing:
+            # The last key, already in order with no missing value: the rows' own order ranks it
+            # (equal values stay in that order, as a stable sort would leave them).
+            labels.append(np.arange(len(series)))
+        else:
+            codes, uniques = pd.factorize(values, sort=True)
+            n = len(uniques)
+            missing = codes == -1
+            codes = np.where(missing, n, codes)
+            labels.append(codes if asc else np.where(missing, codes, n - codes - 1))
+    order: NDArray[np.intp] = np.lexsort(labels)
+    return order
+
+
 def _check_level(confidence_level: float) -> None:
     if not 0.0 < confidence_level < 1.0:
         raise ValueError(f"confidence_level must be between 0 and 1, got {confidence_level}")
@@ -151,6 +181,14 @@ def _check_level(confidence_level: float) -> None:
 
 # ---------------------------------------------------------------------------------------
 # Poisson counts and rates
+
+
+def _chi2_ppf(q: float, df: Floats) -> Floats:
+    """`scipy.stats.chi2.ppf(q, df)` for 0 < q < 1 and df > 0, by the distribution's own formula
+    2 gammaincinv(df / 2, q): the same values, without the generic argument handling that costs more
+    than the quantiles themselves on the short arrays of a summary."""
+    out: Floats = 2 * special.gammaincinv(df / 2, q)
+    return out
 
 
 def garwood_limits(events: ArrayLike, confidence_level: float = 0.95) -> Limits:
@@ -165,10 +203,65 @@ def garwood_limits(events: ArrayLike, confidence_level: float = 0.95) -> Limits:
     if np.any(k < 0):
         raise ValueError("event counts must not be negative")
     alpha = 1.0 - confidence_level
+    if k.ndim == 1 and len(k) > 64:
+        # Counts repeat (many homes see the same few numbers): find each distinct count's limits once.
+        distinct, at = np.unique(k, return_inverse=True)
+        low, high = _garwood(distinct, alpha)
+        return Limits(low=low[at], high=high[at])
+    low, high = _garwood(k, alpha)
+    return Limits(low=low, high=high)
+
+
+def _garwood(k: Floats, alpha: float) -> tuple[Floats, Floats]:
     # chi2 with 0 degrees of freedom is undefined: the lower limit at k = 0 is 0 by definition.
-    low = np.where(k > 0, stats.chi2.ppf(alpha / 2, np.maximum(2 * k, 1e-300)) / 2, 0.0)
-    high = stats.chi2.ppf(1 - alpha / 2, 2 * k + 2) / 2
-    return Limits(low=np.asarray(low, dtype=np.float64), high=np.asarray(high, dtype=np.float64))
+    low = np.where(k > 0, _chi2_ppf(alpha / 2, np.maximum(2 * k, 1e-300)) / 2, 0.0)
+    high = _chi2_ppf(1 - alpha / 2, 2 * k + 2) / 2
+    return np.asarray(low, dtype=np.float64), np.asarray(high, dtype=np.float64)
+
+
+@dataclass(frozen=True)
+class RateArrays:
+    """Rates per home-month with exact intervals as plain arrays: `poisson_rates` without the frame."""
+
+    events: NDArray[np.int64]
+    home_months: Floats
+    estimate: Floats
+    low: Floats
+    high: Floats
+
+    def reasons(self) -> pd.Series:
+        """None, or "no_monitored_time" where there is none (object dtype keeps the None)."""
+        reasons = np.full(len(self.home_months), None, dtype=object)
+        reasons[~(self.home_months > 0)] = NO_MONITORED_TIME
+        return pd.Series(reasons, dtype=object)
+
+
+def poisson_rate_arrays(
+    events: ArrayLike,
+    home_months: ArrayLike,
+    *,
+    confidence_level: float = 0.95,
+    method: str = "garwood",
+) -> RateArrays:
+    """The figures of `poisson_rates`, element by element, as arrays."""
+    if method != "garwood":
+        raise ValueError(f"unknown method {method!r}; expected 'garwood'")
+    k = np.atleast_1d(np.asarray(events, dtype=np.float64))
+    t = np.atleast_1d(np.asarray(home_months, dtype=np.float64))
+    k, t = np.broadcast_arrays(k, t)
+    if np.any(t < 0):
+        raise ValueError("monitored time must not be negative")
+    lim = garwood_limits(k, confidence_level)
+    has_time = t > 0
+    safe_t = np.where(has_time, t, 1.0)
+    nan = np.nan
+    return RateArrays(
+        events=k.astype(np.int64),
+        home_months=t,
+        estimate=np.where(has_time, k / safe_t, nan),
+        low=np.where(has_time, lim.low / safe_t, nan),
+        high=np.where(has_time, lim.high / safe_t, nan),
+    )
 
 
 def poisson_rates(
@@ -183,28 +276,17 @@ def poisson_rates(
     Returns a frame with columns events, home_months, estimate, low, high, confidence_level,
     method, reason. Zero monitored time gives NaN limits and reason "no_monitored_time".
     """
-    if method != "garwood":
-        raise ValueError(f"unknown method {method!r}; expected 'garwood'")
-    k = np.atleast_1d(np.asarray(events, dtype=np.float64))
-    t = np.atleast_1d(np.asarray(home_months, dtype=np.float64))
-    k, t = np.broadcast_arrays(k, t)
-    if np.any(t < 0):
-        raise ValueError("monitored time must not be negative")
-    lim = garwood_limits(k, confidence_level)
-    has_time = t > 0
-    safe_t = np.where(has_time, t, 1.0)
-    nan = np.nan
+    r = poisson_rate_arrays(events, home_months, confidence_level=confidence_level, method=method)
     return pd.DataFrame(
         {
-            "events": k.astype(np.int64),
-            "home_months": t,
-            "estimate": np.where(has_time, k / safe_t, nan),
-            "low": np.where(has_time, lim.low / safe_t, nan),
-            "high": np.where(has_time, lim.high / safe_t, nan),
+            "events": r.events,
+            "home_months": r.home_months,
+            "estimate": r.estimate,
+            "low": r.low,
+            "high": r.high,
             "confidence_level": confidence_level,
             "method": method,
-            # object dtype keeps None (pandas would turn it into NaN in a string column).
-            "reason": pd.Series([None if h else NO_MONITORED_TIME for h in has_time], dtype=object),
+            "reason": r.reasons(),
         }
     )
 
@@ -226,13 +308,13 @@ def poisson_rate(
 
     References: Garwood (1936), Biometrika 28:437-442.
     """
-    row = poisson_rates([events], [home_months], confidence_level=confidence_level, method=method).iloc[0]
+    r = poisson_rate_arrays([events], [home_months], confidence_level=confidence_level, method=method)
     return RateEstimate(
         events=int(events),
         home_months=float(home_months),
-        estimate=float(row.estimate),
-        low=float(row.low),
-        high=float(row.high),
+        estimate=float(r.estimate[0]),
+        low=float(r.low[0]),
+        high=float(r.high[0]),
         confidence_level=confidence_level,
         method=method,
         reason=None if home_months > 0 else NO_MONITORED_TIME,
@@ -281,7 +363,7 @@ def proportion_limits(
     ok = n > 0
     safe_n = np.where(ok, n, 1.0)
     if method == "wilson":
-        z = stats.norm.ppf(1 - alpha / 2)
+        z = special.ndtri(1 - alpha / 2)  # stats.norm.ppf, without its argument handling
         centre = (x + z * z / 2) / (safe_n + z * z)
         half = z / (safe_n + z * z) * np.sqrt(x * (safe_n - x) / safe_n + z * z / 4)
         low, high = centre - half, centre + half
@@ -405,17 +487,14 @@ def rate_ratio_test(
     method = "exact-conditional mid-p" if mid_p else "exact-conditional"
     if n == 0:
         return RatioTest(null_ratio=null_ratio, alternative=alternative, p_value=1.0, method=method)
-    at = float(stats.binom.pmf(events_a, n, p0))
-    upper = float(stats.binom.sf(events_a - 1, n, p0))  # P(X >= x)
-    lower = float(stats.binom.cdf(events_a, n, p0))  # P(X <= x)
     if alternative == "larger":
-        p = upper
+        p = float(stats.binom.sf(events_a - 1, n, p0))  # P(X >= x)
     elif alternative == "smaller":
-        p = lower
+        p = float(stats.binom.cdf(events_a, n, p0))  # P(X <= x)
     else:
         p = float(stats.binomtest(events_a, n, p0).pvalue)
     if mid_p:
-        p -= at / 2
+        p -= float(stats.binom.pmf(events_a, n, p0)) / 2
     return RatioTest(null_ratio=null_ratio, alternative=alternative, p_value=p, method=method)
 
 
@@ -489,8 +568,11 @@ def home_bootstrap_limits(
         xs, ts, est = x[sl], t[sl], estimate[sl]
         m = xs.shape[0]
         idx = rng.integers(0, homes, size=(m, resamples, homes))
-        rows = np.arange(m)[:, None, None]
-        draws = np.sort(xs[rows, idx].sum(axis=2) / ts[rows, idx].sum(axis=2), axis=1)
+        # One pilot at a time through np.take: the same sums as fancy indexing the chunk, quicker.
+        draws = np.empty((m, resamples))
+        for j in range(m):
+            draws[j] = np.take(xs[j], idx[j]).sum(axis=1) / np.take(ts[j], idx[j]).sum(axis=1)
+        draws.sort(axis=1)
         if method == "percentile":
             q = np.broadcast_to(levels, (m, 2))
         else:
@@ -594,8 +676,14 @@ def overdispersion(events: ArrayLike, home_months: ArrayLike) -> Overdispersion:
 # Readiness
 
 
-def readiness(events: int, home_months: float, target: float, *, confidence_level: float = 0.95,
-              home_bootstrap_high: float | None = None) -> Readiness:
+def readiness(
+    events: int,
+    home_months: float,
+    target: float,
+    *,
+    confidence_level: float = 0.95,
+    home_bootstrap_high: float | None = None,
+) -> Readiness:
     """Whether the false-alarm rate is shown to be at or below `target` per home-month.
 
     Uses the two-sided exact interval (the one printed beside the rate): "met" when its upper

@@ -83,27 +83,26 @@ def home_pareto(homes: pd.DataFrame, *, confidence_level: float = 0.95) -> pd.Da
     share, cumulative_share; sorted by false alarms (most first), then rate, then home code.
     Shares are NaN when there are no false alarms at all.
     """
-    out = homes.loc[:, ["home_code", "false_alarms", "home_months"]].copy()
-    out["false_alarms"] = out["false_alarms"].astype(np.int64)
-    out["home_months"] = out["home_months"].astype(np.float64)
-    r = rates.poisson_rates(
-        out["false_alarms"].to_numpy(), out["home_months"].to_numpy(), confidence_level=confidence_level
+    codes = homes["home_code"].reset_index(drop=True)
+    fa = homes["false_alarms"].astype(np.int64).to_numpy()
+    hm = homes["home_months"].astype(np.float64).to_numpy()
+    r = rates.poisson_rate_arrays(fa, hm, confidence_level=confidence_level)
+    order = rates.sort_order([fa, r.estimate, codes], [False, False, True])
+    fa = fa[order]
+    total = int(fa.sum())
+    nan = np.full(len(fa), np.nan)
+    return pd.DataFrame(
+        {
+            "home_code": codes.take(order).reset_index(drop=True),
+            "false_alarms": fa,
+            "home_months": hm[order],
+            "rate": r.estimate[order],
+            "low": r.low[order],
+            "high": r.high[order],
+            "share": fa / total if total > 0 else nan,
+            "cumulative_share": np.cumsum(fa) / total if total > 0 else nan,
+        }
     )
-    out["rate"], out["low"], out["high"] = r["estimate"].to_numpy(), r["low"].to_numpy(), r["high"].to_numpy()
-    out = out.sort_values(
-        ["false_alarms", "rate", "home_code"],
-        ascending=[False, False, True],
-        na_position="last",
-        kind="mergesort",
-    ).reset_index(drop=True)
-    total = int(out["false_alarms"].sum())
-    if total > 0:
-        out["share"] = out["false_alarms"] / total
-        out["cumulative_share"] = out["false_alarms"].cumsum() / total
-    else:
-        out["share"] = np.nan
-        out["cumulative_share"] = np.nan
-    return out
 
 
 def concentration(homes: pd.DataFrame, *, confidence_level: float = 0.95) -> Concentration:
@@ -113,7 +112,13 @@ def concentration(homes: pd.DataFrame, *, confidence_level: float = 0.95) -> Con
     then the lower code). With no false alarms the shares and Gini are NaN with reason
     "no_false_alarms" and there is no top home.
     """
-    table = home_pareto(homes, confidence_level=confidence_level)
+    return pareto_concentration(
+        home_pareto(homes, confidence_level=confidence_level), confidence_level=confidence_level
+    )
+
+
+def pareto_concentration(table: pd.DataFrame, *, confidence_level: float = 0.95) -> Concentration:
+    """`concentration` from the `home_pareto` table of the same homes, when it is already built."""
     total = int(table["false_alarms"].sum())
     total_t = float(table["home_months"].sum())
     if total == 0 or table.empty:
@@ -153,29 +158,26 @@ def category_shares(
     -------
     Columns <category>, false_alarms, share, cumulative_share, rate, low, high; most first.
     """
-    grouped = (
-        counts.groupby(category, dropna=False, sort=False)["false_alarms"]
-        .sum()
-        .astype(np.int64)
-        .reset_index()
+    # One group per value, a missing value included (a groupby with dropna=False).
+    codes, values = pd.factorize(counts[category], use_na_sentinel=False)
+    weights = counts["false_alarms"].to_numpy(dtype=np.float64)
+    fa = np.bincount(codes, weights=weights, minlength=len(values)).astype(np.int64)
+    order = rates.sort_order([fa, values], [False, True])
+    fa = fa[order]
+    total = int(fa.sum())
+    r = rates.poisson_rate_arrays(fa, np.full(len(fa), home_months), confidence_level=confidence_level)
+    nan = np.full(len(fa), np.nan)
+    return pd.DataFrame(
+        {
+            category: values.take(order),
+            "false_alarms": fa,
+            "share": fa / total if total else nan,
+            "cumulative_share": np.cumsum(fa) / total if total else nan,
+            "rate": r.estimate,
+            "low": r.low,
+            "high": r.high,
+        }
     )
-    grouped = grouped.sort_values(
-        ["false_alarms", category], ascending=[False, True], kind="mergesort"
-    ).reset_index(drop=True)
-    total = int(grouped["false_alarms"].sum())
-    grouped["share"] = grouped["false_alarms"] / total if total else np.nan
-    grouped["cumulative_share"] = grouped["false_alarms"].cumsum() / total if total else np.nan
-    r = rates.poisson_rates(
-        grouped["false_alarms"].to_numpy(),
-        np.full(len(grouped), home_months),
-        confidence_level=confidence_level,
-    )
-    grouped["rate"], grouped["low"], grouped["high"] = (
-        r["estimate"].to_numpy(),
-        r["low"].to_numpy(),
-        r["high"].to_numpy(),
-    )
-    return grouped
 
 
 def homes_above_target(pareto: pd.DataFrame, target: float) -> HomesAboveTarget:
@@ -184,16 +186,17 @@ def homes_above_target(pareto: pd.DataFrame, target: float) -> HomesAboveTarget:
     "Above" compares the home's point estimate; "clearly above" needs the whole exact interval
     above the target (lower limit > target). Homes without monitored time are not counted.
     """
-    monitored = pareto[pareto["home_months"] > 0]
-    n = len(monitored)
-    above = monitored[monitored["rate"] > target]
-    clearly = monitored[monitored["low"] > target]
+    monitored = pareto["home_months"].to_numpy() > 0
+    n = int(monitored.sum())
+    above = int((monitored & (pareto["rate"].to_numpy() > target)).sum())
+    clearly = monitored & (pareto["low"].to_numpy() > target)
+    n_clearly = int(clearly.sum())
     return HomesAboveTarget(
         homes=n,
         target=target,
-        above=len(above),
-        clearly_above=len(clearly),
-        share_above=len(above) / n if n else math.nan,
-        share_clearly_above=len(clearly) / n if n else math.nan,
-        clearly_above_codes=tuple(str(c) for c in clearly["home_code"]),
+        above=above,
+        clearly_above=n_clearly,
+        share_above=above / n if n else math.nan,
+        share_clearly_above=n_clearly / n if n else math.nan,
+        clearly_above_codes=tuple(str(c) for c in pareto["home_code"][clearly]),
     )

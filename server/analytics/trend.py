@@ -6,6 +6,7 @@ Pure functions; the clock is passed in (`now`), never read.
 from __future__ import annotations
 
 import datetime as dt
+import functools
 import re
 from dataclasses import dataclass
 from zoneinfo import ZoneInfo
@@ -75,7 +76,9 @@ def local_midnight(day: dt.date, tz: str | ZoneInfo) -> dt.datetime:
     return out
 
 
+@functools.lru_cache(maxsize=4096)
 def week_from_index(index: int, tz: str) -> Week:
+    """The ISO week with local week index `index` in `tz` (cached: every trend asks for the same weeks)."""
     zone = ZoneInfo(tz)
     monday = EPOCH_MONDAY + dt.timedelta(days=7 * int(index))
     year, week, _ = monday.isocalendar()
@@ -168,7 +171,7 @@ def weekly_rates(
     """
     idx = np.arange(first_index, last_index + 1)
     full = weeks.groupby("week_index")[["false_alarms", "home_months"]].sum().reindex(idx, fill_value=0)
-    r = rates.poisson_rates(
+    r = rates.poisson_rate_arrays(
         full["false_alarms"].to_numpy(),
         full["home_months"].to_numpy(dtype=np.float64),
         confidence_level=confidence_level,
@@ -178,11 +181,11 @@ def weekly_rates(
         {
             "week": [w.label for w in labels],
             "starts_on": [w.starts_on for w in labels],
-            "false_alarms": r["events"].to_numpy(),
-            "home_months": r["home_months"].to_numpy(),
-            "rate": r["estimate"].to_numpy(),
-            "low": r["low"].to_numpy(),
-            "high": r["high"].to_numpy(),
-            "reason": pd.Series(r["reason"].to_numpy(), dtype=object),
+            "false_alarms": r.events,
+            "home_months": r.home_months,
+            "rate": r.estimate,
+            "low": r.low,
+            "high": r.high,
+            "reason": r.reasons(),
         }
     )

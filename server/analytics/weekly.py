@@ -10,6 +10,7 @@ import dataclasses
 import datetime as dt
 import logging
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
@@ -273,18 +274,84 @@ def build_summary(
     )
 
 
+_COUNTED_KEYS = ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]
+
+
+def _codes(frame: pd.DataFrame, other: pd.DataFrame, key: str) -> tuple[np.ndarray, np.ndarray, Any]:
+    """Codes of column `key` in both frames on one scale, and the values they stand for.
+
+    A missing value is a value of its own, as when pandas merges on the column.
+    """
+    both = pd.concat([frame[key], other[key]], ignore_index=True)
+    codes, values = pd.factorize(both, use_na_sentinel=False)
+    return codes[: len(frame)], codes[len(frame) :], values
+
+
+def _matches_per_row(frame_codes: list[np.ndarray], other_codes: list[np.ndarray]) -> np.ndarray:
+    """For each frame row, how many rows of the other frame have the same codes in every key."""
+    here = np.zeros(len(frame_codes[0]), dtype=np.int64)
+    there = np.zeros(len(other_codes[0]), dtype=np.int64)
+    size = 1
+    for a, b in zip(frame_codes, other_codes, strict=True):
+        n = int(max(a.max(initial=-1), b.max(initial=-1))) + 1
+        if size * n >= 2**62:  # renumber the keys so far densely before they could overflow
+            dense = pd.factorize(np.concatenate([here, there]))[0]
+            here, there, size = dense[: len(here)], dense[len(here) :], int(dense.max(initial=-1)) + 1
+        here, there, size = here * n + a, there * n + b, size * n
+    keys, counts = np.unique(there, return_counts=True)
+    if len(keys) == 0:
+        return np.zeros(len(here), dtype=np.int64)
+    at = np.searchsorted(keys, here).clip(max=len(keys) - 1)
+    return np.where(keys[at] == here, counts[at], 0)
+
+
 def _subtract(frame: pd.DataFrame, removed: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
     """`frame` (keys..., alerts) less the `removed` rows (one per alert), matched on `keys`."""
     if removed.empty:
         return frame
-    n = removed.groupby(keys, dropna=False).size().rename("removed").reset_index()
-    out = frame.merge(n, on=keys, how="left")
-    out["alerts"] = out["alerts"] - out["removed"].fillna(0).astype(np.int64)
-    return out.drop(columns="removed")[out["alerts"] > 0].reset_index(drop=True)
+    codes = [_codes(frame, removed, k) for k in keys]
+    taken = _matches_per_row([c[0] for c in codes], [c[1] for c in codes])
+    alerts = frame["alerts"].to_numpy(dtype=np.int64) - taken
+    return frame.assign(alerts=alerts)[alerts > 0].reset_index(drop=True)
+
+
+@dataclass(frozen=True)
+class _Groups:
+    """Windows grouped by a key (home code, firmware, ...) and their monitored time in one scope."""
+
+    keys: pd.Index
+    home_months: np.ndarray
+    of_window: np.ndarray  # each window's group; -1 for none
+
+    @classmethod
+    def of(cls, home_months: pd.Series, key: pd.Series, *, dropna: bool) -> _Groups:
+        # pandas' own grouped (compensated) sum: the same totals as grouping the windows frame.
+        summed = home_months.groupby(key, dropna=dropna).sum()
+        return cls(summed.index, summed.to_numpy(dtype=np.float64), summed.index.get_indexer(key))
+
+    def total(self, per_window: np.ndarray) -> np.ndarray:
+        """An integer count per window, summed by group."""
+        inside = self.of_window >= 0
+        sums = np.bincount(self.of_window[inside], weights=per_window[inside], minlength=len(self.keys))
+        return sums.astype(np.int64)
+
+
+@dataclass(frozen=True)
+class _Tally:
+    """Counted alerts of one class in one scope."""
+
+    false_alarms: np.ndarray  # per window
+    by_outcome: dict[str, int]
+    causes: pd.DataFrame  # cause, false_alarms
+    grades: pd.DataFrame  # grade, false_alarms
 
 
 class _Context:
-    """Frames prepared once (staged detections taken out) for every class and scope."""
+    """Frames prepared once (staged detections taken out) for every class and scope.
+
+    Everything that depends on the scope alone (monitored time per window, home and breakdown
+    group) is summed here once; `figures` adds the class's counts to it.
+    """
 
     def __init__(
         self,
@@ -311,9 +378,7 @@ class _Context:
         matched = data.staged_alerts[data.staged_alerts["alert_id"].isin(self.match.matches["alert_id"])]
         self.matched = matched
         m = matched[matched["counted"]]
-        self.counted = _subtract(
-            data.counted, m, ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]
-        )
+        self._count_rows(data.counted, m)
         self.by_week = _subtract(data.by_week, m, ["week_index", "sound_class", "outcome"])
         self.fa_scores = _subtract(
             data.fa_scores, m[m["outcome"] == "false_alarm"], ["period", "sound_class", "score_milli"]
@@ -325,6 +390,67 @@ class _Context:
             "to_date": mon.groupby("window_id")["seconds"].sum(),
         }
         self.firmware_pair = firmware_pair or self._busiest_firmware()
+
+        self._homes: dict[str, _Groups] = {}
+        self._dims: dict[tuple[str, str], _Groups] = {}
+        for scope in SCOPES:
+            seconds = self.windows["window_id"].map(self.seconds[scope]).fillna(0.0)
+            home_months = seconds / rates.HOME_MONTH_S
+            self._homes[scope] = _Groups.of(home_months, self.windows["home_code"], dropna=True)
+            for dim, _ in DIMENSIONS:
+                self._dims[scope, dim] = _Groups.of(home_months, self.windows[dim], dropna=False)
+        events = self.match.events
+        self._events = {
+            k: events.iloc[v] for k, v in events.groupby("sound_class", sort=False).indices.items()
+        }
+        self._trend_home_months: pd.DataFrame | None = None
+        fs = self.fa_scores
+        self._scores = fs["score_milli"].to_numpy(dtype=np.float64)
+        self._score_alerts = fs["alerts"].to_numpy()
+        self._score_week = (fs["period"] == "week").to_numpy(dtype=bool)
+        self._score_rows = dict(fs.groupby("sound_class", sort=False).indices)
+        floors = data.score_floors
+        self._floors = {
+            k: whatif.score_floor(floors["min_score"].to_numpy()[rows])
+            for k, rows in floors.groupby("sound_class", sort=False).indices.items()
+        }
+        week_matched = matched[matched["period"] == "week"]
+        self._staged_detections = {
+            "week": week_matched["sound_class"].value_counts().to_dict(),
+            "to_date": matched["sound_class"].value_counts().to_dict(),
+        }
+        self._outside = {
+            scope: self._scoped(data.not_counted, scope).groupby("sound_class")["alerts"].sum().to_dict()
+            for scope in SCOPES
+        }
+
+    def _count_rows(self, counted: pd.DataFrame, detections: pd.DataFrame) -> None:
+        """Counted alerts as arrays, one element per row of `counted` less the staged detections.
+
+        The same rows as `_subtract(counted, detections, _COUNTED_KEYS)` would leave, without building
+        that frame: every figure needs only these columns' codes and the alerts.
+        """
+        codes = {k: _codes(counted, detections, k) for k in _COUNTED_KEYS}
+        alerts = counted["alerts"].to_numpy(dtype=np.int64)
+        if detections.empty:
+            rows = np.arange(len(counted))
+        else:
+            alerts = alerts - _matches_per_row([c[0] for c in codes.values()], [c[1] for c in codes.values()])
+            rows = np.flatnonzero(alerts > 0)
+
+        def code_of(key: str, value: str) -> int:
+            found = np.flatnonzero(pd.Index(codes[key][2]) == value)
+            return int(found[0]) if len(found) else -1
+
+        self._c_alerts = alerts[rows]
+        self._c_window = pd.Index(self.windows["window_id"]).get_indexer(counted["window_id"])[rows]
+        self._c_week = codes["period"][0][rows] == code_of("period", "week")
+        self._c_false_alarm = codes["outcome"][0][rows] == code_of("outcome", "false_alarm")
+        classes = codes["sound_class"]
+        self._c_rows = {v: np.flatnonzero(classes[0][rows] == i) for i, v in enumerate(classes[2])}
+        self._c_outcome = (codes["outcome"][0][rows], codes["outcome"][2])
+        self._c_cause = (codes["cause"][0][rows], codes["cause"][2])
+        self._c_grade = (codes["resemblance"][0][rows], codes["resemblance"][2])
 
     def _busiest_firmware(self) -> tuple[str, str] | None:
         t = self.windows.assign(seconds=self.windows["window_id"].map(self.seconds["to_date"]).fillna(0.0))
@@ -338,65 +464,87 @@ class _Context:
     def _scoped(self, frame: pd.DataFrame, scope: str) -> pd.DataFrame:
         return frame[frame["period"] == "week"] if scope == "week" else frame
 
+    def _tally(self, sound_class: str, scope: str) -> _Tally:
+        rows = self._c_rows.get(sound_class, np.zeros(0, dtype=np.intp))
+        if scope == "week":
+            rows = rows[self._c_week[rows]]
+        alerts = self._c_alerts
+        codes, outcomes = self._c_outcome
+        known = rows[codes[rows] >= 0]
+        by_outcome = np.bincount(codes[known], weights=alerts[known], minlength=len(outcomes))
+        fa = rows[self._c_false_alarm[rows]]
+        windows = fa[self._c_window[fa] >= 0]
+        per_window = np.bincount(
+            self._c_window[windows], weights=alerts[windows], minlength=len(self.windows)
+        ).astype(np.int64)
+        return _Tally(
+            false_alarms=per_window,
+            by_outcome={o: int(n) for o, n in zip(outcomes, by_outcome, strict=True)},
+            causes=self._by_category(fa, self._c_cause, "cause", lambda c: c or NOT_RECORDED),
+            # Every grade has a row, if only of zero.
+            grades=self._by_category(
+                fa, self._c_grade, "grade", lambda g: GRADE_NAMES.get(g, NOT_GRADED), GRADE_NAMES.values()
+            ),
+        )
+
+    def _by_category(
+        self,
+        rows: np.ndarray,
+        factorized: tuple[np.ndarray, Any],
+        column: str,
+        name: Any,
+        zero: Iterable[str] = (),
+    ) -> pd.DataFrame:
+        """False alarms of `rows` summed by a category (one row per value seen, under its shown name),
+        and a row of zero for each name in `zero`."""
+        codes, values = factorized
+        present = np.flatnonzero(np.bincount(codes[rows], minlength=len(values)))
+        sums = np.bincount(codes[rows], weights=self._c_alerts[rows], minlength=len(values))
+        names = [name(values[i]) for i in present]
+        zeros = list(zero)
+        counts = np.concatenate([sums[present].astype(np.int64), np.zeros(len(zeros), dtype=np.int64)])
+        return pd.DataFrame({column: names + zeros, "false_alarms": counts})
+
     def figures(self, class_index: int, sound_class: str, scope: str) -> ClassFigures:
         d, level, target = self.data, self.level, self.target
         s_index = SCOPES.index(scope)
-        counted = self._scoped(self.counted, scope)
-        counted = counted[counted["sound_class"] == sound_class]
-        fa = counted[counted["outcome"] == "false_alarm"]
-        per_window = self.windows.assign(
-            seconds=self.windows["window_id"].map(self.seconds[scope]).fillna(0.0),
-            false_alarms=self.windows["window_id"]
-            .map(fa.groupby("window_id")["alerts"].sum())
-            .fillna(0)
-            .astype(np.int64),
+        tally = self._tally(sound_class, scope)
+        per_home = self._homes[scope]
+        fa_home = per_home.total(tally.false_alarms)
+        keep = (per_home.home_months > 0) | (fa_home > 0)
+        home_fa, home_hm = fa_home[keep], per_home.home_months[keep]
+        homes = pd.DataFrame(
+            {"home_code": per_home.keys[keep], "false_alarms": home_fa, "home_months": home_hm}
         )
-        per_window["home_months"] = per_window["seconds"] / rates.HOME_MONTH_S
-        homes = per_window.groupby("home_code", as_index=False)[["false_alarms", "home_months"]].sum()
-        homes = homes[(homes["home_months"] > 0) | (homes["false_alarms"] > 0)]
-        total_fa = int(homes["false_alarms"].sum())
-        total_hm = float(homes["home_months"].sum())
+        total_fa = int(home_fa.sum())
+        total_hm = float(home_hm.sum())  # numpy's sum, which is what pandas' Series.sum does here
         rate = rates.poisson_rate(total_fa, total_hm, confidence_level=level)
         boot = rates.home_bootstrap(
-            homes["false_alarms"].to_numpy(),
-            homes["home_months"].to_numpy(),
+            home_fa,
+            home_hm,
             rng=self._rng(class_index, s_index),
             resamples=self.resamples,
             confidence_level=level,
         )
-        disp = rates.overdispersion(homes["false_alarms"].to_numpy(), homes["home_months"].to_numpy())
+        disp = rates.overdispersion(home_fa, home_hm)
         pareto = shares.home_pareto(homes, confidence_level=level)
 
-        causes = shares.category_shares(
-            fa.assign(cause=[c or NOT_RECORDED for c in fa["cause"]]).rename(
-                columns={"alerts": "false_alarms"}
-            ),
-            total_hm,
-            category="cause",
-            confidence_level=level,
-        )
+        causes = shares.category_shares(tally.causes, total_hm, category="cause", confidence_level=level)
         causes.insert(1, "label", [self.causes.get(c, c.replace("_", " ")) for c in causes["cause"]])
-        grade_counts = fa.assign(grade=[GRADE_NAMES.get(g, NOT_GRADED) for g in fa["resemblance"]]).rename(
-            columns={"alerts": "false_alarms"}
-        )
-        grades = shares.category_shares(
-            pd.concat(
-                [
-                    grade_counts[["grade", "false_alarms"]],
-                    pd.DataFrame({"grade": list(GRADE_NAMES.values()), "false_alarms": 0}),
-                ]
-            ),
-            total_hm,
-            category="grade",
-            confidence_level=level,
-        )
+        grades = shares.category_shares(tally.grades, total_hm, category="grade", confidence_level=level)
 
         parts = []
         for dim_index, (dim, title) in enumerate(DIMENSIONS):
-            table = breakdowns.rates_by(
-                per_window[[dim, "false_alarms", "home_months"]], dim, confidence_level=level
+            groups = self._dims[scope, dim]
+            # Only groups with monitored time are shown (taking them out first leaves the order alone).
+            shown = groups.home_months > 0
+            table = breakdowns.rates_table(
+                dim,
+                groups.keys[shown],
+                groups.total(tally.false_alarms)[shown],
+                groups.home_months[shown],
+                confidence_level=level,
             )
-            table = table[table["home_months"] > 0].reset_index(drop=True)
             test = breakdowns.heterogeneity(
                 table["false_alarms"].to_numpy(),
                 table["home_months"].to_numpy(),
@@ -409,30 +557,24 @@ class _Context:
             a, b = self.firmware_pair
             comparison = FirmwareComparison(a, b, breakdowns.firmware_ratio(fw, a, b, confidence_level=level))
 
-        events = self.match.events[self.match.events["sound_class"] == sound_class]
+        events = self._events.get(sound_class, self.match.events.iloc[:0])
         if scope == "week":
             events = events[events["started_at"] >= pd.Timestamp(d.week.start_at)]
         detection = staged.detection(events, confidence_level=level)
         detection = _with_codes(detection, self.codes)
         table, floor = self._whatif(sound_class, scope, total_hm, events)
 
-        outside = self._scoped(d.not_counted, scope)
-        outside = outside[outside["sound_class"] == sound_class]["alerts"].sum()
-        matched = self.matched[self.matched["sound_class"] == sound_class]
-        if scope == "week":
-            matched = matched[matched["period"] == "week"]
-        by_outcome = counted.groupby("outcome")["alerts"].sum()
-        tally = AlertTally(
-            **{o: int(by_outcome.get(o, 0)) for o in OUTCOMES},
-            staged_detections=len(matched),
-            outside_monitored_time=int(outside),
+        alerts = AlertTally(
+            **{o: int(tally.by_outcome.get(o, 0)) for o in OUTCOMES},
+            staged_detections=int(self._staged_detections[scope].get(sound_class, 0)),
+            outside_monitored_time=int(self._outside[scope].get(sound_class, 0)),
         )
         return ClassFigures(
             sound_class=sound_class,
             scope=scope,
             label=d.week.label if scope == "week" else "trial to date",
-            alerts=tally,
-            homes_monitored=int((homes["home_months"] > 0).sum()),
+            alerts=alerts,
+            homes_monitored=int((home_hm > 0).sum()),
             home_months=total_hm,
             rate=rate,
             upper_one_sided=rates.upper_bound_one_sided(total_fa, total_hm, confidence_level=level),
@@ -440,7 +582,7 @@ class _Context:
             overdispersion=disp,
             homes_note=_homes_note(rate, boot, disp),
             homes=pareto,
-            concentration=shares.concentration(homes, confidence_level=level),
+            concentration=shares.pareto_concentration(pareto, confidence_level=level),
             causes=causes,
             grades=grades,
             above_target=shares.homes_above_target(pareto, target),
@@ -449,31 +591,32 @@ class _Context:
             detection=detection,
             whatif=table,
             whatif_floor=floor,
-            readiness=rates.readiness(total_fa, total_hm, target, confidence_level=level,
-                                      home_bootstrap_high=boot.high),
+            readiness=rates.readiness(
+                total_fa, total_hm, target, confidence_level=level, home_bootstrap_high=boot.high
+            ),
         )
 
     def _whatif(
         self, sound_class: str, scope: str, home_months: float, events: pd.DataFrame
     ) -> tuple[pd.DataFrame, float]:
-        floors = self.data.score_floors
-        floor = whatif.score_floor(floors.loc[floors["sound_class"] == sound_class, "min_score"])
+        floor = self._floors.get(sound_class, math.nan)
         if math.isnan(floor):
             return pd.DataFrame(), floor
         # Scores arrive as thousandths (floor(1000 s)), so thresholds on that grid are exact.
         floor_milli = math.ceil(floor * 1000.0 - 1e-6)
         grid = whatif.threshold_grid(floor_milli, step=WHATIF_STEP_MILLI, top=1000.0)
-        s = self._scoped(self.fa_scores, scope)
-        s = s[s["sound_class"] == sound_class]
+        rows = self._score_rows.get(sound_class, np.zeros(0, dtype=np.intp))
+        if scope == "week":
+            rows = rows[self._score_week[rows]]
         best = np.floor(events["best_score"].to_numpy(dtype=np.float64) * 1000.0 + 1e-6)
         table = whatif.at_thresholds(
-            s["score_milli"].to_numpy(dtype=np.float64),
+            self._scores[rows],
             home_months,
             best,
             grid,
             floor=floor_milli,
             target=self.target,
-            fa_counts=s["alerts"].to_numpy(),
+            fa_counts=self._score_alerts[rows],
             confidence_level=self.level,
         )
         table["threshold"] = table["threshold"] / 1000.0
@@ -484,11 +627,15 @@ class _Context:
         fa = self.by_week[
             (self.by_week["sound_class"] == sound_class) & (self.by_week["outcome"] == "false_alarm")
         ]
-        hm = d.monitored.groupby("bucket")["seconds"].sum() / rates.HOME_MONTH_S
+        if self._trend_home_months is None:  # the same for every class
+            hm = d.monitored.groupby("bucket")["seconds"].sum() / rates.HOME_MONTH_S
+            self._trend_home_months = pd.DataFrame(
+                {"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}
+            )
         weeks = pd.concat(
             [
                 fa.groupby("week_index")["alerts"].sum().rename("false_alarms").reset_index(),
-                pd.DataFrame({"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}),
+                self._trend_home_months,
             ],
             ignore_index=True,
         ).fillna(0.0)
@@ -506,9 +653,15 @@ class _Context:
 
 def _with_codes(detection: staged.Detection, codes: pd.Series) -> staged.Detection:
     """Missed events with home codes instead of internal ids."""
-    missed = detection.missed.assign(home_code=detection.missed["home_id"].map(codes)).drop(columns="home_id")
-    cols = ["staged_event_id", "home_code", "sound_class", "started_at", "ended_at", "source"]
-    return dataclasses.replace(detection, missed=missed[cols])
+    m = detection.missed
+    missed = pd.DataFrame(
+        {
+            "staged_event_id": m["staged_event_id"],
+            "home_code": m["home_id"].map(codes),
+            **{c: m[c] for c in ("sound_class", "started_at", "ended_at", "source")},
+        }
+    )
+    return dataclasses.replace(detection, missed=missed)
 
 
 def _homes_note(
@@ -574,16 +727,16 @@ def _review(session: Session, trial: Trial, now: dt.datetime, notes: list[str]) 
     except ImportError:  # the review module is optional at import time only
         notes.append("Review figures are unavailable: the review module is not installed.")
         return None
-    ov = overview.review_overview(session, trial.id, now=now)
+    brief = overview.agreement_brief(session, trial.id, now=now)
     return ReviewFigures(
-        backlog=ov.backlog.count,
-        oldest_age_s=ov.backlog.oldest_age_s,
-        median_age_s=ov.backlog.median_age_s,
-        double_reviewed=ov.double_reviewed,
-        percent_agreement=ov.percent_agreement.estimate,
-        kappa=ov.kappa_overall.estimate,
-        kappa_reason=ov.kappa_overall.reason,
-        alpha=ov.alpha.estimate,
+        backlog=brief.backlog.count,
+        oldest_age_s=brief.backlog.oldest_age_s,
+        median_age_s=brief.backlog.median_age_s,
+        double_reviewed=brief.double_reviewed,
+        percent_agreement=brief.percent_agreement.estimate,
+        kappa=brief.kappa_overall.estimate,
+        kappa_reason=brief.kappa_overall.reason,
+        alpha=brief.alpha.estimate,
     )
 
 

@@ -75,7 +75,7 @@ def at_thresholds(
     # Alerts at or above t: total weight from the first score >= t onwards.
     tail = np.concatenate([np.cumsum(w[::-1])[::-1], [0.0]])
     fa = tail[np.searchsorted(s, t, side="left")].astype(np.int64)
-    r = rates.poisson_rates(fa, np.full(len(t), home_months), confidence_level=confidence_level)
+    r = rates.poisson_rate_arrays(fa, np.full(len(t), home_months), confidence_level=confidence_level)
     best = np.asarray(event_best_scores, dtype=np.float64)
     hit = np.sort(best[~np.isnan(best)])
     detected = (len(hit) - np.searchsorted(hit, t, side="left")).astype(np.int64)
@@ -86,15 +86,15 @@ def at_thresholds(
         {
             "threshold": t,
             "false_alarms": fa,
-            "rate": r["estimate"].to_numpy(),
-            "low": r["low"].to_numpy(),
-            "high": r["high"].to_numpy(),
+            "rate": r.estimate,
+            "low": r.low,
+            "high": r.high,
             "events": n,
             "detected": detected,
             "detected_share": share,
             "detected_low": lim.low,
             "detected_high": lim.high,
             "miss_share": 1.0 - share,
-            "meets_target": r["high"].to_numpy() <= target,
+            "meets_target": r.high <= target,
         }
     )

@@ -223,6 +223,16 @@ def krippendorff_alpha_nominal(reliability_data: Iterable[Iterable[Any]]) -> Alp
         for code, c in counts.items():
             vec[code] = c
         coincidence += (np.outer(vec, vec) - np.diag(vec)) / (m_u - 1)
+    return krippendorff_alpha_from_coincidence(coincidence, pairable_units)
+
+
+def krippendorff_alpha_from_coincidence(coincidence: Any, pairable_units: int) -> Alpha:
+    """Nominal alpha from a coincidence matrix (see ``krippendorff_alpha_nominal``) and its unit count.
+
+    For units that each hold exactly two values (a first and a second review), the coincidence
+    matrix is the confusion matrix plus its transpose, which spares the walk over units.
+    """
+    coincidence = np.asarray(coincidence, dtype=float)
     n = float(coincidence.sum())
     n_int = int(round(n))
     if pairable_units == 0:
@@ -470,7 +480,12 @@ class Backlog:
 
 def backlog(received_at: Iterable[datetime], now: datetime) -> Backlog:
     """Count and age (from ``received_at`` to ``now``) of pending alerts; ages are NaN when none."""
-    ages = np.array([(now - t).total_seconds() for t in received_at], dtype=float)
+    return backlog_of_ages([(now - t).total_seconds() for t in received_at])
+
+
+def backlog_of_ages(ages_s: Iterable[float] | np.ndarray) -> Backlog:
+    """Count, oldest and median of waiting times in seconds (see ``backlog``)."""
+    ages = np.asarray(ages_s, dtype=float)
     if ages.size == 0:
         return Backlog(0, math.nan, math.nan, reason="nothing is waiting")
     return Backlog(int(ages.size), float(ages.max()), float(np.median(ages)))

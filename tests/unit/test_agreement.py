@@ -244,6 +244,19 @@ def test_alpha_undefined_cases_have_reasons() -> None:
     assert same.observed_disagreement == 0.0
 
 
+@pytest.mark.parametrize("seed", range(5))
+def test_alpha_from_pairs_coincidence_equals_alpha_from_units(seed: int) -> None:
+    # Units with exactly two values: the coincidence matrix is the confusion matrix plus its transpose.
+    rng = np.random.default_rng(2000 + seed)
+    labels = ["confirmed", "false_alarm", "unsure", "unusable"]
+    first = [labels[i] for i in rng.integers(0, 4, 40)]
+    second = [x if rng.random() < 0.6 else labels[int(rng.integers(0, 4))] for x in first]
+    counts = ag.confusion_matrix(first, second, labels=labels).counts
+    assert ag.krippendorff_alpha_from_coincidence(counts + counts.T, len(first)) == (
+        ag.krippendorff_alpha_nominal([first, second])
+    )
+
+
 def test_perfect_agreement_gives_alpha_one() -> None:
     assert ag.krippendorff_alpha_nominal([[1, 2, 3, N], [1, 2, 3, 3]]).estimate == pytest.approx(1.0)
 
@@ -401,3 +414,11 @@ def test_backlog_count_and_age() -> None:
     assert b.median_age_s == pytest.approx(7200.0)
     e = ag.backlog([], now)
     assert e.count == 0 and math.isnan(e.oldest_age_s) and e.reason
+
+
+def test_backlog_of_ages_is_the_backlog() -> None:
+    now = T0 + dt.timedelta(days=2, microseconds=7)
+    received = [T0 + dt.timedelta(hours=h, microseconds=us) for h, us in ((1, 3), (8, 0), (30, 999_999))]
+    ages = [(now - t).total_seconds() for t in received]
+    assert ag.backlog_of_ages(np.array(ages)) == ag.backlog(received, now)
+    assert ag.backlog_of_ages([]).reason == ag.backlog([], now).reason

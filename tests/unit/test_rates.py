@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 from scipy import stats
 from statsmodels.stats import rates as sm_rates
@@ -389,3 +390,92 @@ def test_heterogeneity_p_value_matches_the_exact_binomial_for_two_groups():
     res = breakdowns.heterogeneity([14, 4], [1.0, 1.0], rng=np.random.default_rng(9), draws=200_000)
     exact = stats.binomtest(14, 18, 0.5).pvalue
     assert res.p_value == pytest.approx(exact, abs=0.002)
+
+
+# ---------------------------------------------------------------------------------------
+# The quick forms the weekly summary uses give the very same numbers
+
+
+@pytest.mark.parametrize("level", [0.8, 0.9, 0.95, 0.99])
+@pytest.mark.parametrize("n", [1, 40, 65, 1000])
+def test_garwood_limits_are_scipys_chi_square_quantiles_exactly(level, n):
+    # Long arrays take each distinct count once; short ones are computed as they are.
+    k = np.random.default_rng(n).poisson(30.0, n).astype(float)
+    k[0] = 0.0
+    lim = rates.garwood_limits(k, level)
+    alpha = 1 - level
+    low = np.where(k > 0, stats.chi2.ppf(alpha / 2, np.maximum(2 * k, 1e-300)) / 2, 0.0)
+    assert np.array_equal(lim.low, low)
+    assert np.array_equal(lim.high, stats.chi2.ppf(1 - alpha / 2, 2 * k + 2) / 2)
+
+
+def test_rate_arrays_are_the_rates_frame():
+    k, t = [0, 3, 7, 2], [2.5, 0.0, 1.25, 4.0]
+    arrays = rates.poisson_rate_arrays(k, t)
+    frame = rates.poisson_rates(k, t)
+    for column, values in [("events", arrays.events), ("estimate", arrays.estimate), ("low", arrays.low)]:
+        assert np.array_equal(frame[column].to_numpy(), values, equal_nan=True)
+    assert (
+        frame["reason"].tolist() == arrays.reasons().tolist() == [None, rates.NO_MONITORED_TIME, None, None]
+    )
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_sort_order_is_the_order_of_sort_values(seed):
+    rng = np.random.default_rng(seed)
+    n = 60
+    x = rng.integers(0, 4, n).astype(float)
+    x[rng.random(n) < 0.15] = np.nan
+    frame = pd.DataFrame(
+        {
+            "count": rng.integers(0, 3, n),
+            "rate": x,
+            "code": pd.Series(rng.choice(["H-07", "H-02", "H-11", None], n), dtype="str"),
+            "sorted_code": pd.Series(sorted(rng.choice(["A", "B", "C"], n)), dtype="str"),
+            "flag": rng.random(n) < 0.5,
+        }
+    )
+    for keys in (
+        ["count", "rate", "code"],
+        ["rate", "code"],
+        ["code", "count"],
+        ["sorted_code", "rate"],
+        ["rate", "sorted_code"],
+        ["flag", "rate", "count"],
+    ):
+        for ascending in ([True] * len(keys), [False] * len(keys), [i % 2 == 0 for i in range(len(keys))]):
+            expected = frame.sort_values(
+                keys, ascending=ascending, kind="mergesort", na_position="last"
+            ).index
+            got = rates.sort_order([frame[k] for k in keys], ascending)
+            assert got.tolist() == expected.tolist(), (keys, ascending)
+
+
+def test_bootstrap_of_many_pilots_draws_as_fancy_indexing(monkeypatch):
+    # Several pilots in small chunks: every chunk's draws must use the generator exactly as before.
+    monkeypatch.setattr(rates, "_CHUNK_ELEMENTS", 3 * 50 * 9)
+    rng = np.random.default_rng(5)
+    x = rng.poisson(2.0, (7, 9)).astype(float)
+    t = rng.uniform(0.2, 3.0, (7, 9))
+    ours = rates.home_bootstrap_limits(x, t, rng=np.random.default_rng(21), resamples=50, method="percentile")
+    gen = np.random.default_rng(21)
+    for start in range(0, 7, 3):
+        xs, ts = x[start : start + 3], t[start : start + 3]
+        idx = gen.integers(0, 9, size=(len(xs), 50, 9))
+        rows = np.arange(len(xs))[:, None, None]
+        draws = np.sort(xs[rows, idx].sum(axis=2) / ts[rows, idx].sum(axis=2), axis=1)
+        alpha = 1 - 0.95
+        for level, limit in ((alpha / 2, ours.low), (1 - alpha / 2, ours.high)):
+            expected = rates._row_quantiles(draws, np.full(len(xs), level))
+            assert np.array_equal(limit[start : start + 3], expected)
+
+
+def test_heterogeneity_counts_draws_as_written():
+    x, t = np.array([30.0, 12.0, 25.0]), np.array([10.0, 8.0, 7.0])
+    ours = breakdowns.heterogeneity(x, t, rng=np.random.default_rng(4), draws=5000)
+    p = t / t.sum()
+    expected = x.sum() * p
+    observed = float(((x - expected) ** 2 / expected).sum())
+    sims = np.random.default_rng(4).multinomial(int(x.sum()), p, size=5000)
+    hits = int((((sims - expected) ** 2 / expected).sum(axis=1) >= observed * (1 - 1e-9)).sum())
+    assert ours.p_value == (1 + hits) / 5001 and ours.statistic == observed

@@ -124,3 +124,41 @@ def test_homes_above_target_counts_clearly_above_only_when_interval_is_above():
     assert (res.homes, res.above, res.clearly_above) == (3, 2, 1)
     assert res.clearly_above_codes == ("H-0001",)
     assert res.share_clearly_above == pytest.approx(1 / 3)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_pareto_and_category_tables_are_the_sorted_frames(seed):
+    # The tables are built from arrays; they must equal sorting the frame itself, ties included.
+    rng = np.random.default_rng(seed)
+    n = 50
+    homes = pd.DataFrame(
+        {
+            "home_code": [f"H-{i:04d}" for i in rng.permutation(n)],
+            "false_alarms": rng.integers(0, 4, n),
+            "home_months": rng.choice([0.0, 0.5, 1.0, 2.0], n),
+        }
+    )
+    r = rates.poisson_rates(homes["false_alarms"], homes["home_months"])
+    expected = homes.assign(rate=r["estimate"].to_numpy(), low=r["low"].to_numpy(), high=r["high"].to_numpy())
+    expected = expected.sort_values(
+        ["false_alarms", "rate", "home_code"], ascending=[False, False, True], kind="mergesort"
+    ).reset_index(drop=True)
+    total = expected["false_alarms"].sum()
+    expected["share"] = expected["false_alarms"] / total
+    expected["cumulative_share"] = expected["false_alarms"].cumsum() / total
+    pd.testing.assert_frame_equal(shares.home_pareto(homes), expected)
+
+    counts = pd.DataFrame(
+        {
+            "cause": rng.choice(["dog", "speech", "kettle", "unknown"], 12),
+            "false_alarms": rng.integers(0, 3, 12),
+        }
+    )
+    grouped = counts.groupby("cause", sort=False)["false_alarms"].sum().reset_index()
+    grouped = grouped.sort_values(["false_alarms", "cause"], ascending=[False, True], kind="mergesort")
+    table = shares.category_shares(counts, 7.5, category="cause")
+    assert table["cause"].tolist() == grouped["cause"].tolist()
+    assert table["false_alarms"].tolist() == grouped["false_alarms"].tolist()
+    assert np.array_equal(
+        table["high"], rates.poisson_rates(grouped["false_alarms"], [7.5] * len(grouped))["high"]
+    )
