@@ -9,6 +9,7 @@ from anyio import to_thread
 from fastapi import APIRouter, Depends, Query, Request
 from fastapi.responses import FileResponse, JSONResponse
 from pydantic import ValidationError
+from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session
 
 from server.auth.models import User
@@ -43,9 +44,13 @@ def current_device(request: Request, session: DbSession) -> Device:
     token = token.strip()
     if scheme.lower() != "bearer" or not token:
         raise MissingToken("The Authorization header must read 'Bearer <token>'.")
+    # The look-up only reads: on SQLite it begins as a plain (deferred) transaction, so it does not
+    # queue for the write lock behind other devices' writes (no effect on a transaction already
+    # open, nor on PostgreSQL).
+    if isinstance(session.get_bind(), Engine) and not session.in_transaction():
+        session.connection(execution_options={"sqlite_immediate": False})
     device = service.authenticate_device(session, token)
-    # End the look-up's transaction before the body streams in: on SQLite a write session's
-    # transaction holds the database's write lock, so a slow upload would stall every other device.
+    # End the look-up's transaction before the body streams in, so a slow upload holds nothing.
     session.commit()
     return device
 
