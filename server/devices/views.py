@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import datetime as dt
-import logging
 from pathlib import Path
 from typing import Any
 
@@ -20,8 +19,6 @@ from server.errors import AppError, Forbidden
 from server.households.models import Consent, Home, Installation
 from server.settings import Settings
 from server.trials.models import Trial
-
-log = logging.getLogger(__name__)
 
 MEDIA_TYPES = {"WAV": "audio/wav", "FLAC": "audio/flac"}
 
