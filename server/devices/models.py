@@ -91,6 +91,8 @@ class Alert(Base):
         Index("ix_alert_state_received", "state", "received_at"),
         Index("ix_alert_home_detected", "home_id", "detected_at"),
         Index("ix_alert_trial_detected", "trial_id", "detected_at"),
+        # The review backlog of one trial (open states, oldest first) from the index alone.
+        Index("ix_alert_trial_state_received", "trial_id", "state", "received_at"),
     )
 
     id: Mapped[int] = mapped_column(primary_key=True)

@@ -221,9 +221,7 @@ def agreement_brief(
     """
     now = now or utcnow()
     alert = Alert.__table__.c
-    trial_cond: list[ColumnElement[bool]] = []
-    if trial_id is not None and not _only_trial_with_alerts(session, trial_id):
-        trial_cond = [alert.trial_id == trial_id]
+    trial_cond: list[ColumnElement[bool]] = [alert.trial_id == trial_id] if trial_id is not None else []
     backlog = agreement.backlog_of_ages(_waiting_s(session, trial_cond, now))
 
     v = Verdict.__table__
@@ -284,18 +282,6 @@ def _alert_in_trial(
     """The alert `alert_id` belongs to the trial (a correlated EXISTS)."""
     alert = Alert.__table__.c
     return sa.exists().where(alert.id == alert_id, *trial_cond)
-
-
-def _only_trial_with_alerts(session: Session, trial_id: int) -> bool:
-    """True when no alert belongs to another trial, so a trial condition would filter nothing.
-
-    Two index look-ups. Without the condition the open alerts' receipt times come from the
-    (state, received_at) index alone, with no visit to the alert rows.
-    """
-    alert = Alert.__table__.c
-    low = session.execute(select(func.min(alert.trial_id))).scalar()
-    high = session.execute(select(func.max(alert.trial_id))).scalar()
-    return low is None or (low == trial_id and high == trial_id)
 
 
 def _waiting_s(session: Session, trial_cond: list[ColumnElement[bool]], now: dt.datetime) -> np.ndarray:
