@@ -576,7 +576,9 @@ def _fetch(session: Session, stmt: sa.Select[Any], columns: list[str]) -> pd.Dat
     """Rows of `stmt` as a frame, read through the driver's own cursor.
 
     Hundreds of thousands of rows come back here: result-row objects and pandas' type inference
-    would cost more than the query itself, so the driver's rows are taken as they are.
+    would cost more than the query itself, so the driver's rows are taken as they are: column
+    types do not convert them (a SQLite timestamp comes back as its stored text). For small
+    reads that need converted values, use `_frame`.
     """
     conn = session.connection()
     # Half a million row tuples would set off the cyclic garbage collector again and again; none
