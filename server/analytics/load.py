@@ -5,6 +5,8 @@ and weeks, not with listening segments. Alerts come back as one narrow row each 
 values coded into one integer) and are placed in windows and weeks, and counted, by pandas: on
 SQLite every GROUP BY sorts all its rows, so three groupings cost several times one read. Alerts
 already known to lie in a listening segment (`Alert.within_listening`) skip the segment look-up.
+On PostgreSQL the monitored seconds are read on a second connection, on this session's snapshot,
+while this one reads the alerts (see `_alongside`).
 
 Frames of `PilotData` (times are aware UTC; epoch values are UTC seconds; a missing cause or
 resemblance grade is ""):
@@ -35,8 +37,10 @@ from __future__ import annotations
 import datetime as dt
 import gc
 import logging
+import re
 import secrets
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import Any
@@ -44,11 +48,12 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import sqlalchemy as sa
+from sqlalchemy.dialects import postgresql
 from sqlalchemy.orm import Session
 from sqlalchemy.sql.elements import ColumnElement
 
 from server.analytics import exposure, trend
-from server.db import sql_greatest, sql_least
+from server.db import UTCDateTime, sql_greatest, sql_least
 from server.devices.models import Alert, AlertState, Device, ListeningSegment
 from server.households.models import Home, HomeState, HomeStateChange, Installation, StagedEvent
 from server.trials.models import Trial
@@ -148,11 +153,12 @@ def _roomier_sorts(session: Session, dialect: str) -> None:
 
 @contextmanager
 def _window_table(session: Session, dialect: str, windows: pd.DataFrame) -> Iterator[sa.FromClause]:
-    """The monitored windows (window_id, device_id, ws, we in epoch s) as a table to join.
+    """The monitored windows as a table to join.
 
-    SQLite: a temporary table indexed by device and start, so segments are joined through the
-    index (a VALUES list would be scanned once per segment). PostgreSQL: an inline VALUES list,
-    which hash-joins and, unlike a temporary table, lets the planner scan segments in parallel.
+    SQLite: window_id, device_id, ws, we (epoch s) in a temporary table indexed by device and
+    start, so segments are joined through the index (a VALUES list would be scanned once per
+    segment). PostgreSQL: window_id, device_id, ws_at, we_at (timestamps) from an inline VALUES
+    list, which needs no table to be created and dropped.
     """
     if dialect == "postgresql":
         rows = [
@@ -165,14 +171,26 @@ def _window_table(session: Session, dialect: str, windows: pd.DataFrame) -> Iter
                 strict=True,
             )
         ] or [(-1, -1, 0.0, 0.0)]  # VALUES needs a row; this one matches no segment
-        yield sa.values(
+        v = sa.values(
             sa.column("window_id", sa.Integer),
             sa.column("device_id", sa.Integer),
             sa.column("ws", sa.Float),
             sa.column("we", sa.Float),
-            name="w",
+            name="v",
             literal_binds=True,
         ).data(rows)
+        # As timestamps, computed once per window (OFFSET 0 keeps them from being recomputed in
+        # the join), so segments are compared on their own columns and through their index.
+        yield (
+            sa.select(
+                v.c.window_id,
+                v.c.device_id,
+                sa.func.to_timestamp(v.c.ws, type_=UTCDateTime).label("ws_at"),
+                sa.func.to_timestamp(v.c.we, type_=UTCDateTime).label("we_at"),
+            )
+            .offset(0)
+            .subquery("w")
+        )
         return
     name = f"analytics_window_{secrets.token_hex(6)}"
     table = sa.Table(
@@ -210,6 +228,47 @@ def _window_table(session: Session, dialect: str, windows: pd.DataFrame) -> Iter
             table.drop(conn)
         except sa.exc.SQLAlchemyError:  # a failed transaction: its rollback removes the table anyway
             log.warning("could not drop temporary table %s", name, exc_info=True)
+
+
+_SNAPSHOT_ID = re.compile(r"[0-9A-Fa-f]+(-[0-9A-Fa-f]+)+")
+
+
+@contextmanager
+def _alongside(
+    session: Session, dialect: str, work: Callable[[Session], pd.DataFrame]
+) -> Iterator[Callable[[], pd.DataFrame]]:
+    """Start `work` and yield a function that returns its result.
+
+    On PostgreSQL, `work` runs in a thread on a second connection that imports this session's
+    snapshot (REPEATABLE READ with SET TRANSACTION SNAPSHOT), so it reads exactly what this
+    session could read when it started. Elsewhere, or when that is not possible (a session bound
+    to a connection rather than an engine, or a transaction that has already written: no other
+    connection sees its writes), `work` runs here, in this session, before the yield.
+    """
+    bind = session.get_bind()
+    snapshot = None
+    if dialect == "postgresql" and isinstance(bind, sa.Engine):
+        conn = session.connection()
+        if conn.exec_driver_sql("SELECT txid_current_if_assigned()").scalar() is None:
+            snapshot = conn.exec_driver_sql("SELECT pg_export_snapshot()").scalar_one()
+    if snapshot is None or not _SNAPSHOT_ID.fullmatch(snapshot):
+        done = work(session)
+        yield lambda: done
+        return
+    assert isinstance(bind, sa.Engine)
+
+    def run() -> pd.DataFrame:
+        with bind.connect() as side_conn:
+            side_conn = side_conn.execution_options(isolation_level="REPEATABLE READ")
+            with side_conn.begin(), Session(bind=side_conn) as side:
+                # SET cannot take a bound parameter; the id was checked against its pattern above.
+                side_conn.exec_driver_sql(f"SET TRANSACTION SNAPSHOT '{snapshot}'")
+                _roomier_sorts(side, dialect)
+                return work(side)
+
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="analytics") as pool:
+        future = pool.submit(run)
+        yield future.result
 
 
 def _frame(result: sa.Result[Any], columns: list[str]) -> pd.DataFrame:
@@ -304,22 +363,29 @@ def load_pilot(
 
     steps = trend.utc_offset_steps(trial.timezone, start, end)
     _roomier_sorts(session, dialect)
-    with _window_table(session, dialect, windows) as w:
-        monitored = _monitored(session, dialect, w, steps, trial.timezone)
+
+    def monitored_in(s: Session) -> pd.DataFrame:
+        with _window_table(s, dialect, windows) as w:
+            return _monitored(s, dialect, w, steps, trial.timezone, start, end)
+
     book = _codebook(trial, devices["firmware"].tolist())
-    parts = _alert_parts(session, dialect, trial, book, windows, steps, start, end, week)
-    staged_alerts = _staged_alerts(
-        session,
-        dialect,
-        trial,
-        book,
-        windows,
-        steps,
-        start,
-        end,
-        week,
-        margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
-    )
+    # The monitored seconds are mostly the database's work and the alert read mostly this
+    # process's, so where a second connection can share this session's snapshot the two overlap.
+    with _alongside(session, dialect, monitored_in) as monitored_later:
+        parts = _alert_parts(session, dialect, trial, book, windows, steps, start, end, week)
+        staged_alerts = _staged_alerts(
+            session,
+            dialect,
+            trial,
+            book,
+            windows,
+            steps,
+            start,
+            end,
+            week,
+            margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
+        )
+        monitored = monitored_later()
     return PilotData(
         trial=trial,
         week=week,
@@ -378,43 +444,18 @@ def _home_intervals(session: Session, trial: Trial, homes: pd.DataFrame, end: dt
 
 
 def _monitored(
-    session: Session, dialect: str, w: sa.FromClause, steps: list[trend.OffsetStep], tz: str
+    session: Session,
+    dialect: str,
+    w: sa.FromClause,
+    steps: list[trend.OffsetStep],
+    tz: str,
+    start: dt.datetime,
+    end: dt.datetime,
 ) -> pd.DataFrame:
     """Listening seconds per window and local week: segments clipped to the windows, in SQL."""
-    s = ListeningSegment.__table__.c
-    seg_a, seg_b = _epoch_s(dialect, s.started_at), _epoch_s(dialect, s.ended_at)
-    pieces = (
-        sa.select(
-            w.c.window_id,
-            sql_greatest(dialect, seg_a, w.c.ws).label("a"),
-            sql_least(dialect, seg_b, w.c.we).label("b"),
-        )
-        .select_from(
-            ListeningSegment.__table__.join(
-                w, (s.device_id == w.c.device_id) & (seg_a < w.c.we) & (seg_b > w.c.ws)
-            )
-        )
-        # OFFSET 0 keeps the subquery from being merged into the outer query (SQLite and
-        # PostgreSQL alike), so a and b are computed once per piece, not once per use.
-        .offset(0)
-        .subquery("pieces")
-    )
-    first, last = _local_week(dialect, pieces.c.a, steps), _local_week(dialect, pieces.c.b, steps)
-    agg = _fetch(
-        session,
-        sa.select(
-            pieces.c.window_id,
-            first,
-            last,
-            sa.func.count(),
-            sa.func.sum(pieces.c.a),
-            sa.func.sum(pieces.c.b),
-        )
-        .where(pieces.c.b > pieces.c.a)
-        .group_by(pieces.c.window_id, first, last),
-        ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"],
-    )
-    agg = agg.astype(
+    postgres = dialect == "postgresql"
+    stmt = _pieces_by_week_pg(w, tz, start, end) if postgres else _pieces_by_week_sqlite(w, steps)
+    agg = _fetch(session, stmt, _PIECE_COLUMNS).astype(
         {
             "window_id": np.int64,
             "first_bucket": np.int64,
@@ -424,7 +465,88 @@ def _monitored(
             "sum_end_s": np.float64,
         }
     )
+    if postgres:  # its sums count from the window's start
+        agg["sum_start_s"] += agg["pieces"] * start.timestamp()
+        agg["sum_end_s"] += agg["pieces"] * start.timestamp()
     return exposure.spread_over_buckets(agg, lambda k: trend.week_start_s(k, tz))
+
+
+_PIECE_COLUMNS = ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"]
+
+
+def _pieces_by_week_sqlite(w: sa.FromClause, steps: list[trend.OffsetStep]) -> sa.Select[Any]:
+    """SQLite: the clipped pieces grouped by window and the local weeks of their start and end,
+    with their start and end times (epoch s) summed."""
+    s = ListeningSegment.__table__.c
+    seg_a, seg_b = _epoch_s("sqlite", s.started_at), _epoch_s("sqlite", s.ended_at)
+    pieces = (
+        sa.select(
+            w.c.window_id,
+            sql_greatest("sqlite", seg_a, w.c.ws).label("a"),
+            sql_least("sqlite", seg_b, w.c.we).label("b"),
+        )
+        .select_from(
+            ListeningSegment.__table__.join(
+                w, (s.device_id == w.c.device_id) & (seg_a < w.c.we) & (seg_b > w.c.ws)
+            )
+        )
+        # OFFSET 0 keeps the subquery from being merged into the outer query, so a and b are
+        # computed once per piece, not once per use.
+        .offset(0)
+        .subquery("pieces")
+    )
+    first, last = _local_week("sqlite", pieces.c.a, steps), _local_week("sqlite", pieces.c.b, steps)
+    return (
+        sa.select(
+            pieces.c.window_id,
+            first,
+            last,
+            sa.func.count(),
+            sa.func.sum(pieces.c.a),
+            sa.func.sum(pieces.c.b),
+        )
+        .where(pieces.c.b > pieces.c.a)
+        .group_by(pieces.c.window_id, first, last)
+    )
+
+
+def _pieces_by_week_pg(w: sa.FromClause, tz: str, start: dt.datetime, end: dt.datetime) -> sa.Select[Any]:
+    """PostgreSQL: as `_pieces_by_week_sqlite`, but on the timestamps themselves, with the start
+    and end sums in seconds after `start`.
+
+    Converting every segment's times to epoch seconds costs more than the rest of the query, so
+    pieces are clipped by comparing timestamps, the week of a time is found by binary search
+    (width_bucket) among the UTC instants at which the zone's local weeks begin, and the sums
+    are exact intervals, converted to seconds once per group.
+    """
+    s = ListeningSegment.__table__.c
+    a = sql_greatest("postgresql", s.started_at, w.c.ws_at)
+    b = sql_least("postgresql", s.ended_at, w.c.we_at)
+    first, last = trend.week_index(pd.Series(pd.to_datetime([start, end], utc=True)), tz).tolist()
+    # Every clipped time lies in [start, end], so these instants cover them all: a time in week k
+    # falls between the starts of weeks k and k + 1, and width_bucket counts from 1.
+    weeks = np.arange(first, last + 2, dtype=np.int64)
+    starts = pd.to_datetime(trend.week_start_s(weeks, tz), unit="s", utc=True).to_pydatetime().tolist()
+    thresholds = sa.literal(starts, type_=postgresql.ARRAY(sa.DateTime(timezone=True)))
+    first_bucket = sa.func.width_bucket(a, thresholds) + (first - 1)
+    last_bucket = sa.func.width_bucket(b, thresholds) + (first - 1)
+    origin = sa.literal(start, type_=sa.DateTime(timezone=True))
+    return (
+        sa.select(
+            w.c.window_id,
+            first_bucket,
+            last_bucket,
+            sa.func.count(),
+            sa.func.date_part("epoch", sa.func.sum(a - origin), type_=sa.Float),
+            sa.func.date_part("epoch", sa.func.sum(b - origin), type_=sa.Float),
+        )
+        .select_from(
+            ListeningSegment.__table__.join(
+                w, (s.device_id == w.c.device_id) & (s.started_at < w.c.we_at) & (s.ended_at > w.c.ws_at)
+            )
+        )
+        .group_by(w.c.window_id, first_bucket, last_bucket)
+    )
 
 
 # Text columns of an alert read travel as small integer codes packed into one number (a driver
