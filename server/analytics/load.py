@@ -48,6 +48,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import sqlalchemy as sa
+from numpy.typing import NDArray
 from sqlalchemy.dialects import postgresql
 from sqlalchemy.orm import Session
 from sqlalchemy.sql.elements import ColumnElement
@@ -85,7 +86,6 @@ class PilotData:
     not_counted: pd.DataFrame
     staged_events: pd.DataFrame
     staged_alerts: pd.DataFrame
-    max_skew_s: float
 
 
 # ---------------------------------------------------------------------------------------
@@ -100,13 +100,6 @@ def _epoch_s(dialect: str, col: Any) -> Expr:
         return (sa.func.julianday(col) - 2440587.5) * 86400.0
     # date_part gives double precision; EXTRACT gives numeric, several times slower to compute with.
     return sa.func.date_part("epoch", col, type_=sa.Float)
-
-
-def _from_epoch(dialect: str, seconds: Any) -> Expr:
-    """A value comparable with UTCDateTime columns (so their indexes apply) from epoch seconds."""
-    if dialect == "sqlite":
-        return sa.func.strftime("%Y-%m-%d %H:%M:%f", seconds, "unixepoch")
-    return sa.func.to_timestamp(seconds)
 
 
 def _floor_int(dialect: str, x: Any) -> Expr:
@@ -372,19 +365,17 @@ def load_pilot(
     # The monitored seconds are mostly the database's work and the alert read mostly this
     # process's, so where a second connection can share this session's snapshot the two overlap.
     with _alongside(session, dialect, monitored_in) as monitored_later:
-        parts = _alert_parts(session, dialect, trial, book, windows, steps, start, end, week)
-        staged_alerts = _staged_alerts(
-            session,
-            dialect,
-            trial,
-            book,
+        facts = place_alerts(
+            _unpack(_fetch(session, _alert_facts(dialect, trial, book, start, end), _FACT_COLUMNS), book),
             windows,
             steps,
-            start,
-            end,
             week,
-            margin_s=staged_tolerance_s + parts["max_skew_s"] + 1.0,
         )
+        parts = _alert_parts(facts)
+        staged_alerts = _staged_alerts(
+            session, facts, staged_events, installations, margin_s=staged_tolerance_s + 1.0
+        )
+        del facts
         monitored = monitored_later()
     return PilotData(
         trial=trial,
@@ -403,7 +394,6 @@ def load_pilot(
         not_counted=parts["not_counted"],
         staged_events=staged_events,
         staged_alerts=staged_alerts,
-        max_skew_s=parts["max_skew_s"],
     )
 
 
@@ -589,7 +579,7 @@ def _alert_facts(
 ) -> sa.Select[Any]:
     """One row per alert of the trial whose effective time t (clock skew corrected, epoch s) lies in
     [start, end): t, packed (device_id, listening, assigned and the text codes; see `_unpack`),
-    score, and rest: NULL, or when any text value is not in `book`, all five joined by `_SEP`."""
+    score, alert_id, and rest: NULL, or when any text value is not in `book`, all five joined by `_SEP`."""
     a = Alert.__table__.c
     t = _epoch_s(dialect, a.detected_at) - sa.func.coalesce(a.clock_skew_s, 0.0)
     t_at = sa.case(
@@ -636,11 +626,12 @@ def _alert_facts(
         t.label("t"),
         packed.label("packed"),
         a.score,
+        a.id.label("alert_id"),
         sa.case((sa.or_(*unknown), joined), else_=sa.null()).label("rest"),
     ).where(a.trial_id == trial.id, t >= start.timestamp(), t < end.timestamp(), *where)
 
 
-_FACT_COLUMNS = ["t", "packed", "score", "rest"]
+_FACT_COLUMNS = ["t", "packed", "score", "alert_id", "rest"]
 
 
 def _unpack(frame: pd.DataFrame, book: _Codebook) -> pd.DataFrame:
@@ -676,67 +667,104 @@ def _unpack(frame: pd.DataFrame, book: _Codebook) -> pd.DataFrame:
     return frame
 
 
-def _max_skew_s(session: Session, trial: Trial) -> float:
-    """The largest clock-skew correction among the trial's alerts (s), for search margins."""
-    a = Alert.__table__.c
-    value = session.scalar(sa.select(sa.func.max(sa.func.abs(a.clock_skew_s))).where(a.trial_id == trial.id))
-    return float(value or 0.0)
-
-
-# How the columns of a large read are typed: numbers go straight into numpy arrays; text stays as
-# Python objects, which pandas groups fastest.
+# How the columns of a large read are typed: numbers go straight into numpy arrays (int columns
+# must hold no NULL); text stays as Python objects, which pandas groups fastest.
 _KINDS: dict[str, str] = {
     "packed": "int",
     "alert_id": "int",
+    "window_id": "int",
+    "first_bucket": "int",
+    "last_bucket": "int",
+    "pieces": "int",
     "t": "float",
     "score": "float",
-    "clock_skew_s": "float",
+    "sum_start_s": "float",
+    "sum_end_s": "float",
+}
+# PostgreSQL's binary array format: a header of 5 int32 for one dimension, then per element its
+# length (int32) and its value, all big-endian.
+_PG_ARRAY_HEADER = 20
+_PG_ELEMENTS = {
+    "int": np.dtype([("length", ">i4"), ("value", ">i8")]),
+    "float": np.dtype([("length", ">i4"), ("value", ">f8")]),
 }
 
 
 def _fetch(session: Session, stmt: sa.Select[Any], columns: list[str]) -> pd.DataFrame:
-    """Rows of `stmt` as a frame, read through the driver's own cursor.
+    """Rows of `stmt` as a frame of the given column names, typed by `_KINDS`.
 
-    Hundreds of thousands of rows come back here: result-row objects and pandas' type inference
-    would cost more than the query itself, so the driver's rows are taken as they are: column
-    types do not convert them (a SQLite timestamp comes back as its stored text). For small
-    reads that need converted values, use `_frame`.
+    Hundreds of thousands of rows come back here, and building a Python object for each value
+    would cost more than the query itself:
+
+    - PostgreSQL: each numeric column comes back as one value, its array in PostgreSQL's binary
+      format (`array_send(array_agg(...))`), which numpy reads as it stands. The aggregates of
+      one query level take the rows in the same order, so the columns stay aligned.
+    - SQLite: the driver's rows are taken as they are, with no column type conversion (a
+      timestamp comes back as its stored text). For small reads that need converted values, use
+      `_frame`.
     """
     conn = session.connection()
+    kinds = [_KINDS.get(name, "object") for name in columns]
+    if conn.dialect.name == "postgresql":
+        rows = stmt.subquery("rows")
+        cast = {"int": sa.BigInteger, "float": sa.Float(53)}
+        picks = []
+        for col, kind in zip(rows.c, kinds, strict=True):
+            if kind == "object":
+                picks.append(sa.func.array_agg(col))
+            else:
+                value = sa.cast(col, cast[kind])
+                if kind == "float":
+                    value = sa.func.coalesce(value, sa.literal(float("nan"), sa.Float(53)))
+                picks.append(sa.func.array_send(sa.func.array_agg(value)))
+        compiled = sa.select(*picks).compile(
+            dialect=conn.dialect, compile_kwargs={"render_postcompile": True}
+        )
+        with conn.connection.driver_connection.cursor(binary=True) as cursor:  # type: ignore[union-attr]
+            cursor.execute(compiled.string, compiled.params)
+            arrays = cursor.fetchone()
+        data: dict[str, Any] = {}
+        for name, kind, value in zip(columns, kinds, arrays or [None] * len(columns), strict=True):
+            if kind == "object":
+                arr = np.empty(len(value or ()), dtype=object)
+                arr[:] = value or ()
+                data[name] = pd.Series(arr, dtype=object)
+                continue
+            dtype = np.int64 if kind == "int" else np.float64
+            if value is None:  # no rows
+                data[name] = np.zeros(0, dtype=dtype)
+                continue
+            elements = np.frombuffer(value, dtype=_PG_ELEMENTS[kind], offset=_PG_ARRAY_HEADER)
+            if (elements["length"] != 8).any():
+                raise ValueError(f"NULL in the numeric column {name} of an analytics read")
+            data[name] = elements["value"].astype(dtype)
+        return pd.DataFrame(data)
     # Half a million row tuples would set off the cyclic garbage collector again and again; none
     # of them can be part of a cycle.
     collecting = gc.isenabled()
     gc.disable()
     try:
-        if conn.dialect.name == "postgresql":
-            # Binary transfer: numbers arrive as numbers, with no text to parse for each one.
-            compiled = stmt.compile(dialect=conn.dialect, compile_kwargs={"render_postcompile": True})
-            with conn.connection.driver_connection.cursor(binary=True) as cursor:  # type: ignore[union-attr]
-                cursor.execute(compiled.string, compiled.params)
-                rows = cursor.fetchall()
-        else:
-            result = conn.execute(stmt)
-            try:
-                rows = result.cursor.fetchall()
-            finally:
-                result.close()
-        cols: list[Any] = list(zip(*rows, strict=True)) if rows else [() for _ in columns]
-        del rows
+        result = conn.execute(stmt)
+        try:
+            rows_ = result.cursor.fetchall()
+        finally:
+            result.close()
+        cols: list[Any] = list(zip(*rows_, strict=True)) if rows_ else [() for _ in columns]
+        del rows_
     finally:
         if collecting:
             gc.enable()
-    data: dict[str, Any] = {}
-    for name, values in zip(columns, cols, strict=True):
-        kind = _KINDS.get(name, "object")
+    out: dict[str, Any] = {}
+    for name, kind, values in zip(columns, kinds, cols, strict=True):
         if kind == "int":
-            data[name] = np.array(values, dtype=np.int64)
+            out[name] = np.array(values, dtype=np.int64)
         elif kind == "float":
-            data[name] = np.array(values, dtype=np.float64)  # NULL becomes NaN
+            out[name] = np.array(values, dtype=np.float64)  # NULL becomes NaN
         else:
             arr = np.empty(len(values), dtype=object)
             arr[:] = values
-            data[name] = pd.Series(arr, dtype=object)
-    return pd.DataFrame(data)
+            out[name] = pd.Series(arr, dtype=object)
+    return pd.DataFrame(out)
 
 
 def place_alerts(
@@ -787,28 +815,12 @@ def place_alerts(
     return out
 
 
-def _alert_parts(
-    session: Session,
-    dialect: str,
-    trial: Trial,
-    book: _Codebook,
-    windows: pd.DataFrame,
-    steps: list[trend.OffsetStep],
-    start: dt.datetime,
-    end: dt.datetime,
-    week: trend.Week,
-) -> dict[str, Any]:
-    """The alert aggregates from one read of the trial's alerts.
+def _alert_parts(facts: pd.DataFrame) -> dict[str, pd.DataFrame]:
+    """The alert aggregates, from the placed alert read (`place_alerts`).
 
-    One narrow row per alert comes back and pandas groups it three ways: on SQLite a GROUP BY
-    sorts every row, so three of them cost several times one read.
+    pandas groups the one read three ways: on SQLite a GROUP BY sorts every row, so three of them
+    in SQL would cost several times the read.
     """
-    facts = place_alerts(
-        _unpack(_fetch(session, _alert_facts(dialect, trial, book, start, end), _FACT_COLUMNS), book),
-        windows,
-        steps,
-        week,
-    )
     counted = facts[facts["counted"]]
     outside = facts[~facts["counted"]]
     # Outside every window: unassigned (no installation at ingest) or not monitored (the home's
@@ -826,7 +838,6 @@ def _alert_parts(
     fa = counted[counted["outcome"] == "false_alarm"]
     floors = facts.groupby(["sound_class", "firmware"], as_index=False, observed=True)["score"].min()
     return {
-        "max_skew_s": _max_skew_s(session, trial),
         "counted": tally(counted, ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]),
         "by_week": tally(counted, ["week_index", "sound_class", "outcome"]),
         "fa_scores": tally(fa, ["period", "sound_class", "score_milli"]),
@@ -845,60 +856,79 @@ def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
+def staged_candidates(
+    facts: pd.DataFrame, events: pd.DataFrame, installations: pd.DataFrame, *, margin_s: float
+) -> NDArray[np.int64]:
+    """Positions in `facts` of the alerts that may detect a staged event: of the event's sound
+    class, from a device ever installed in the event's home, with t within `margin_s` of the
+    event's span. Pure; `staged.match` then decides.
+
+    facts: device_id, sound_class, t (epoch s, clock skew corrected). events: home_id,
+    sound_class, started_at, ended_at. installations: device_id, home_id.
+    """
+    if not len(facts) or not len(events) or not len(installations):
+        return np.zeros(0, dtype=np.int64)
+    lo = trend.epoch_s(events["started_at"]) - margin_s
+    hi = trend.epoch_s(events["ended_at"]) + margin_s
+    # First the alerts inside any event's span (their union, as disjoint sorted stretches): a
+    # binary search each, with no sort of the alerts.
+    by_start = np.argsort(lo, kind="stable")
+    lo, hi = lo[by_start], np.maximum.accumulate(hi[by_start])
+    fresh = np.r_[True, lo[1:] > hi[:-1]]
+    stretch_lo, stretch_hi = lo[fresh], hi[np.r_[np.flatnonzero(fresh)[1:] - 1, len(hi) - 1]]
+    t = facts["t"].to_numpy(dtype=np.float64)
+    k = np.searchsorted(stretch_lo, t, side="right") - 1
+    near = np.flatnonzero((k >= 0) & (t <= stretch_hi[np.maximum(k, 0)]))
+    if not len(near):
+        return np.zeros(0, dtype=np.int64)
+    # Then the exact test on those few: same class, device installed in the home, time in range.
+    spans = events.loc[:, ["home_id", "sound_class", "started_at", "ended_at"]].merge(
+        installations.loc[:, ["device_id", "home_id"]].drop_duplicates(), on="home_id"
+    )
+    spans["lo"] = trend.epoch_s(spans["started_at"]) - margin_s
+    spans["hi"] = trend.epoch_s(spans["ended_at"]) + margin_s
+    few = pd.DataFrame(
+        {
+            "row": near,
+            "device_id": facts["device_id"].to_numpy(dtype=np.int64)[near],
+            "sound_class": facts["sound_class"].iloc[near].astype(object).to_numpy(),
+            "t": t[near],
+        }
+    )
+    spans["device_id"] = spans["device_id"].astype(np.int64)
+    spans["sound_class"] = spans["sound_class"].astype(object)
+    pairs = few.merge(spans[["device_id", "sound_class", "lo", "hi"]], on=["device_id", "sound_class"])
+    hit = pairs["row"].to_numpy()[((pairs["t"] >= pairs["lo"]) & (pairs["t"] <= pairs["hi"])).to_numpy()]
+    return np.unique(hit).astype(np.int64)
+
+
 def _staged_alerts(
     session: Session,
-    dialect: str,
-    trial: Trial,
-    book: _Codebook,
-    windows: pd.DataFrame,
-    steps: list[trend.OffsetStep],
-    start: dt.datetime,
-    end: dt.datetime,
-    week: trend.Week,
+    facts: pd.DataFrame,
+    events: pd.DataFrame,
+    installations: pd.DataFrame,
     *,
     margin_s: float,
 ) -> pd.DataFrame:
-    """Alerts near a staged event of their class from a device installed in the event's home."""
-    a, e, i = Alert.__table__.c, StagedEvent.__table__.c, Installation.__table__.c
-    bounds = (
-        sa.select(
-            e.id,
-            e.home_id,
-            e.sound_class,
-            _from_epoch(dialect, _epoch_s(dialect, e.started_at) - margin_s).label("lo"),
-            _from_epoch(dialect, _epoch_s(dialect, e.ended_at) + margin_s).label("hi"),
+    """Alerts near a staged event of their class from a device installed in the event's home,
+    picked from the alert read, with their exact times and home read by id."""
+    frame = facts.iloc[staged_candidates(facts, events, installations, margin_s=margin_s)]
+    ids = frame["alert_id"].astype(int).tolist()
+    a = Alert.__table__.c
+    exact = [
+        _frame(
+            session.execute(
+                sa.select(a.id, a.home_id, a.detected_at, a.clock_skew_s).where(
+                    a.id.in_(ids[k : k + _ID_CHUNK])
+                )
+            ),
+            ["alert_id", "home_id", "detected_at", "clock_skew_s"],
         )
-        .where(e.trial_id == trial.id)
-        .offset(0)
-        .subquery("bounds")
-    )
-    installed = sa.exists().where(i.device_id == a.device_id, i.home_id == bounds.c.home_id)
-    # First the candidates' ids: walk the events, each one's short time range on the
-    # (trial, detected_at) index. A separate statement, because inside the next one a planner may
-    # choose to test every alert against every event.
-    near = (
-        sa.select(a.id)
-        .select_from(
-            bounds.join(
-                Alert.__table__,
-                (a.trial_id == trial.id) & (a.detected_at >= bounds.c.lo) & (a.detected_at <= bounds.c.hi),
-            )
-        )
-        # No class condition here: SQLite would index the events by class and scan every alert.
-        # Alerts of other classes are dropped by the matching itself.
-        .where(installed)
-        .distinct()
-    )
-    ids = sorted(session.scalars(near))
-    columns = [*_FACT_COLUMNS, "alert_id", "home_id", "detected_at", "clock_skew_s"]
-    chunks = []
-    for k in range(0, max(len(ids), 1), _ID_CHUNK):
-        stmt = _alert_facts(dialect, trial, book, start, end, a.id.in_(ids[k : k + _ID_CHUNK])).add_columns(
-            a.id, a.home_id, a.detected_at, a.clock_skew_s
-        )
-        chunks.append(_unpack(_fetch(session, stmt, columns), book))
-    frame = pd.concat(chunks, ignore_index=True) if len(chunks) > 1 else chunks[0]
-    frame = place_alerts(frame, windows, steps, week)
+        for k in range(0, max(len(ids), 1), _ID_CHUNK)
+    ]
+    exact_frame = pd.concat(exact, ignore_index=True) if len(exact) > 1 else exact[0]
+    exact_frame["alert_id"] = exact_frame["alert_id"].astype(np.int64)
+    frame = frame.merge(exact_frame, on="alert_id", how="left")
     # Matching happens at the window edges, so the time comes exact from the column (the epoch
     # seconds computed in SQL carry SQLite's julianday rounding, some tens of microseconds).
     skew = pd.to_numeric(frame["clock_skew_s"], errors="coerce").fillna(0.0).astype(np.float64)
