@@ -104,7 +104,9 @@ def make_alert(session: Session, store: ClipStore, settings: Settings, device: D
         up.write(clip)
         result = devices_service.ingest_alert(session, store=store, settings=settings, device=device,
                                               meta_raw=meta, upload=up, now=now)
-    return result.alert
+    alert = session.get(Alert, result.alert_id)
+    assert alert is not None
+    return alert
 
 
 # --- households (register) ------------------------------------------------------------------------

@@ -125,7 +125,7 @@ async def post_alert(request: Request, device: CurrentDevice, session: DbSession
         with clip:
             result = service.ingest_alert(session, store=store, settings=settings, device=device,
                                           meta_raw=meta, upload=clip, now=request.app.state.clock())
-            alert_id, duplicate = result.alert.id, result.duplicate
+            alert_id, duplicate = result.alert_id, result.duplicate
             session.commit()
         return alert_id, duplicate
 

@@ -7,10 +7,13 @@ import json
 import logging
 import random
 from dataclasses import dataclass
+from typing import Any
 
 from pydantic import ValidationError
 from sqlalchemy import bindparam, case, func, select, update
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.dialects import postgresql as postgresql_dialect
+from sqlalchemy.dialects import sqlite as sqlite_dialect
+from sqlalchemy.engine import Connection
 from sqlalchemy.orm import Session
 from sqlalchemy.orm.attributes import set_committed_value
 
@@ -86,23 +89,23 @@ def list_devices(session: Session) -> list[Device]:
 
 
 # Statements on the device hot paths are built once: building a statement and its cache key on
-# every request costs more CPU than running it. Parameters are bound at execution.
+# every request costs more CPU than running it. Parameters are bound at execution. The writes are
+# table-level (Core) statements run on the session's connection: the ORM's bulk-update machinery
+# would cost more than the statements themselves, and no loaded object needs to follow them.
 _DEVICE_BY_TOKEN = select(Device).where(Device.token_hash == bindparam("token_hash_v"))
-_TOUCH_DEVICE = (update(Device).where(Device.id == bindparam("device_id_v"))
+_device, _segment = Device.__table__.c, ListeningSegment.__table__.c
+_TOUCH_DEVICE = (update(Device.__table__).where(_device.id == bindparam("device_id_v"))
                  .values(last_seen_at=bindparam("seen_v"), firmware=bindparam("firmware_v"),
-                         clock_skew_s=bindparam("skew_v"))
-                 .execution_options(synchronize_session=False))
-_EXTEND_SEGMENT = (update(ListeningSegment)
-                   .where(ListeningSegment.device_id == bindparam("device_id_v"),
-                          ListeningSegment.is_open.is_(True),
-                          ListeningSegment.ended_at <= bindparam("now_v"),
-                          ListeningSegment.ended_at >= bindparam("since_v"))
-                   .values(ended_at=bindparam("now_v"), heartbeats=ListeningSegment.heartbeats + 1)
-                   .execution_options(synchronize_session=False))
-_CLOSE_SEGMENT = (update(ListeningSegment)
-                  .where(ListeningSegment.device_id == bindparam("device_id_v"), ListeningSegment.is_open.is_(True))
-                  .values(is_open=False)
-                  .execution_options(synchronize_session=False))
+                         clock_skew_s=bindparam("skew_v")))
+_EXTEND_SEGMENT = (update(ListeningSegment.__table__)
+                   .where(_segment.device_id == bindparam("device_id_v"),
+                          _segment.is_open.is_(True),
+                          _segment.ended_at <= bindparam("now_v"),
+                          _segment.ended_at >= bindparam("since_v"))
+                   .values(ended_at=bindparam("now_v"), heartbeats=_segment.heartbeats + 1))
+_CLOSE_SEGMENT = (update(ListeningSegment.__table__)
+                  .where(_segment.device_id == bindparam("device_id_v"), _segment.is_open.is_(True))
+                  .values(is_open=False))
 
 
 def authenticate_device(session: Session, token: str) -> Device:
@@ -144,21 +147,22 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     # ever open. The object in the session is given the same values without a second UPDATE.
     seen = {"last_seen_at": now, "firmware": beat.firmware,
             "clock_skew_s": round((beat.sent_at - now).total_seconds(), 3)}
-    session.execute(_TOUCH_DEVICE, {"device_id_v": device.id, "seen_v": now, "firmware_v": beat.firmware,
-                                    "skew_v": seen["clock_skew_s"]})
+    conn = session.connection()
+    conn.execute(_TOUCH_DEVICE, {"device_id_v": device.id, "seen_v": now, "firmware_v": beat.firmware,
+                                 "skew_v": seen["clock_skew_s"]})
     for key, value in seen.items():
         set_committed_value(device, key, value)
     # Segments change through UPDATE statements (the usual beat extends the open one in a single
     # statement); ListeningSegment objects already loaded in this session are not refreshed.
     gap = dt.timedelta(seconds=device.heartbeat_interval_s * settings.heartbeat_gap_factor)
     if beat.listening:
-        extended = session.execute(_EXTEND_SEGMENT, {"device_id_v": device.id, "now_v": now,
-                                                     "since_v": now - gap}).rowcount
+        extended = conn.execute(_EXTEND_SEGMENT, {"device_id_v": device.id, "now_v": now,
+                                                  "since_v": now - gap}).rowcount
         if not extended:
-            session.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
+            conn.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
             session.add(ListeningSegment(device_id=device.id, started_at=now, ended_at=now, is_open=True))
     else:
-        session.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
+        conn.execute(_CLOSE_SEGMENT, {"device_id_v": device.id})
     session.flush()
     if device.listening_check_from is not None:
         settle_listening(session, device, now)
@@ -266,17 +270,17 @@ _SEGMENT_END_AT = (select(ListeningSegment.ended_at)
 _PLACEMENT = select(select(_PLACED_AT.c.id).scalar_subquery().label("installation_id"),
                     select(_PLACED_AT.c.home_id).scalar_subquery().label("home_id"),
                     _SEGMENT_END_AT.scalar_subquery().label("segment_end"))
-_NOTE_LISTENING_CHECK = (update(Device).where(Device.id == bindparam("device_id_v"))
+_NOTE_LISTENING_CHECK = (update(Device.__table__).where(_device.id == bindparam("device_id_v"))
                          .values(listening_check_from=case(
-                             (Device.listening_check_from.is_(None)
-                              | (Device.listening_check_from > bindparam("at_v")), bindparam("at_v")),
-                             else_=Device.listening_check_from))
-                         .execution_options(synchronize_session=False))
+                             (_device.listening_check_from.is_(None)
+                              | (_device.listening_check_from > bindparam("at_v")), bindparam("at_v")),
+                             else_=_device.listening_check_from)))
 
 
 @dataclass(frozen=True)
 class IngestResult:
-    alert: Alert
+    alert_id: int
+    clip_id: int
     duplicate: bool
 
 
@@ -314,7 +318,7 @@ def find_alert_by_event(session: Session, device_id: int, event_id: str) -> Aler
 
 def _duplicate_or_conflict(existing: Alert, sha: str) -> IngestResult:
     if existing.clip.sha256 == sha:
-        return IngestResult(existing, True)
+        return IngestResult(existing.id, existing.clip_id, True)
     raise EventIdConflict(
         f"event_id '{existing.event_id}' was already used by this device for a different clip "
         f"(alert {existing.id}); give each detection its own event_id.")
@@ -338,8 +342,9 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
     except (UnreadableAudio, UnsupportedAudio, UnsupportedChannels) as exc:
         audio_error = exc
     # One round trip for the three look-ups every upload needs (the first takes SQLite's write lock).
-    facts = session.execute(_UPLOAD_FACTS, {"device_id_v": device.id, "event_id_v": event_id,
-                                            "trial_id_v": device.trial_id, "sha_v": sha}).one()
+    conn = session.connection()
+    facts = conn.execute(_UPLOAD_FACTS, {"device_id_v": device.id, "event_id_v": event_id,
+                                         "trial_id_v": device.trial_id, "sha_v": sha}).one()
     if facts.alert_id is not None:
         existing = find_alert_by_event(session, device.id, event_id)
         assert existing is not None
@@ -364,56 +369,66 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
     size = upload.size
     key = store.put_file(upload.path, sha)  # durable before the row commits
     skew = device.clock_skew_s if device.clock_skew_s and abs(device.clock_skew_s) >= 1.0 else None
-    alert = Alert(device_id=device.id, trial_id=device.trial_id, event_id=event_id,
-                  sound_class=meta.sound_class, score=meta.score, detected_at=meta.detected_at,
-                  detected_at_text=str(data.get("detected_at"))[:64], clock_skew_s=skew,
-                  received_at=now, firmware=meta.firmware, clip_offset_s=meta.clip_offset_s)
-    at = alert.effective_at
-    placed = session.execute(_PLACEMENT, {"device_id_v": device.id, "at_v": at}).one()
-    alert.installation_id, alert.home_id = placed.installation_id, placed.home_id
-    if placed.segment_end is not None and placed.segment_end >= at:
-        alert.within_listening = True
-    else:
+    at = meta.detected_at - dt.timedelta(seconds=skew) if skew else meta.detected_at  # Alert.effective_at
+    placed = conn.execute(_PLACEMENT, {"device_id_v": device.id, "at_v": at}).one()
+    within = placed.segment_end is not None and placed.segment_end >= at
+    if not within:
         # Usually the detection came after the last heartbeat: the next one decides.
-        session.execute(_NOTE_LISTENING_CHECK, {"device_id_v": device.id, "at_v": at})
-    clip_id: int | None = facts.clip_id
-    for attempt in (1, 2):
-        clip = _stored_clip(session, clip_id, key)
-        try:
-            # One savepoint and one flush for both rows (a new clip is inserted first).
-            with session.begin_nested():
-                alert.clip = clip if clip is not None else _new_clip(sha, key, info, size)
-                session.add(alert)
-                session.flush()
-            return IngestResult(alert, False)
-        except IntegrityError:
-            # A simultaneous upload won a unique constraint: this device's event_id (a resend), or
-            # the same bytes from another device (then its clip row is used on the second try).
-            existing = find_alert_by_event(session, device.id, event_id)
-            if existing is not None:
-                return _duplicate_or_conflict(existing, sha)
-            if attempt == 2:
-                raise
-            clip_id = session.scalar(select(Clip.id).where(Clip.sha256 == sha))
-    raise AssertionError("unreachable")
+        conn.execute(_NOTE_LISTENING_CHECK, {"device_id_v": device.id, "at_v": at})
+    # Rows go in as plain INSERT ... ON CONFLICT DO NOTHING statements: a simultaneous upload that
+    # won a unique constraint shows as no row returned, with no savepoint to roll back to.
+    dialect = conn.dialect.name
+    clip_id = _clip_for(conn, facts.clip_id, sha, key, info, size)
+    alert_id = conn.scalar(
+        _INSERT_ALERT[dialect],
+        {"device_id": device.id, "trial_id": device.trial_id, "event_id": event_id,
+         "sound_class": meta.sound_class, "score": meta.score, "detected_at": meta.detected_at,
+         "detected_at_text": str(data.get("detected_at"))[:64], "clock_skew_s": skew, "received_at": now,
+         "firmware": meta.firmware, "clip_id": clip_id, "clip_offset_s": meta.clip_offset_s,
+         "installation_id": placed.installation_id, "home_id": placed.home_id,
+         "within_listening": True if within else None})
+    if alert_id is None:
+        # A simultaneous upload stored this device's event_id first: a resend, or a conflict.
+        existing = find_alert_by_event(session, device.id, event_id)
+        assert existing is not None
+        return _duplicate_or_conflict(existing, sha)
+    return IngestResult(alert_id, clip_id, False)
 
 
-def _stored_clip(session: Session, clip_id: int | None, key: str) -> Clip | None:
-    """The clip row for these bytes, brought back if its file had been erased; None for new bytes."""
+def _insert_ignoring_conflict(table: Any, columns: list[str]) -> dict[str, Any]:
+    """Per dialect: INSERT of one row that does nothing on a unique conflict on `columns`,
+    returning the new id (no row when it did nothing)."""
+    return {
+        name: module.insert(table).on_conflict_do_nothing(index_elements=columns).returning(table.c.id)
+        for name, module in (("sqlite", sqlite_dialect), ("postgresql", postgresql_dialect))
+    }
+
+
+_INSERT_ALERT = _insert_ignoring_conflict(Alert.__table__, ["device_id", "event_id"])
+_INSERT_CLIP = _insert_ignoring_conflict(Clip.__table__, ["sha256"])
+_CLIP_ID_BY_SHA = select(Clip.id, Clip.erased_at).where(Clip.sha256 == bindparam("sha_v"))
+
+
+def _clip_for(conn: Connection, clip_id: int | None, sha: str, key: str, info: audio.ClipInfo,
+              size: int) -> int:
+    """The id of the clip row for these bytes: the stored one (brought back if its file had been
+    erased), or a new one."""
     if clip_id is None:
-        return None
-    clip = session.get(Clip, clip_id)
-    assert clip is not None
-    if clip.erased_at is not None:
-        clip.erased_at, clip.erased_reason, clip.storage_key = None, None, key
-    return clip
-
-
-def _new_clip(sha: str, key: str, info: audio.ClipInfo, size: int) -> Clip:
-    return Clip(sha256=sha, storage_key=key, format=info.format, subtype=info.subtype,
-                sample_rate_hz=info.sample_rate_hz, channels=info.channels, frames=info.frames,
-                duration_s=info.duration_s, peak_dbfs=info.peak_dbfs, rms_dbfs=info.rms_dbfs,
-                clipped_fraction=info.clipped_fraction, size_bytes=size)
+        clip_id = conn.scalar(
+            _INSERT_CLIP[conn.dialect.name],
+            {"sha256": sha, "storage_key": key, "format": info.format, "subtype": info.subtype,
+             "sample_rate_hz": info.sample_rate_hz, "channels": info.channels, "frames": info.frames,
+             "duration_s": info.duration_s, "peak_dbfs": info.peak_dbfs, "rms_dbfs": info.rms_dbfs,
+             "clipped_fraction": info.clipped_fraction, "size_bytes": size})
+        if clip_id is not None:
+            return clip_id
+    # The bytes are stored already (found before, or another device's upload just won the insert).
+    row = conn.execute(_CLIP_ID_BY_SHA, {"sha_v": sha}).one()
+    if row.erased_at is not None:
+        c = Clip.__table__.c
+        conn.execute(update(Clip.__table__).where(c.id == row.id)
+                     .values(erased_at=None, erased_reason=None, storage_key=key))
+    return int(row.id)
 
 
 def list_alerts(session: Session, *, limit: int = 200, offset: int = 0, device_id: int | None = None,
