@@ -2,7 +2,8 @@
 
 A device's listening counts while it is installed in a home whose lifecycle state is monitored
 (installed, active, or paused while still listening), inside the trial and reporting window.
-`monitored_windows` builds those windows from the register; the database (see `load`) clips
+`monitored_windows` builds those windows from the register and `split_by_firmware` cuts them
+where a device's reported firmware changed; the database (see `load`) clips
 listening segments to them and sums per window and week; `spread_over_buckets` turns those sums
 into seconds per week. Pure functions; no database access.
 """
@@ -95,6 +96,71 @@ def monitored_windows(
     out = out.sort_values(["device_id", "started_at"], kind="mergesort").reset_index(drop=True)
     out.insert(0, "window_id", np.arange(len(out), dtype=np.int64))
     return out[WINDOW_COLUMNS]
+
+
+def split_by_firmware(windows: pd.DataFrame, changes: pd.DataFrame, current: pd.Series) -> pd.DataFrame:
+    """Windows cut where their device's firmware changed, each carrying the firmware it ran.
+
+    Parameters
+    ----------
+    windows: from `monitored_windows`.
+    changes: device_id, at (aware UTC), firmware: from `at` on, the device reported `firmware`
+        (its heartbeats say which firmware runs).
+    current: firmware now, indexed by device_id, for a device with no recorded change.
+
+    Returns
+    -------
+    The window columns plus firmware, window_id renumbered 0..n-1 (by device, then start). A
+    time before a device's first recorded change takes that change's firmware: the device
+    reported no other before it.
+    """
+    # One time resolution throughout (stored and computed times may differ in unit).
+    ch = as_utc(changes, "at").sort_values(["device_id", "at"], kind="mergesort").reset_index(drop=True)
+    ch["at"] = ch["at"].dt.as_unit("ns")
+    # A report that repeats the firmware before it changes nothing.
+    ch = ch[ch["firmware"] != ch.groupby("device_id")["firmware"].shift()]
+    w = as_utc(windows.drop(columns=["window_id"]), "started_at", "ended_at").reset_index(drop=True)
+    w["started_at"] = w["started_at"].dt.as_unit("ns")
+    w["ended_at"] = w["ended_at"].dt.as_unit("ns")
+    # Times before a device's first report take that report's firmware, so its first is no cut.
+    later = ch[ch["device_id"].duplicated()]
+    cuts = (
+        w[["device_id", "started_at", "ended_at"]]
+        .reset_index()
+        .merge(later[["device_id", "at"]], on="device_id")
+    )
+    cuts = cuts[(cuts["at"] > cuts["started_at"]) & (cuts["at"] < cuts["ended_at"])]
+    bounds = pd.concat(
+        [
+            pd.DataFrame({"row": np.arange(len(w)), "piece_start": w["started_at"].to_numpy()}),
+            pd.DataFrame({"row": cuts["index"].to_numpy(), "piece_start": cuts["at"].to_numpy()}),
+        ],
+        ignore_index=True,
+    ).sort_values(["row", "piece_start"], kind="mergesort")
+    pieces = w.iloc[bounds["row"].to_numpy()].reset_index(drop=True)
+    starts = pd.Series(bounds["piece_start"].to_numpy(), dtype=w["started_at"].dtype)
+    next_start = starts.shift(-1)
+    last_of_row = bounds["row"].to_numpy() != np.r_[bounds["row"].to_numpy()[1:], -1]
+    pieces["ended_at"] = pieces["ended_at"].where(last_of_row, next_start)
+    pieces["started_at"] = starts
+    pieces = pieces.sort_values(["device_id", "started_at"], kind="mergesort").reset_index(drop=True)
+    firmware = pd.Series(np.nan, index=pieces.index, dtype=object)
+    if len(ch) and len(pieces):
+        found = pd.merge_asof(
+            pieces[["device_id", "started_at"]].reset_index().sort_values("started_at", kind="mergesort"),
+            ch[["device_id", "at", "firmware"]].sort_values("at", kind="mergesort"),
+            left_on="started_at",
+            right_on="at",
+            by="device_id",
+            direction="backward",
+        ).set_index("index")["firmware"]
+        firmware = found.reindex(pieces.index)
+        first = ch.groupby("device_id")["firmware"].first()
+        firmware = firmware.fillna(pieces["device_id"].map(first))
+    firmware = firmware.fillna(pieces["device_id"].map(current)).fillna("unknown")
+    pieces["firmware"] = firmware.astype(object).to_numpy()
+    pieces.insert(0, "window_id", np.arange(len(pieces), dtype=np.int64))
+    return pieces[[*WINDOW_COLUMNS, "firmware"]]
 
 
 def spread_over_buckets(

@@ -15,8 +15,9 @@ resemblance grade is ""):
 - devices: device_id, serial, hardware_model, firmware (the device's current firmware),
   last_seen_at (datetime, NaT if never), clock_skew_s (float, NaN if unknown).
 - installations: installation_id, device_id, home_id, room, installed_at, removed_at (NaT if open).
-- windows: `exposure.monitored_windows` (window_id, installation_id, device_id, home_id, room,
-  started_at, ended_at) plus the device's hardware_model and firmware.
+- windows: `exposure.monitored_windows` cut by `exposure.split_by_firmware` (window_id,
+  installation_id, device_id, home_id, room, started_at, ended_at, firmware: what the device's
+  heartbeats reported then) plus the device's hardware_model.
 - monitored: window_id, bucket (local ISO week index, see `trend`), seconds (float).
 - counted: window_id, period ("week" | "before"), sound_class, outcome, cause, resemblance, alerts:
   alerts detected inside a monitored window while their device was listening. outcome is
@@ -55,7 +56,7 @@ from sqlalchemy.sql.elements import ColumnElement
 
 from server.analytics import exposure, trend
 from server.db import UTCDateTime, sql_greatest, sql_least
-from server.devices.models import Alert, AlertState, Device, ListeningSegment
+from server.devices.models import Alert, AlertState, Device, FirmwareChange, ListeningSegment
 from server.households.models import Home, HomeState, HomeStateChange, Installation, StagedEvent
 from server.trials.models import Trial
 
@@ -326,10 +327,15 @@ def load_pilot(
         "installed_at",
         "removed_at",
     )
-    windows = exposure.monitored_windows(
-        installations, _home_intervals(session, trial, homes, end), start=start, end=end
+    changes = _firmware_changes(session, trial)
+    windows = exposure.split_by_firmware(
+        exposure.monitored_windows(
+            installations, _home_intervals(session, trial, homes, end), start=start, end=end
+        ),
+        changes,
+        devices.set_index("device_id")["firmware"],
     )
-    windows = windows.merge(devices[["device_id", "hardware_model", "firmware"]], on="device_id", how="left")
+    windows = windows.merge(devices[["device_id", "hardware_model"]], on="device_id", how="left")
     staged_events = trend.as_utc(
         _frame(
             session.execute(
@@ -361,7 +367,7 @@ def load_pilot(
         with _window_table(s, dialect, windows) as w:
             return _monitored(s, dialect, w, steps, trial.timezone, start, end)
 
-    book = _codebook(trial, devices["firmware"].tolist())
+    book = _codebook(trial, [*devices["firmware"].tolist(), *changes["firmware"].tolist()])
     # The monitored seconds are mostly the database's work and the alert read mostly this
     # process's, so where a second connection can share this session's snapshot the two overlap.
     with _alongside(session, dialect, monitored_in) as monitored_later:
@@ -394,6 +400,21 @@ def load_pilot(
         not_counted=parts["not_counted"],
         staged_events=staged_events,
         staged_alerts=staged_alerts,
+    )
+
+
+def _firmware_changes(session: Session, trial: Trial) -> pd.DataFrame:
+    """When each of the trial's devices began reporting each firmware (few rows per device)."""
+    return trend.as_utc(
+        _frame(
+            session.execute(
+                sa.select(FirmwareChange.device_id, FirmwareChange.at, FirmwareChange.firmware)
+                .join(Device, Device.id == FirmwareChange.device_id)
+                .where(Device.trial_id == trial.id)
+            ),
+            ["device_id", "at", "firmware"],
+        ),
+        "at",
     )
 
 

@@ -32,7 +32,7 @@ GRADE_NAMES = {"resembles": "forgivable", "unrelated": "unforgivable"}
 NOT_GRADED = "not graded"
 NOT_RECORDED = "not_recorded"
 DIMENSIONS = (
-    ("firmware", "Firmware (device's current)"),
+    ("firmware", "Firmware (as its heartbeats reported at the time)"),
     ("hardware_model", "Hardware model"),
     ("room", "Room"),
 )

@@ -49,6 +49,19 @@ class ListeningSegment(Base):
     heartbeats: Mapped[int] = mapped_column(default=1)
 
 
+class FirmwareChange(Base):
+    """From `at` on, the device's heartbeats reported `firmware` (written when the reported value
+    changes), so monitored time can be credited to the firmware that was running."""
+
+    __tablename__ = "firmware_change"
+    __table_args__ = (Index("ix_firmware_change_device_at", "device_id", "at"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    device_id: Mapped[int] = mapped_column(ForeignKey("device.id", ondelete="CASCADE"))
+    at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
+    firmware: Mapped[str] = mapped_column(String(64))
+
+
 class Clip(Base):
     """Audio bytes as received, content-addressed by SHA-256 in the clip store."""
 

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from pydantic import ValidationError
-from sqlalchemy import bindparam, case, func, select, update
+from sqlalchemy import bindparam, case, func, insert, select, update
 from sqlalchemy.dialects import postgresql as postgresql_dialect
 from sqlalchemy.dialects import sqlite as sqlite_dialect
 from sqlalchemy.engine import Connection
@@ -21,7 +21,7 @@ from server import audit
 from server.db import utcnow
 from server.devices import audio
 from server.devices.clipstore import ClipStore, SpooledUpload
-from server.devices.models import Alert, Clip, Device, ListeningSegment
+from server.devices.models import Alert, Clip, Device, FirmwareChange, ListeningSegment
 from server.devices.schemas import AlertMeta, EventIdOnly, HeartbeatIn
 from server.errors import (
     AppError,
@@ -103,6 +103,7 @@ _EXTEND_SEGMENT = (update(ListeningSegment.__table__)
                           _segment.ended_at <= bindparam("now_v"),
                           _segment.ended_at >= bindparam("since_v"))
                    .values(ended_at=bindparam("now_v"), heartbeats=_segment.heartbeats + 1))
+_FIRMWARE_CHANGED = insert(FirmwareChange.__table__)
 _CLOSE_SEGMENT = (update(ListeningSegment.__table__)
                   .where(_segment.device_id == bindparam("device_id_v"), _segment.is_open.is_(True))
                   .values(is_open=False))
@@ -150,6 +151,9 @@ def record_heartbeat(session: Session, *, device: Device, beat: HeartbeatIn, set
     conn = session.connection()
     conn.execute(_TOUCH_DEVICE, {"device_id_v": device.id, "seen_v": now, "firmware_v": beat.firmware,
                                  "skew_v": seen["clock_skew_s"]})
+    if beat.firmware != device.firmware:
+        # Monitored time from now on is credited to this firmware (see analytics).
+        conn.execute(_FIRMWARE_CHANGED, {"device_id": device.id, "at": now, "firmware": beat.firmware})
     for key, value in seen.items():
         set_committed_value(device, key, value)
     # Segments change through UPDATE statements (the usual beat extends the open one in a single

@@ -17,7 +17,7 @@ from sqlalchemy.orm import Session
 
 from server.analytics import rates, weekly
 from server.devices import service as devices_service
-from server.devices.models import Alert, ListeningSegment
+from server.devices.models import Alert, FirmwareChange, ListeningSegment
 from server.devices.schemas import HeartbeatIn
 from server.households import service as households_service
 from server.trials import service as trials_service
@@ -184,6 +184,36 @@ def test_device_moved_mid_week_splits_time_and_alerts_between_homes(session, sto
     assert rooms["kitchen"]["false_alarms"] == 1 and rooms["hallway"]["home_months"] == pytest.approx(
         4.5 * 86400 / HM
     )
+
+
+def test_firmware_breakdown_follows_an_upgrade_mid_week(session, store, settings, larch, lead):  # type: ignore[no-untyped-def]
+    """Time and false alarms go to the firmware the device reported then, not to its current one."""
+    steady, _ = installed(session, larch)
+    upgraded, _ = installed(session, larch)
+    for d in (steady, upgraded):
+        listen(session, d, W0, W1)
+    session.add_all(
+        [
+            FirmwareChange(device_id=steady.id, at=at(-14), firmware="4.1.0"),
+            FirmwareChange(device_id=upgraded.id, at=at(-14), firmware="4.1.0"),
+            FirmwareChange(device_id=upgraded.id, at=at(2, 12), firmware="4.2.0"),
+        ]
+    )
+    session.flush()
+    alert(session, store, settings, steady, at(4))
+    alert(session, store, settings, upgraded, at(1))  # before the upgrade
+    alert(session, store, settings, upgraded, at(3))
+    alert(session, store, settings, upgraded, at(5))
+
+    f = figures(summary(lead))
+    table = next(b for b in f["breakdowns"] if b["dimension"] == "firmware")["table"]
+    rows = {r["firmware"]: (r["false_alarms"], r["home_months"]) for r in table}
+    assert rows.keys() == {"4.1.0", "4.2.0"}
+    assert rows["4.1.0"][0] == 2 and rows["4.1.0"][1] == pytest.approx(9.5 * 86400 / HM)
+    assert rows["4.2.0"][0] == 2 and rows["4.2.0"][1] == pytest.approx(4.5 * 86400 / HM)
+    assert f["rate"]["events"] == 4 and f["home_months"] == pytest.approx(14 * 86400 / HM)
+    comparison = f["firmware_comparison"]
+    assert {comparison["version_a"], comparison["version_b"]} == {"4.1.0", "4.2.0"}
 
 
 def test_corrected_installation_date_applies_to_time_and_alerts(session, store, settings, larch, lead):  # type: ignore[no-untyped-def]

@@ -16,7 +16,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from server.devices import service
-from server.devices.models import Device, ListeningSegment
+from server.devices.models import Device, FirmwareChange, ListeningSegment
 from server.devices.schemas import HeartbeatIn
 from server.settings import Settings
 from tests import factories
@@ -147,6 +147,21 @@ def test_clock_skew_is_recorded_from_each_beat(session: Session, device, plain_s
     record(session, dev, plain_settings, T0 + 60 * S, skew_s=7.25)
     assert dev.clock_skew_s == pytest.approx(7.25)
     assert dev.firmware == "3.1.0"
+
+
+def test_a_change_of_reported_firmware_is_recorded_once(session: Session, device,  # type: ignore[no-untyped-def]
+                                                        plain_settings: Settings) -> None:
+    dev, _ = device
+    for t, firmware in ((0, "3.1.0"), (60, "3.1.0"), (120, "3.2.0"), (180, "3.2.0"), (240, "3.1.0")):
+        service.record_heartbeat(session, device=dev, settings=plain_settings, now=T0 + t * S,
+                                 beat=beat(sent_at=T0 + t * S, firmware=firmware))
+    rows = session.execute(select(FirmwareChange.at, FirmwareChange.firmware)
+                           .where(FirmwareChange.device_id == dev.id).order_by(FirmwareChange.at)).all()
+    # The first report (the device had none), the upgrade, and the roll-back; repeats add nothing.
+    assert [(r.at, r.firmware) for r in rows] == [(T0, "3.1.0"), (T0 + 120 * S, "3.2.0"),
+                                                  (T0 + 240 * S, "3.1.0")]
+    assert dev.firmware == "3.1.0"
+    assert segments(session, dev) == [(T0, T0 + 240 * S, True, 5)]  # listening goes on through it
 
 
 def _http_beat(client: Any, token: str, sent_at: dt.datetime, **kw: Any) -> Any:

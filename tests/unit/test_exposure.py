@@ -230,3 +230,83 @@ def test_weekly_rates_fill_missing_weeks():
     assert out["rate"].iloc[0] == pytest.approx(0.5)
     assert out["reason"].tolist() == [None, rates.NO_MONITORED_TIME, None]
     assert out["high"].iloc[2] == pytest.approx(3.688879 / 2.0, abs=1e-6)
+
+
+# --- windows cut where the reported firmware changed ---------------------------------------------
+
+
+def _windows(*rows):
+    return pd.DataFrame(
+        [
+            {
+                "window_id": k,
+                "installation_id": 10 + k,
+                "device_id": d,
+                "home_id": h,
+                "room": "hall",
+                "started_at": ts(a),
+                "ended_at": ts(b),
+            }
+            for k, (d, h, a, b) in enumerate(rows)
+        ]
+    )
+
+
+def _reports(*rows):
+    return pd.DataFrame(
+        {
+            "device_id": pd.Series([d for d, _, _ in rows], dtype=np.int64),
+            "at": pd.Series([ts(a) for _, a, _ in rows], dtype="datetime64[ns, UTC]"),
+            "firmware": pd.Series([f for _, _, f in rows], dtype=object),
+        }
+    )
+
+
+def _cut(windows, reports, current):
+    out = exposure.split_by_firmware(windows, reports, pd.Series(current))
+    return [
+        (int(r.window_id), int(r.device_id), int(r.home_id), r.started_at.isoformat(), r.ended_at.isoformat(),
+         r.firmware)
+        for r in out.itertuples()
+    ]
+
+
+def test_an_upgrade_inside_a_window_cuts_it_in_two():
+    windows = _windows((7, 1, "2026-03-01", "2026-03-31"), (8, 2, "2026-03-01", "2026-03-31"))
+    reports = _reports(
+        (7, "2026-02-20", "4.1.0"),
+        (7, "2026-03-10 12:00", "4.2.0"),
+        (7, "2026-03-12", "4.2.0"),  # a repeat changes nothing
+        (8, "2026-03-01", "4.1.0"),  # exactly at the window's start: no cut
+    )
+    assert _cut(windows, reports, {7: "4.2.0", 8: "4.1.0"}) == [
+        (0, 7, 1, "2026-03-01T00:00:00+00:00", "2026-03-10T12:00:00+00:00", "4.1.0"),
+        (1, 7, 1, "2026-03-10T12:00:00+00:00", "2026-03-31T00:00:00+00:00", "4.2.0"),
+        (2, 8, 2, "2026-03-01T00:00:00+00:00", "2026-03-31T00:00:00+00:00", "4.1.0"),
+    ]
+
+
+def test_firmware_before_the_first_report_and_without_any():
+    windows = _windows(
+        (7, 1, "2026-03-01", "2026-03-05"),  # before device 7's first report
+        (7, 2, "2026-03-06", "2026-03-09"),  # the device moved; a roll-back cuts this window
+        (8, 3, "2026-03-01", "2026-03-09"),  # device 8 never reported: its current firmware
+        (9, 4, "2026-03-01", "2026-03-09"),  # nor did 9, whose firmware is not known at all
+    )
+    reports = _reports((7, "2026-03-03", "4.2.0"), (7, "2026-03-07", "4.1.0"))
+    assert _cut(windows, reports, {7: "4.1.0", 8: "3.9.9", 9: None}) == [
+        (0, 7, 1, "2026-03-01T00:00:00+00:00", "2026-03-05T00:00:00+00:00", "4.2.0"),
+        (1, 7, 2, "2026-03-06T00:00:00+00:00", "2026-03-07T00:00:00+00:00", "4.2.0"),
+        (2, 7, 2, "2026-03-07T00:00:00+00:00", "2026-03-09T00:00:00+00:00", "4.1.0"),
+        (3, 8, 3, "2026-03-01T00:00:00+00:00", "2026-03-09T00:00:00+00:00", "3.9.9"),
+        (4, 9, 4, "2026-03-01T00:00:00+00:00", "2026-03-09T00:00:00+00:00", "unknown"),
+    ]
+
+
+def test_no_windows_and_no_reports():
+    none = _windows((7, 1, "2026-03-01", "2026-03-02")).iloc[:0]
+    assert exposure.split_by_firmware(none, _reports(), pd.Series(dtype=object)).empty
+    windows = _windows((7, 1, "2026-03-01", "2026-03-02"))
+    assert _cut(windows, _reports(), {7: "4.1.0"}) == [
+        (0, 7, 1, "2026-03-01T00:00:00+00:00", "2026-03-02T00:00:00+00:00", "4.1.0")
+    ]
