@@ -235,7 +235,7 @@ def _alongside(
 
     On PostgreSQL, `work` runs in a thread on a second connection that imports this session's
     snapshot (REPEATABLE READ with SET TRANSACTION SNAPSHOT), so it reads exactly what this
-    session could read when it started. Elsewhere, or when that is not possible (a session bound
+    session could read at that moment. Elsewhere, or when that is not possible (a session bound
     to a connection rather than an engine, or a transaction that has already written: no other
     connection sees its writes), `work` runs here, in this session, before the yield.
     """
