@@ -466,17 +466,8 @@ def _monitored(
     """Listening seconds per window and local week: segments clipped to the windows, in SQL."""
     postgres = dialect == "postgresql"
     stmt = _pieces_by_week_pg(w, tz, start, end) if postgres else _pieces_by_week_sqlite(w, steps)
-    agg = _fetch(session, stmt, _PIECE_COLUMNS).astype(
-        {
-            "window_id": np.int64,
-            "first_bucket": np.int64,
-            "last_bucket": np.int64,
-            "pieces": np.int64,
-            "sum_start_s": np.float64,
-            "sum_end_s": np.float64,
-        }
-    )
-    if postgres:  # its sums count from the window's start
+    agg = _fetch(session, stmt, _PIECE_COLUMNS)  # typed by _KINDS
+    if postgres:  # its sums count from `start`
         agg["sum_start_s"] += agg["pieces"] * start.timestamp()
         agg["sum_end_s"] += agg["pieces"] * start.timestamp()
     return exposure.spread_over_buckets(agg, lambda k: trend.week_start_s(k, tz))
@@ -596,7 +587,7 @@ _SEP = "\x1f"
 
 
 def _alert_facts(
-    dialect: str, trial: Trial, book: _Codebook, start: dt.datetime, end: dt.datetime, *where: Any
+    dialect: str, trial: Trial, book: _Codebook, start: dt.datetime, end: dt.datetime
 ) -> sa.Select[Any]:
     """One row per alert of the trial whose effective time t (clock skew corrected, epoch s) lies in
     [start, end): t, packed (device_id, listening, assigned and the text codes; see `_unpack`),
@@ -649,7 +640,7 @@ def _alert_facts(
         a.score,
         a.id.label("alert_id"),
         sa.case((sa.or_(*unknown), joined), else_=sa.null()).label("rest"),
-    ).where(a.trial_id == trial.id, t >= start.timestamp(), t < end.timestamp(), *where)
+    ).where(a.trial_id == trial.id, t >= start.timestamp(), t < end.timestamp())
 
 
 _FACT_COLUMNS = ["t", "packed", "score", "alert_id", "rest"]
@@ -889,10 +880,12 @@ def staged_candidates(
     """
     if not len(facts) or not len(events) or not len(installations):
         return np.zeros(0, dtype=np.int64)
-    lo = trend.epoch_s(events["started_at"]) - margin_s
-    hi = trend.epoch_s(events["ended_at"]) + margin_s
+    spans = events.loc[:, ["home_id", "sound_class"]].assign(
+        lo=trend.epoch_s(events["started_at"]) - margin_s, hi=trend.epoch_s(events["ended_at"]) + margin_s
+    )
     # First the alerts inside any event's span (their union, as disjoint sorted stretches): a
     # binary search each, with no sort of the alerts.
+    lo, hi = spans["lo"].to_numpy(), spans["hi"].to_numpy()
     by_start = np.argsort(lo, kind="stable")
     lo, hi = lo[by_start], np.maximum.accumulate(hi[by_start])
     fresh = np.r_[True, lo[1:] > hi[:-1]]
@@ -903,11 +896,7 @@ def staged_candidates(
     if not len(near):
         return np.zeros(0, dtype=np.int64)
     # Then the exact test on those few: same class, device installed in the home, time in range.
-    spans = events.loc[:, ["home_id", "sound_class", "started_at", "ended_at"]].merge(
-        installations.loc[:, ["device_id", "home_id"]].drop_duplicates(), on="home_id"
-    )
-    spans["lo"] = trend.epoch_s(spans["started_at"]) - margin_s
-    spans["hi"] = trend.epoch_s(spans["ended_at"]) + margin_s
+    spans = spans.merge(installations.loc[:, ["device_id", "home_id"]].drop_duplicates(), on="home_id")
     few = pd.DataFrame(
         {
             "row": near,

@@ -103,10 +103,10 @@ _EXTEND_SEGMENT = (update(ListeningSegment.__table__)
                           _segment.ended_at <= bindparam("now_v"),
                           _segment.ended_at >= bindparam("since_v"))
                    .values(ended_at=bindparam("now_v"), heartbeats=_segment.heartbeats + 1))
-_FIRMWARE_CHANGED = insert(FirmwareChange.__table__)
 _CLOSE_SEGMENT = (update(ListeningSegment.__table__)
                   .where(_segment.device_id == bindparam("device_id_v"), _segment.is_open.is_(True))
                   .values(is_open=False))
+_FIRMWARE_CHANGED = insert(FirmwareChange.__table__)
 
 
 def authenticate_device(session: Session, token: str) -> Device:
