@@ -115,6 +115,8 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
 
     app.add_middleware(SecurityHeaders)
 
+    from server.admin import api as admin_api
+    from server.admin import pages as admin_pages
     from server.analytics import api as analytics_api
     from server.analytics import pages as analytics_pages
     from server.auth import pages as auth_pages
@@ -128,6 +130,6 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
 
     app.include_router(health.router)
     for module in (auth_pages, web_pages, devices_api, devices_pages, households_api, households_pages,
-                   review_api, review_pages, analytics_api, analytics_pages):
+                   review_api, review_pages, analytics_api, analytics_pages, admin_api, admin_pages):
         app.include_router(module.router)
     return app

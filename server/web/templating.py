@@ -25,6 +25,8 @@ NAV = [
     ("Listening desk", "/review", "review.work"),
     ("Agreement", "/review/agreement", "review.agreement"),
     ("Weekly summary", "/summary", "summary.view"),
+    ("Staff accounts", "/admin/staff", "users.manage"),
+    ("Audit trail", "/admin/audit", "audit.view"),
 ]
 
 

@@ -1,0 +1,1 @@
+"""Staff account administration and the audit trail reader (admins only)."""
