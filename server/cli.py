@@ -220,6 +220,9 @@ def build_parser() -> argparse.ArgumentParser:
     ua.add_argument("--name")
     ua.add_argument("--adjudicator", action="store_true", help="may settle disagreeing verdicts")
     ua.set_defaults(func=cmd_user_add)
+    from server.admin import cli as admin_cli
+
+    admin_cli.register(user)
 
     trial = sub.add_parser("trial", help="trials").add_subparsers(dest="trial_cmd", required=True)
     ta = trial.add_parser("add", help="add a trial")

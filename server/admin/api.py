@@ -30,9 +30,16 @@ class AccountOut(BaseModel):
 
     @classmethod
     def of(cls, user: User) -> AccountOut:
-        return cls(id=user.id, email=user.email, name=user.name, role=user.role,
-                   is_adjudicator=user.is_adjudicator, active=user.active, created_at=user.created_at,
-                   last_login_at=user.last_login_at)
+        return cls(
+            id=user.id,
+            email=user.email,
+            name=user.name,
+            role=user.role,
+            is_adjudicator=user.is_adjudicator,
+            active=user.active,
+            created_at=user.created_at,
+            last_login_at=user.last_login_at,
+        )
 
 
 class AccountIn(BaseModel):
@@ -83,36 +90,45 @@ class AuditPageOut(BaseModel):
 
 
 @router.get("/users", response_model=list[AccountOut])
-def list_accounts(session: DbSession,
-        user: User = Depends(require("users.manage"))) -> list[AccountOut]:
+def list_accounts(session: DbSession, user: User = Depends(require("users.manage"))) -> list[AccountOut]:
     return [AccountOut.of(u) for u in service.list_users(session)]
 
 
 @router.post("/users", status_code=201, response_model=TemporaryPasswordOut)
-def create_account(body: AccountIn, session: DbSession,
-        user: User = Depends(require("users.manage"))) -> Response:
-    account, password = service.create_account(session, actor=user, email=body.email, name=body.name,
-                                               role=body.role, is_adjudicator=body.is_adjudicator)
+def create_account(
+    body: AccountIn, session: DbSession, user: User = Depends(require("users.manage"))
+) -> Response:
+    account, password = service.create_account(
+        session,
+        actor=user,
+        email=body.email,
+        name=body.name,
+        role=body.role,
+        is_adjudicator=body.is_adjudicator,
+    )
     session.commit()
     out = TemporaryPasswordOut(account=AccountOut.of(account), temporary_password=password)
     return JSONResponse(out.model_dump(mode="json"), status_code=201, headers=NO_STORE)
 
 
 @router.get("/users/{user_id}", response_model=AccountOut)
-def get_account(user_id: int, session: DbSession,
-        user: User = Depends(require("users.manage"))) -> AccountOut:
+def get_account(
+    user_id: int, session: DbSession, user: User = Depends(require("users.manage"))
+) -> AccountOut:
     return AccountOut.of(service.get_user(session, user_id))
 
 
 @router.patch("/users/{user_id}", response_model=AccountChangeOut)
-def change_account(user_id: int, body: AccountPatch, session: DbSession,
-                   user: User = Depends(require("users.manage"))) -> AccountChangeOut:
+def change_account(
+    user_id: int, body: AccountPatch, session: DbSession, user: User = Depends(require("users.manage"))
+) -> AccountChangeOut:
     """Role and adjudicator permission first, then the active flag; one transaction, all or nothing."""
     changed, ended = False, 0
     account = service.get_user(session, user_id)
     if body.role is not None or body.is_adjudicator is not None:
-        c = service.change_access(session, actor=user, user_id=user_id, role=body.role,
-                                  is_adjudicator=body.is_adjudicator)
+        c = service.change_access(
+            session, actor=user, user_id=user_id, role=body.role, is_adjudicator=body.is_adjudicator
+        )
         changed, ended = changed or c.changed, ended + c.sessions_ended
     if body.active is not None:
         c = (service.reactivate if body.active else service.deactivate)(session, actor=user, user_id=user_id)
@@ -122,8 +138,9 @@ def change_account(user_id: int, body: AccountPatch, session: DbSession,
 
 
 @router.post("/users/{user_id}/password-reset", response_model=TemporaryPasswordOut)
-def reset_password(user_id: int, session: DbSession,
-        user: User = Depends(require("users.manage"))) -> Response:
+def reset_password(
+    user_id: int, session: DbSession, user: User = Depends(require("users.manage"))
+) -> Response:
     account, password = service.reset_password(session, actor=user, user_id=user_id)
     session.commit()
     out = TemporaryPasswordOut(account=AccountOut.of(account), temporary_password=password)
@@ -131,15 +148,32 @@ def reset_password(user_id: int, session: DbSession,
 
 
 @router.get("/audit-events", response_model=AuditPageOut)
-def list_audit_events(request: Request, session: DbSession,
-                      page: int = Query(1, ge=1, le=1_000_000),
-                      per_page: int = Query(trail.PER_PAGE, ge=1, le=trail.MAX_PER_PAGE),
-                      user: User = Depends(require("audit.view"))) -> AuditPageOut:
+def list_audit_events(
+    request: Request,
+    session: DbSession,
+    page: int = Query(1, ge=1, le=1_000_000),
+    per_page: int = Query(trail.PER_PAGE, ge=1, le=trail.MAX_PER_PAGE),
+    user: User = Depends(require("audit.view")),
+) -> AuditPageOut:
     """Filters as query parameters: actor, action, home, object_type, object_id, since, until."""
     flt = trail.parse_filter(session, {k: request.query_params.get(k, "") for k in trail.FILTER_FIELDS})
     result = trail.list_events(session, flt, page=page, per_page=per_page)
     return AuditPageOut(
-        events=[AuditEventOut(id=e.id, at=e.at, actor=e.actor_label, actor_id=e.actor_id, action=e.action,
-                              object_type=e.object_type, object_id=e.object_id, detail=e.detail or {})
-                for e in result.events],
-        total=result.total, page=result.page, per_page=result.per_page, pages=result.pages)
+        events=[
+            AuditEventOut(
+                id=e.id,
+                at=e.at,
+                actor=e.actor_label,
+                actor_id=e.actor_id,
+                action=e.action,
+                object_type=e.object_type,
+                object_id=e.object_id,
+                detail=e.detail or {},
+            )
+            for e in result.events
+        ],
+        total=result.total,
+        page=result.page,
+        per_page=result.per_page,
+        pages=result.pages,
+    )

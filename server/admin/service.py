@@ -66,8 +66,9 @@ def list_users(session: Session) -> list[User]:
 def _check_role(role: str) -> str:
     role = (role or "").strip()
     if role not in ROLES:
-        raise ValidationFailed(f"Role '{role}' is not one of {', '.join(ROLES)}.",
-                               {"role": f"Choose one of {', '.join(ROLES)}."})
+        raise ValidationFailed(
+            f"Role '{role}' is not one of {', '.join(ROLES)}.", {"role": f"Choose one of {', '.join(ROLES)}."}
+        )
     return role
 
 
@@ -78,7 +79,8 @@ def _ensure_another_admin(session: Session, leaving: User) -> None:
     two admins demoting each other at the same moment cannot both succeed.
     """
     others = session.scalars(
-        select(User.id).where(User.role == ADMIN, User.active.is_(True), User.id != leaving.id)
+        select(User.id)
+        .where(User.role == ADMIN, User.active.is_(True), User.id != leaving.id)
         .with_for_update()
     ).all()
     if not others:
@@ -89,19 +91,33 @@ def _is_active_admin(user: User) -> bool:
     return user.active and user.role == ADMIN
 
 
-def create_account(session: Session, *, actor: User | str, email: str, name: str, role: str,
-                   is_adjudicator: bool = False) -> tuple[User, str]:
+def create_account(
+    session: Session, *, actor: User | str, email: str, name: str, role: str, is_adjudicator: bool = False
+) -> tuple[User, str]:
     """A new account with a printed temporary password that must be changed at first sign-in."""
     _check_role(role)
     password = temporary_password()
-    user = auth_service.create_user(session, email=email, name=name.strip(), role=role, password=password,
-                                    is_adjudicator=is_adjudicator, actor=actor)
+    user = auth_service.create_user(
+        session,
+        email=email,
+        name=name.strip(),
+        role=role,
+        password=password,
+        is_adjudicator=is_adjudicator,
+        actor=actor,
+    )
     auth_service.set_password(session, user, password, must_change=True)
     return user, password
 
 
-def change_access(session: Session, *, actor: User | str, user_id: int, role: str | None = None,
-                  is_adjudicator: bool | None = None) -> AccountChange:
+def change_access(
+    session: Session,
+    *,
+    actor: User | str,
+    user_id: int,
+    role: str | None = None,
+    is_adjudicator: bool | None = None,
+) -> AccountChange:
     """Change role and/or the adjudicator permission; the user's sessions end when anything changed."""
     user = get_user(session, user_id)
     new_role = user.role if role is None else _check_role(role)
@@ -114,9 +130,19 @@ def change_access(session: Session, *, actor: User | str, user_id: int, role: st
     user.role, user.is_adjudicator = Role(new_role).value, new_adj
     session.flush()
     ended = auth_service.end_sessions(session, user.id, reason="access_change")
-    audit.record(session, actor, "user.access_change", "user", user.id,
-                 {"email": user.email, "before": before,
-                  "after": {"role": new_role, "is_adjudicator": new_adj}, "sessions_ended": ended})
+    audit.record(
+        session,
+        actor,
+        "user.access_change",
+        "user",
+        user.id,
+        {
+            "email": user.email,
+            "before": before,
+            "after": {"role": new_role, "is_adjudicator": new_adj},
+            "sessions_ended": ended,
+        },
+    )
     return AccountChange(user, changed=True, sessions_ended=ended)
 
 
@@ -130,8 +156,9 @@ def deactivate(session: Session, *, actor: User | str, user_id: int) -> AccountC
     user.active = False
     session.flush()
     ended = auth_service.end_sessions(session, user.id, reason="deactivated")
-    audit.record(session, actor, "user.deactivate", "user", user.id,
-                 {"email": user.email, "sessions_ended": ended})
+    audit.record(
+        session, actor, "user.deactivate", "user", user.id, {"email": user.email, "sessions_ended": ended}
+    )
     return AccountChange(user, changed=True, sessions_ended=ended)
 
 

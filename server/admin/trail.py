@@ -44,10 +44,15 @@ class TrailFilter:
 
     def query_items(self) -> list[tuple[str, str]]:
         """The filter as query-string pairs (for page links and the CSV link), blanks left out."""
-        values = {"actor": self.actor, "action": self.action, "home": self.home,
-                  "object_type": self.object_type, "object_id": self.object_id,
-                  "since": self.since.isoformat() if self.since else "",
-                  "until": self.until.isoformat() if self.until else ""}
+        values = {
+            "actor": self.actor,
+            "action": self.action,
+            "home": self.home,
+            "object_type": self.object_type,
+            "object_id": self.object_id,
+            "since": self.since.isoformat() if self.since else "",
+            "until": self.until.isoformat() if self.until else "",
+        }
         return [(k, v) for k, v in values.items() if v]
 
 
@@ -93,9 +98,16 @@ def parse_filter(session: Session, params: Mapping[str, str]) -> TrailFilter:
         errors["object_type"] = "Choose the kind of object the id belongs to."
     if errors:
         raise ValidationFailed(next(iter(errors.values())), errors)
-    return TrailFilter(actor=text["actor"], action=text["action"], home=text["home"],
-                       object_type=text["object_type"], object_id=text["object_id"],
-                       since=since, until=until, home_id=home_id)
+    return TrailFilter(
+        actor=text["actor"],
+        action=text["action"],
+        home=text["home"],
+        object_type=text["object_type"],
+        object_id=text["object_id"],
+        since=since,
+        until=until,
+        home_id=home_id,
+    )
 
 
 def _day_start(day: dt.date) -> dt.datetime:
@@ -107,18 +119,28 @@ def _conditions(session: Session, flt: TrailFilter) -> list[ColumnElement[bool]]
     if flt.actor:
         needle = flt.actor.lower()
         by_email = select(User.id).where(func.lower(User.email).contains(needle, autoescape=True))
-        conds.append(or_(func.lower(AuditEvent.actor_label).contains(needle, autoescape=True),
-                         AuditEvent.actor_id.in_(by_email)))
+        conds.append(
+            or_(
+                func.lower(AuditEvent.actor_label).contains(needle, autoescape=True),
+                AuditEvent.actor_id.in_(by_email),
+            )
+        )
     if flt.action:
         conds.append(AuditEvent.action == flt.action)
     if flt.home_id is not None:
         # A home's events: those about the home itself and those about its installations.
-        installations = [str(i) for i in session.scalars(
-            select(Installation.id).where(Installation.home_id == flt.home_id))]
+        installations = [
+            str(i)
+            for i in session.scalars(select(Installation.id).where(Installation.home_id == flt.home_id))
+        ]
         about_home = and_(AuditEvent.object_type == "home", AuditEvent.object_id == str(flt.home_id))
         if installations:
-            conds.append(or_(about_home, and_(AuditEvent.object_type == "installation",
-                                              AuditEvent.object_id.in_(installations))))
+            conds.append(
+                or_(
+                    about_home,
+                    and_(AuditEvent.object_type == "installation", AuditEvent.object_id.in_(installations)),
+                )
+            )
         else:
             conds.append(about_home)
     if flt.object_type:
@@ -138,9 +160,15 @@ def list_events(session: Session, flt: TrailFilter, *, page: int = 1, per_page: 
     per_page = min(max(1, per_page), MAX_PER_PAGE)
     conds = _conditions(session, flt)
     total = session.scalar(select(func.count(AuditEvent.id)).where(*conds)) or 0
-    events = list(session.scalars(
-        select(AuditEvent).where(*conds).order_by(AuditEvent.at.desc(), AuditEvent.id.desc())
-        .offset((page - 1) * per_page).limit(per_page)))
+    events = list(
+        session.scalars(
+            select(AuditEvent)
+            .where(*conds)
+            .order_by(AuditEvent.at.desc(), AuditEvent.id.desc())
+            .offset((page - 1) * per_page)
+            .limit(per_page)
+        )
+    )
     return TrailPage(events=events, total=total, page=page, per_page=per_page)
 
 
@@ -165,13 +193,29 @@ def export_csv(session: Session, flt: TrailFilter, *, actor: User | str) -> tupl
     writer = csv.writer(out, lineterminator="\r\n")  # RFC 4180 line ends
     writer.writerow(CSV_COLUMNS)
     rows = 0
-    stmt = (select(AuditEvent).where(*_conditions(session, flt))
-            .order_by(AuditEvent.at.desc(), AuditEvent.id.desc()).execution_options(yield_per=1000))
+    stmt = (
+        select(AuditEvent)
+        .where(*_conditions(session, flt))
+        .order_by(AuditEvent.at.desc(), AuditEvent.id.desc())
+        .execution_options(yield_per=1000)
+    )
     for event in session.scalars(stmt):
-        writer.writerow([safe_cell(v) for v in (
-            event.id, event.at.astimezone(dt.UTC).isoformat(), event.actor_label, event.action,
-            event.object_type, event.object_id or "", detail_text(event))])
+        writer.writerow(
+            [
+                safe_cell(v)
+                for v in (
+                    event.id,
+                    event.at.astimezone(dt.UTC).isoformat(),
+                    event.actor_label,
+                    event.action,
+                    event.object_type,
+                    event.object_id or "",
+                    detail_text(event),
+                )
+            ]
+        )
         rows += 1
-    audit.record(session, actor, "audit.export", "audit_trail", None,
-                 {"filter": dict(flt.query_items()), "rows": rows})
+    audit.record(
+        session, actor, "audit.export", "audit_trail", None, {"filter": dict(flt.query_items()), "rows": rows}
+    )
     return out.getvalue(), rows
