@@ -95,7 +95,6 @@ def create_account(
     session: Session, *, actor: User | str, email: str, name: str, role: str, is_adjudicator: bool = False
 ) -> tuple[User, str]:
     """A new account with a printed temporary password that must be changed at first sign-in."""
-    _check_role(role)
     password = temporary_password()
     user = auth_service.create_user(
         session,
@@ -105,8 +104,8 @@ def create_account(
         password=password,
         is_adjudicator=is_adjudicator,
         actor=actor,
+        must_change_password=True,
     )
-    auth_service.set_password(session, user, password, must_change=True)
     return user, password
 
 
@@ -179,6 +178,6 @@ def reset_password(session: Session, *, actor: User | str, user_id: int) -> tupl
     """
     user = get_user(session, user_id)
     password = temporary_password()
-    auth_service.set_password(session, user, password, must_change=True)
-    audit.record(session, actor, "user.password_reset", "user", user.id, {"email": user.email})
+    # Recorded in the audit trail by set_password as "user.password_set" with must_change true.
+    auth_service.set_password(session, user, password, must_change=True, actor=actor)
     return user, password
