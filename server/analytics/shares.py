@@ -11,6 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike
+from scipy import stats
 
 from server.analytics import rates
 
@@ -199,4 +200,256 @@ def homes_above_target(pareto: pd.DataFrame, target: float) -> HomesAboveTarget:
         share_above=above / n if n else math.nan,
         share_clearly_above=n_clearly / n if n else math.nan,
         clearly_above_codes=tuple(str(c) for c in pareto["home_code"][clearly]),
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# Against monitored time and against chance; many homes tested at once
+
+MULTIPLICITY_METHODS = ("holm", "bh")
+MULTIPLICITY_TEXT = {
+    "holm": "Holm's step-down correction (the chance of naming any home wrongly is kept below {alpha:.0%})",
+    "bh": "Benjamini-Hochberg correction (wrongly named homes are kept below {alpha:.0%} of those named)",
+}
+
+
+def adjust_p(p_values: ArrayLike, method: str = "holm") -> np.ndarray:
+    """Multiplicity-adjusted p-values (same order as given; NaN stays NaN and is not counted).
+
+    "holm": Holm S (1979) A simple sequentially rejective multiple test procedure. Scand J Stat
+    6:65-70. "bh": Benjamini Y, Hochberg Y (1995) JRSS B 57:289-300 (both from memory). Agree with
+    statsmodels `multipletests(method="holm" | "fdr_bh")`.
+    """
+    if method not in MULTIPLICITY_METHODS:
+        raise ValueError(f"unknown method {method!r}; expected one of {MULTIPLICITY_METHODS}")
+    p = np.asarray(p_values, dtype=np.float64)
+    out = np.full(p.shape, np.nan)
+    ok = ~np.isnan(p)
+    q = p[ok]
+    m = len(q)
+    if m == 0:
+        return out
+    order = np.argsort(q, kind="mergesort")
+    s = q[order]
+    if method == "holm":
+        adj = np.maximum.accumulate((m - np.arange(m)) * s)
+    else:
+        adj = np.minimum.accumulate(m / np.arange(m, 0, -1) * s[::-1])[::-1]
+    adj = np.minimum(adj, 1.0)
+    res = np.empty(m)
+    res[order] = adj
+    out[ok] = res
+    return out
+
+
+@dataclass(frozen=True)
+class HomesAboveTargetAdjusted:
+    """Homes shown above the target by a one-sided exact test each, corrected for testing many.
+
+    `table`: home_code, false_alarms, home_months, rate, p_value (P(X >= k) at the target),
+    p_adjusted, clearly_above; sorted by p-value. `method_text` is the sentence the page shows.
+    """
+
+    homes: int
+    target: float
+    alpha: float
+    method: str
+    method_text: str
+    above: int
+    clearly_above: int
+    clearly_above_codes: tuple[str, ...]
+    table: pd.DataFrame
+
+
+def homes_above_target_adjusted(
+    homes: pd.DataFrame, target: float, *, alpha: float = 0.05, method: str = "holm"
+) -> HomesAboveTargetAdjusted:
+    """Which homes are clearly above the target rate, with the multiplicity of homes allowed for.
+
+    Per home the one-sided exact Poisson p-value of rate > target, p = P(X >= k | mu = target T),
+    then `adjust_p` across homes with monitored time; a home is "clearly above" when its adjusted
+    p-value is below `alpha`. `above` counts homes whose point estimate is above the target.
+    """
+    if not target > 0:
+        raise ValueError("the target must be positive")
+    if not 0 < alpha < 1:
+        raise ValueError("alpha must be between 0 and 1")
+    codes = homes["home_code"].astype(str).to_numpy()
+    k = homes["false_alarms"].to_numpy(dtype=np.float64)
+    t = homes["home_months"].to_numpy(dtype=np.float64)
+    mon = t > 0
+    p = np.where(mon, stats.poisson.sf(k - 1, target * np.where(mon, t, 0.0)), np.nan)
+    p = np.where(mon & (k == 0), 1.0, p)
+    adj = adjust_p(p, method)
+    clearly = mon & (adj < alpha)
+    rate = np.divide(k, t, out=np.full(len(t), np.nan), where=mon)
+    table = pd.DataFrame(
+        {
+            "home_code": codes,
+            "false_alarms": k.astype(np.int64),
+            "home_months": t,
+            "rate": rate,
+            "p_value": p,
+            "p_adjusted": adj,
+            "clearly_above": clearly,
+        }
+    )
+    table = table.iloc[rates.sort_order([table["p_value"], table["home_code"]], [True, True])].reset_index(
+        drop=True
+    )
+    return HomesAboveTargetAdjusted(
+        homes=int(mon.sum()),
+        target=target,
+        alpha=alpha,
+        method=method,
+        method_text=MULTIPLICITY_TEXT[method].format(alpha=alpha),
+        above=int((mon & (rate > target)).sum()),
+        clearly_above=int(clearly.sum()),
+        clearly_above_codes=tuple(table["home_code"][table["clearly_above"]]),
+        table=table,
+    )
+
+
+@dataclass(frozen=True)
+class ExposureConcentration:
+    """How far false alarms pile up in some homes beyond their share of monitored time.
+
+    `gini`: 0 when every home has the same rate, towards 1 when a few homes' time holds all the
+    false alarms (Lorenz curve of false-alarm share against time share, homes by rate). `null_low`,
+    `null_median`, `null_high`: the same figure's 2.5%, 50% and 97.5% points when every home has the
+    pooled rate (seeded simulation); `beyond_chance`: the observed figure is above `null_high`.
+    `table`: per home, the two-sided exact test of its share of the false alarms against its share
+    of the time, corrected across homes (`method`); `stands_out` where the corrected p < alpha.
+    """
+
+    homes: int
+    false_alarms: int
+    gini: float
+    null_low: float
+    null_median: float
+    null_high: float
+    beyond_chance: bool
+    p_value: float
+    draws: int
+    alpha: float
+    method: str
+    method_text: str
+    stands_out_codes: tuple[str, ...]
+    table: pd.DataFrame
+    reason: str | None = None
+
+
+def exposure_gini(false_alarms: ArrayLike, home_months: ArrayLike) -> np.ndarray:
+    """Gini of false alarms against monitored time, for one or many pilots (last axis = homes).
+
+    Homes sorted by rate (lowest first); the Lorenz curve joins (cumulative time share, cumulative
+    false-alarm share); G = 1 - 2 x (area under it, by trapezoids). Equal rates give exactly 0.
+    NaN without false alarms. Every home must have monitored time.
+    References: Lorenz MO (1905) JASA 9:209-219; the Gini ratio as twice the area between the curve
+    and the diagonal (common practice, from memory).
+    """
+    x = np.atleast_2d(np.asarray(false_alarms, dtype=np.float64))
+    t = np.atleast_2d(np.asarray(home_months, dtype=np.float64))
+    order = np.argsort(x / t, axis=-1, kind="stable")
+    xs = np.take_along_axis(x, order, -1)
+    ts = np.take_along_axis(t, order, -1)
+    total_x = xs.sum(-1, keepdims=True)
+    cx = np.cumsum(xs, -1) / np.where(total_x > 0, total_x, 1.0)
+    ct = ts / ts.sum(-1, keepdims=True)
+    prev = np.concatenate([np.zeros(cx.shape[:-1] + (1,)), cx[..., :-1]], -1)
+    area = (ct * (cx + prev) / 2).sum(-1)
+    out: np.ndarray = np.where(total_x[..., 0] > 0, 1 - 2 * area, np.nan)
+    return out
+
+
+def exposure_concentration(
+    homes: pd.DataFrame,
+    *,
+    rng: np.random.Generator,
+    draws: int = 1000,
+    alpha: float = 0.05,
+    method: str = "holm",
+) -> ExposureConcentration:
+    """Concentration of false alarms against monitored time, and against chance at equal rates.
+
+    The null band: `draws` pilots whose homes keep their monitored time but share the pooled rate
+    (counts multinomial given the total, probabilities t_i / T), each scored with `exposure_gini`.
+    Per home: given the total N, its count is binomial(N, t_i / T) at equal rates; the two-sided
+    exact p-value (scipy `binomtest`) is corrected across homes with `adjust_p`.
+    Homes without monitored time are left out. With no false alarms every figure is NaN with
+    reason "no_false_alarms".
+    """
+    if draws < 1:
+        raise ValueError("draws must be at least 1")
+    codes = homes["home_code"].astype(str).to_numpy()
+    k = homes["false_alarms"].to_numpy(dtype=np.float64)
+    t = homes["home_months"].to_numpy(dtype=np.float64)
+    mon = t > 0
+    codes, k, t = codes[mon], k[mon], t[mon]
+    n = int(k.sum())
+    text = MULTIPLICITY_TEXT[method].format(alpha=alpha) if method in MULTIPLICITY_TEXT else ""
+    if n == 0 or len(t) < 2:
+        empty = pd.DataFrame(
+            {"home_code": codes, "false_alarms": k.astype(np.int64), "home_months": t, "rate": k / t}
+        )
+        return ExposureConcentration(
+            homes=len(t),
+            false_alarms=n,
+            gini=math.nan,
+            null_low=math.nan,
+            null_median=math.nan,
+            null_high=math.nan,
+            beyond_chance=False,
+            p_value=math.nan,
+            draws=0,
+            alpha=alpha,
+            method=method,
+            method_text=text,
+            stands_out_codes=(),
+            table=empty,
+            reason=NO_FALSE_ALARMS if n == 0 else rates.TOO_FEW_HOMES,
+        )
+    share = t / t.sum()
+    observed = float(exposure_gini(k, t)[0])
+    sims = rng.multinomial(n, share, size=draws).astype(np.float64)
+    null = exposure_gini(sims, np.broadcast_to(t, sims.shape))
+    low, median, high = (float(v) for v in np.quantile(null, [0.025, 0.5, 0.975]))
+    p_value = float((1 + (null >= observed - 1e-12).sum()) / (1 + draws))
+    p_home = np.array(
+        [stats.binomtest(int(ki), n, float(si)).pvalue for ki, si in zip(k, share, strict=True)]
+    )
+    adj = adjust_p(p_home, method)
+    rate = k / t
+    pooled = n / t.sum()
+    stands = (adj < alpha) & (rate > pooled)
+    table = pd.DataFrame(
+        {
+            "home_code": codes,
+            "false_alarms": k.astype(np.int64),
+            "home_months": t,
+            "rate": rate,
+            "expected": pooled * t,
+            "p_value": p_home,
+            "p_adjusted": adj,
+            "stands_out": stands,
+        }
+    )
+    table = table.iloc[rates.sort_order([table["p_value"], table["home_code"]], [True, True])].reset_index(
+        drop=True
+    )
+    return ExposureConcentration(
+        homes=len(t),
+        false_alarms=n,
+        gini=observed,
+        null_low=low,
+        null_median=median,
+        null_high=high,
+        beyond_chance=bool(observed > high),
+        p_value=p_value,
+        draws=draws,
+        alpha=alpha,
+        method=method,
+        method_text=text,
+        stands_out_codes=tuple(table["home_code"][table["stands_out"]]),
+        table=table,
     )

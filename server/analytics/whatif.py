@@ -12,7 +12,21 @@ import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
 
-from server.analytics import rates
+from server.analytics import homerate, rates
+
+# What a threshold would do, as one state per row (the page shows STATE_TEXT[state]).
+ACCEPTABLE = "acceptable"
+LOSES_DETECTIONS = "loses_detections"
+NO_STAGED_EVENTS = "no_staged_events"
+ABOVE_TARGET = "above_target"
+TOO_FEW_HOMES = homerate.TOO_FEW_HOMES
+STATE_TEXT = {
+    ACCEPTABLE: "Acceptable: meets the target and keeps every staged detection.",
+    LOSES_DETECTIONS: "Meets the target but loses {lost} staged detections.",
+    NO_STAGED_EVENTS: "Meets the target, but there are no staged events to judge detection.",
+    ABOVE_TARGET: "Not shown to meet the target.",
+    TOO_FEW_HOMES: "Too few homes to judge spread.",
+}
 
 
 def score_floor(min_score_by_firmware: ArrayLike) -> float:
@@ -48,6 +62,9 @@ def at_thresholds(
     target: float,
     fa_counts: ArrayLike | None = None,
     confidence_level: float = 0.95,
+    fa_homes: ArrayLike | None = None,
+    home_months_by_home: ArrayLike | None = None,
+    min_homes: int = homerate.MIN_HOMES,
 ) -> pd.DataFrame:
     """False alarms per home-month and staged detection at each threshold.
 
@@ -58,12 +75,21 @@ def at_thresholds(
     event_best_scores: per staged event, the highest score among the alerts that detected it
         (NaN for a missed event); an event stays detected at threshold t when this is >= t.
     thresholds: each at or above `floor` (ValueError otherwise: it cannot be simulated).
-    target: false alarms per home-month; a threshold meets it when the exact upper limit does.
+    target: false alarms per home-month; a threshold meets it under the one rule
+        (`homerate.readiness_rule`): its upper limit `upper` is at or below the target.
+    fa_homes, home_months_by_home: optional; the home (position in `home_months_by_home`) of each
+        entry of `fa_scores`, and each home's monitored time. Given, `upper` is the home-level upper
+        limit (`homerate.home_rate`); otherwise the exact (Garwood) upper limit, the same side and
+        level, which assumes homes alike.
 
     Returns
     -------
     threshold, false_alarms, rate, low, high (exact Garwood interval), events, detected,
-    detected_share, detected_low, detected_high (Wilson), miss_share, meets_target.
+    detected_share, detected_low, detected_high (Wilson), miss_share, upper, meets_target,
+    lost_detections (staged detections lost against the floor), state ("acceptable",
+    "loses_detections", "no_staged_events", "above_target" or "too_few_homes"; see STATE_TEXT).
+    A threshold is "acceptable" only when it meets the target and keeps every staged detection
+    the floor has.
     """
     t = np.asarray(thresholds, dtype=np.float64)
     if np.any(t < floor - 1e-12):
@@ -82,6 +108,32 @@ def at_thresholds(
     n = np.full(len(t), len(best), dtype=np.int64)
     lim = rates.proportion_limits(detected, n, confidence_level=confidence_level, method="wilson")
     share = np.divide(detected, n, out=np.full(len(t), np.nan), where=n > 0)
+    at_floor = int(len(hit) - np.searchsorted(hit, floor, side="left"))
+    lost = (at_floor - detected).astype(np.int64)
+    upper = r.high
+    too_few = np.zeros(len(t), dtype=bool)
+    if fa_homes is not None or home_months_by_home is not None:
+        if fa_homes is None or home_months_by_home is None:
+            raise ValueError("fa_homes and home_months_by_home go together")
+        hm = np.asarray(home_months_by_home, dtype=np.float64)
+        where = np.asarray(fa_homes, dtype=np.intp)[order]
+        upper = np.empty(len(t))
+        for i, threshold in enumerate(t):
+            kept = s >= threshold
+            per_home = np.bincount(where[kept], weights=w[kept], minlength=len(hm))
+            hr = homerate.home_rate(per_home, hm, confidence_level=confidence_level, min_homes=min_homes)
+            upper[i] = hr.high
+            too_few[i] = hr.reason is not None
+    meets = upper <= target
+    state = np.where(
+        too_few,
+        TOO_FEW_HOMES,
+        np.where(
+            ~meets,
+            ABOVE_TARGET,
+            np.where(n == 0, NO_STAGED_EVENTS, np.where(lost > 0, LOSES_DETECTIONS, ACCEPTABLE)),
+        ),
+    ).astype(object)
     return pd.DataFrame(
         {
             "threshold": t,
@@ -95,6 +147,14 @@ def at_thresholds(
             "detected_low": lim.low,
             "detected_high": lim.high,
             "miss_share": 1.0 - share,
-            "meets_target": r.high <= target,
+            "upper": upper,
+            "meets_target": meets,
+            "lost_detections": lost,
+            "state": state,
         }
     )
+
+
+def state_text(state: str, lost_detections: int) -> str:
+    """One sentence for a what-if row's state."""
+    return STATE_TEXT[state].format(lost=lost_detections)

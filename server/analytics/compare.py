@@ -1,0 +1,370 @@
+"""Comparing false-alarm rates of groups (firmware, hardware model, room) when homes differ.
+
+Pure functions over per device-window rows (home, group, false alarms, home-months); no database.
+Every comparison treats the home as the unit that varies: home-clustered (sandwich) variances with
+t or F quantiles on G - 1 degrees of freedom, G the number of homes; a test's p-value and its
+interval come from the same statistic, so p < 1 - level exactly when the interval excludes 1.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import optimize, stats
+
+# Homes (clusters) a comparison needs before it says anything; fewer gives a reason, no flag.
+MIN_HOMES = 5
+
+TOO_FEW_HOMES = "too_few_homes"
+TOO_FEW_GROUPS = "fewer_than_two_groups"
+NO_EVENTS_IN_GROUP = "no_events_in_group"
+NO_MONITORED_TIME = "no_monitored_time"
+REFERENCE = "reference"
+
+REASON_TEXT = {
+    TOO_FEW_HOMES: "Too few homes to compare: at least {min_homes} are needed.",
+    TOO_FEW_GROUPS: "Only one group has monitored time.",
+    NO_EVENTS_IN_GROUP: "A group without false alarms cannot be compared by a ratio.",
+    NO_MONITORED_TIME: "No monitored time.",
+    REFERENCE: "The group the others are compared with.",
+}
+
+BETWEEN = "between homes: Poisson rates per group, home-clustered variance, t on homes - 1 df"
+WITHIN = "within homes: home fixed effects (conditional Poisson), home-clustered variance, t on homes - 1 df"
+JOINT = "Wald test of equal rates, home-clustered variance, F on (groups - 1, homes - 1) df"
+
+
+@dataclass(frozen=True)
+class GroupComparison:
+    """Rates of several groups, each against a reference group, and one test that all are equal.
+
+    `table`: one row per group (most monitored time first) with columns group, homes,
+    false_alarms, home_months, rate, ratio (to the reference), low, high, p_value, differs, reason.
+    `differs`: the joint test's p-value is below 1 - confidence_level.
+    """
+
+    key: str
+    reference: str | None
+    groups: int
+    homes: int
+    table: pd.DataFrame
+    statistic: float
+    df_num: int
+    df_den: int
+    p_value: float
+    differs: bool
+    confidence_level: float
+    method: str
+    reason: str | None = None
+
+
+@dataclass(frozen=True)
+class PairComparison:
+    """Rate ratio of version a over version b, with its interval and p-value from one statistic.
+
+    `within_homes` is True when enough homes ran both versions and the ratio compares each home
+    with itself; otherwise it compares the homes of one version with those of the other.
+    """
+
+    version_a: str
+    version_b: str
+    events_a: int
+    home_months_a: float
+    events_b: int
+    home_months_b: float
+    estimate: float
+    low: float
+    high: float
+    p_value: float
+    differs: bool
+    confidence_level: float
+    homes: int
+    paired_homes: int
+    within_homes: bool
+    method: str
+    reason: str | None = None
+
+
+def _check_level(confidence_level: float) -> None:
+    if not 0.0 < confidence_level < 1.0:
+        raise ValueError(f"confidence_level must be between 0 and 1, got {confidence_level}")
+
+
+def _frame(rows: pd.DataFrame, key: str, home: str, events: str, exposure: str) -> pd.DataFrame:
+    missing = [c for c in (key, home, events, exposure) if c not in rows.columns]
+    if missing:
+        raise ValueError(f"rows lack columns {missing}")
+    f = pd.DataFrame(
+        {
+            "group": rows[key].astype(str).to_numpy(),
+            "home": rows[home].astype(str).to_numpy(),
+            "x": rows[events].to_numpy(dtype=np.float64),
+            "t": rows[exposure].to_numpy(dtype=np.float64),
+        }
+    )
+    if (f["x"] < 0).any() or (f["t"] < 0).any():
+        raise ValueError("counts and monitored time must not be negative")
+    return f[f["t"] > 0]
+
+
+def _t_test(d: float, se: float, df: int, confidence_level: float) -> tuple[float, float, float]:
+    """Interval for exp(d) and the two-sided p-value of d = 0 from one t statistic."""
+    q = float(stats.t.ppf(1 - (1 - confidence_level) / 2, df))
+    p = float(2 * stats.t.sf(abs(d) / se, df)) if se > 0 else (1.0 if d == 0 else 0.0)
+    return math.exp(d - q * se), math.exp(d + q * se), p
+
+
+def compare_groups(
+    rows: pd.DataFrame,
+    *,
+    key: str,
+    home: str = "home_code",
+    events: str = "false_alarms",
+    exposure: str = "home_months",
+    reference: str | None = None,
+    confidence_level: float = 0.95,
+    min_homes: int = MIN_HOMES,
+) -> GroupComparison:
+    """Each group's rate against a reference group's, and a joint test that all rates are equal.
+
+    Parameters
+    ----------
+    rows: per device-window rows with the home (`home`), the group value (`key`), false alarms
+        (`events`) and monitored time (`exposure`, home-months). Rows without time are left out.
+    reference: the group others are compared with (default: the one with most monitored time).
+
+    The model is a Poisson regression with one rate per group and log exposure as offset, whose
+    estimates are the group totals' ratios; its sandwich variance sums each home's score over all
+    its rows (homes are the clusters), times G / (G - 1) (CR1). Each ratio's variance is kept at or
+    above the Poisson one, 1 / x_g + 1 / x_ref. Ratios use t on G - 1 degrees of freedom, the joint
+    test F on (groups - 1, G - 1). Groups without false alarms have no ratio (reason
+    "no_events_in_group") and stay out of the joint test.
+
+    References: Liang KY, Zeger SL (1986) Biometrika 73:13-22; Cameron AC, Miller DL (2015)
+    J Human Resources 50:317-372, small-cluster corrections (both from memory). Agrees with
+    statsmodels GLM(Poisson, offset).fit(cov_type="cluster") (see the unit tests).
+    """
+    _check_level(confidence_level)
+    f = _frame(rows, key, home, events, exposure)
+    sums = f.groupby("group", sort=True).agg(x=("x", "sum"), t=("t", "sum"), homes=("home", "nunique"))
+    sums = sums.sort_values(["t"], ascending=False, kind="mergesort")
+    names = [str(g) for g in sums.index]
+    n_homes = int(f["home"].nunique())
+    x_g = sums["x"].to_numpy()
+    t_g = sums["t"].to_numpy()
+    rate = x_g / t_g
+    if reference is None and names:
+        reference = names[0]
+    nan = np.full(len(names), np.nan)
+    table = pd.DataFrame(
+        {
+            "group": names,
+            "homes": sums["homes"].to_numpy(dtype=np.int64),
+            "false_alarms": x_g.astype(np.int64),
+            "home_months": t_g,
+            "rate": rate,
+            "ratio": nan.copy(),
+            "low": nan.copy(),
+            "high": nan.copy(),
+            "p_value": nan.copy(),
+            "differs": np.zeros(len(names), dtype=bool),
+            "reason": np.full(len(names), None, dtype=object),
+        }
+    )
+
+    def result(statistic: float, q: int, p: float, reason: str | None) -> GroupComparison:
+        return GroupComparison(
+            key=key,
+            reference=reference,
+            groups=len(names),
+            homes=n_homes,
+            table=table,
+            statistic=statistic,
+            df_num=q,
+            df_den=max(n_homes - 1, 0),
+            p_value=p,
+            differs=bool(p < 1 - confidence_level) if math.isfinite(p) else False,
+            confidence_level=confidence_level,
+            method=JOINT,
+            reason=reason,
+        )
+
+    if len(names) < 2:
+        return result(math.nan, 0, math.nan, TOO_FEW_GROUPS if names else NO_MONITORED_TIME)
+    if reference not in names:
+        raise ValueError(f"reference group {reference!r} has no monitored time")
+    ref = names.index(reference)
+    table.loc[ref, "reason"] = REFERENCE
+    if n_homes < max(min_homes, 2):
+        table.loc[table.index != ref, "reason"] = TOO_FEW_HOMES
+        return result(math.nan, 0, math.nan, TOO_FEW_HOMES)
+    # Scores per home and group: sum over the home's rows of x - r_g t (zero for absent pairs).
+    f = f.assign(u=f["x"].to_numpy() - f["t"].to_numpy() * f["group"].map(dict(zip(names, rate))).to_numpy())
+    u = f.pivot_table(index="home", columns="group", values="u", aggfunc="sum", fill_value=0.0)
+    u = u.reindex(columns=names, fill_value=0.0).to_numpy()
+    g = n_homes
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv_x = np.where(x_g > 0, 1.0 / x_g, np.nan)
+    # Log-rate covariance: bread^-1 meat bread^-1, bread = diag(x_g).
+    cov = g / (g - 1) * (u.T @ u) * np.outer(inv_x, inv_x)
+    df = g - 1
+    usable = [i for i in range(len(names)) if i != ref and x_g[i] > 0]
+    if x_g[ref] == 0:
+        table.loc[table.index != ref, "reason"] = NO_EVENTS_IN_GROUP
+        return result(math.nan, 0, math.nan, NO_EVENTS_IN_GROUP)
+    for i in range(len(names)):
+        if i == ref:
+            continue
+        if x_g[i] == 0:
+            table.loc[i, "ratio"] = 0.0
+            table.loc[i, "reason"] = NO_EVENTS_IN_GROUP
+            continue
+        d = math.log(rate[i]) - math.log(rate[ref])
+        var = cov[i, i] + cov[ref, ref] - 2 * cov[i, ref]
+        var = max(var, inv_x[i] + inv_x[ref])
+        low, high, p = _t_test(d, math.sqrt(var), df, confidence_level)
+        table.loc[i, ["ratio", "low", "high", "p_value"]] = [math.exp(d), low, high, p]
+        table.loc[i, "differs"] = p < 1 - confidence_level
+    if not usable:
+        return result(math.nan, 0, math.nan, NO_EVENTS_IN_GROUP)
+    q = len(usable)
+    if q > df:
+        return result(math.nan, q, math.nan, TOO_FEW_HOMES)
+    contrast = np.zeros((q, len(names)))
+    for row, i in enumerate(usable):
+        contrast[row, i], contrast[row, ref] = 1.0, -1.0
+    d_vec = contrast @ np.log(np.where(x_g > 0, rate, 1.0))
+    v = contrast @ np.nan_to_num(cov) @ contrast.T
+    # The same Poisson floor as the single ratios: never tighter than counting alone.
+    floor = contrast @ np.diag(np.nan_to_num(inv_x)) @ contrast.T
+    v = np.where(np.eye(q, dtype=bool), np.maximum(np.diag(v), np.diag(floor))[:, None] * np.eye(q), v)
+    wald = float(d_vec @ np.linalg.pinv(v) @ d_vec)
+    statistic = wald / q
+    p_joint = float(stats.f.sf(statistic, q, df))
+    return result(statistic, q, p_joint, None)
+
+
+def _within(
+    pairs: pd.DataFrame, confidence_level: float
+) -> tuple[float, float, float, float, int, str | None]:
+    """Conditional Poisson (home fixed effects) log ratio of a over b from per-home x_a, t_a, x_b, t_b.
+
+    Given a home's total n_h, x_ha is binomial with p_h = R t_ha / (R t_ha + t_hb). R solves
+    sum_h (x_ha - n_h p_h) = 0; its sandwich variance is meat / bread^2 with bread
+    sum n_h p_h (1 - p_h) and meat G / (G - 1) sum (x_ha - n_h p_h)^2, kept at or above 1 / bread.
+    """
+    xa, ta, xb, tb = (pairs[c].to_numpy(dtype=np.float64) for c in ("xa", "ta", "xb", "tb"))
+    n = xa + xb
+    use = n > 0
+    xa, ta, xb, tb, n = xa[use], ta[use], xb[use], tb[use], n[use]
+    g = len(n)
+    if g == 0 or xa.sum() == 0 or xb.sum() == 0:
+        return math.nan, math.nan, math.nan, math.nan, g, NO_EVENTS_IN_GROUP
+    log_ratio_t = np.log(ta / tb)
+
+    def score(beta: float) -> float:
+        p = special_expit(beta + log_ratio_t)
+        return float((xa - n * p).sum())
+
+    beta = float(optimize.brentq(score, -50.0, 50.0, xtol=1e-12))
+    p = special_expit(beta + log_ratio_t)
+    bread = float((n * p * (1 - p)).sum())
+    if g < 2:
+        return math.nan, math.nan, math.nan, math.nan, g, TOO_FEW_HOMES
+    meat = g / (g - 1) * float(((xa - n * p) ** 2).sum())
+    var = max(meat / bread**2, 1 / bread)
+    low, high, pv = _t_test(beta, math.sqrt(var), g - 1, confidence_level)
+    return math.exp(beta), low, high, pv, g, None
+
+
+def special_expit(z: np.ndarray) -> np.ndarray:
+    out: np.ndarray = 1.0 / (1.0 + np.exp(-z))
+    return out
+
+
+def compare_pair(
+    rows: pd.DataFrame,
+    version_a: str,
+    version_b: str,
+    *,
+    key: str = "firmware",
+    home: str = "home_code",
+    events: str = "false_alarms",
+    exposure: str = "home_months",
+    confidence_level: float = 0.95,
+    min_homes: int = MIN_HOMES,
+) -> PairComparison:
+    """Rate ratio of `version_a` over `version_b`, within homes when at least `min_homes` homes with
+    false alarms ran both, otherwise between homes (`compare_groups` restricted to the two).
+
+    Within homes each home is compared with itself (conditional Poisson with home fixed effects):
+    the differences between homes cancel, so only the change of version is measured; homes that ran
+    one version only carry no information there. References: see `compare_groups`; conditional
+    Poisson: e.g. Cameron AC, Trivedi PK (2013) Regression Analysis of Count Data, 2nd ed., ch. 9
+    (from memory). Agrees with statsmodels GLM(Poisson) with home dummies, clustered by home.
+    """
+    _check_level(confidence_level)
+    f = _frame(rows, key, home, events, exposure)
+    a, b = str(version_a), str(version_b)
+    fa, fb = f[f["group"] == a], f[f["group"] == b]
+    xa, ta, xb, tb = float(fa["x"].sum()), float(fa["t"].sum()), float(fb["x"].sum()), float(fb["t"].sum())
+    per_home = pd.DataFrame(
+        {
+            "xa": fa.groupby("home")["x"].sum(),
+            "ta": fa.groupby("home")["t"].sum(),
+            "xb": fb.groupby("home")["x"].sum(),
+            "tb": fb.groupby("home")["t"].sum(),
+        }
+    )
+    both = per_home.dropna()
+    paired = int(((both["xa"] + both["xb"]) > 0).sum())
+    homes = int(len(per_home))
+
+    def result(
+        est: float, low: float, high: float, p: float, used: int, within: bool, reason: str | None
+    ) -> PairComparison:
+        return PairComparison(
+            version_a=a,
+            version_b=b,
+            events_a=int(xa),
+            home_months_a=ta,
+            events_b=int(xb),
+            home_months_b=tb,
+            estimate=est,
+            low=low,
+            high=high,
+            p_value=p,
+            differs=bool(p < 1 - confidence_level) if math.isfinite(p) else False,
+            confidence_level=confidence_level,
+            homes=used,
+            paired_homes=paired,
+            within_homes=within,
+            method=WITHIN if within else BETWEEN,
+            reason=reason,
+        )
+
+    if ta <= 0 or tb <= 0:
+        return result(math.nan, math.nan, math.nan, math.nan, homes, False, NO_MONITORED_TIME)
+    if paired >= max(min_homes, 2):
+        est, low, high, p, used, reason = _within(both, confidence_level)
+        return result(est, low, high, p, used, True, reason)
+    two = f[f["group"].isin([a, b])]
+    cmp = compare_groups(
+        two.rename(columns={"group": "g", "home": "h"}),
+        key="g",
+        home="h",
+        events="x",
+        exposure="t",
+        reference=b,
+        confidence_level=confidence_level,
+        min_homes=min_homes,
+    )
+    row = cmp.table[cmp.table["group"] == a].iloc[0]
+    reason = None if row["reason"] is None else str(row["reason"])
+    est = float(row["ratio"]) if xb > 0 else math.nan
+    if reason is None and not math.isfinite(float(row["p_value"])):
+        reason = cmp.reason
+    return result(est, float(row["low"]), float(row["high"]), float(row["p_value"]), cmp.homes, False, reason)
