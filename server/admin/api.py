@@ -3,15 +3,17 @@
 from __future__ import annotations
 
 import datetime as dt
-from typing import Any
+from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Query, Request
+from fastapi import APIRouter, Depends, Path, Query, Request
 from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictStr
 from starlette.responses import JSONResponse, Response
 
 from server.admin import service, trail
 from server.auth.models import User
 from server.deps import DbSession, require
+
+UserId = Annotated[int, Path(ge=1, le=service.MAX_ID)]
 
 router = APIRouter(prefix="/api/v1", tags=["admin"])
 
@@ -113,14 +115,14 @@ def create_account(
 
 @router.get("/users/{user_id}", response_model=AccountOut)
 def get_account(
-    user_id: int, session: DbSession, user: User = Depends(require("users.manage"))
+    user_id: UserId, session: DbSession, user: User = Depends(require("users.manage"))
 ) -> AccountOut:
     return AccountOut.of(service.get_user(session, user_id))
 
 
 @router.patch("/users/{user_id}", response_model=AccountChangeOut)
 def change_account(
-    user_id: int, body: AccountPatch, session: DbSession, user: User = Depends(require("users.manage"))
+    user_id: UserId, body: AccountPatch, session: DbSession, user: User = Depends(require("users.manage"))
 ) -> AccountChangeOut:
     """Role and adjudicator permission first, then the active flag; one transaction, all or nothing."""
     changed, ended = False, 0
@@ -139,7 +141,7 @@ def change_account(
 
 @router.post("/users/{user_id}/password-reset", response_model=TemporaryPasswordOut)
 def reset_password(
-    user_id: int, session: DbSession, user: User = Depends(require("users.manage"))
+    user_id: UserId, session: DbSession, user: User = Depends(require("users.manage"))
 ) -> Response:
     account, password = service.reset_password(session, actor=user, user_id=user_id)
     session.commit()

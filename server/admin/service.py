@@ -44,8 +44,11 @@ def temporary_password() -> str:
     return "-".join(groups)
 
 
+MAX_ID = 2**31 - 1  # ids are 32-bit integers; PostgreSQL refuses a larger parameter outright
+
+
 def get_user(session: Session, user_id: int) -> User:
-    user = session.get(User, user_id)
+    user = session.get(User, user_id) if 1 <= user_id <= MAX_ID else None
     if user is None:
         raise UnknownUser(f"There is no staff account with id {user_id}.")
     return user

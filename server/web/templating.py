@@ -81,6 +81,7 @@ def make_templates() -> Jinja2Templates:
     env.filters["ago"] = _ago
     env.filters["num"] = _num
     env.filters["pct"] = _pct
+    env.globals["audit_roles"] = CAPABILITIES["audit.view"]  # admin/_trail.html links for these roles
     return templates
 
 
