@@ -6,6 +6,7 @@ Services flush and never commit. Ending a user's sessions goes through ``server.
 from __future__ import annotations
 
 import secrets
+import unicodedata
 from dataclasses import dataclass
 
 from sqlalchemy import select
@@ -36,6 +37,11 @@ class AccountChange:
     user: User
     changed: bool
     sessions_ended: int = 0
+
+
+def has_control_characters(text: str) -> bool:
+    """True when ``text`` holds a control character (NUL, tab, line breaks...): refused in names."""
+    return any(unicodedata.category(ch) == "Cc" for ch in text)
 
 
 def temporary_password() -> str:
@@ -78,15 +84,15 @@ def _check_role(role: str) -> str:
 def _ensure_another_admin(session: Session, leaving: User) -> None:
     """Refuse a change that would leave no active admin.
 
-    The other admins' rows are locked (PostgreSQL; SQLite writers already hold the database lock), so
-    two admins demoting each other at the same moment cannot both succeed.
+    Every active admin's row is locked, in id order, before counting (PostgreSQL; SQLite writers
+    already hold the database lock). Two admins demoting each other at once then queue on the same
+    rows, and the second re-reads the first's change (READ COMMITTED re-checks locked rows), so they
+    cannot both succeed.
     """
-    others = session.scalars(
-        select(User.id)
-        .where(User.role == ADMIN, User.active.is_(True), User.id != leaving.id)
-        .with_for_update()
+    admins = session.scalars(
+        select(User.id).where(User.role == ADMIN, User.active.is_(True)).order_by(User.id).with_for_update()
     ).all()
-    if not others:
+    if not [uid for uid in admins if uid != leaving.id]:
         raise LastAdmin(f"{leaving.email} is the last active admin; make another admin first.")
 
 
@@ -98,6 +104,14 @@ def create_account(
     session: Session, *, actor: User | str, email: str, name: str, role: str, is_adjudicator: bool = False
 ) -> tuple[User, str]:
     """A new account with a printed temporary password that must be changed at first sign-in."""
+    errors = {}
+    for fld, value, limit in (("email", email.strip(), 254), ("name", name.strip(), 200)):
+        if len(value) > limit:
+            errors[fld] = f"At most {limit} characters (this has {len(value)})."
+        elif has_control_characters(value):
+            errors[fld] = "Control characters (such as tabs or line breaks) are not allowed here."
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
     password = temporary_password()
     user = auth_service.create_user(
         session,

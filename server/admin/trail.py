@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session
 
 from server import audit
 from server.admin.csvcell import safe_cell
+from server.admin.service import has_control_characters
 from server.auth.models import AuditEvent, User
 from server.errors import ValidationFailed
 from server.households import service as households_service
@@ -83,6 +84,10 @@ def parse_filter(session: Session, params: Mapping[str, str]) -> TrailFilter:
     """Read and check the filter fields; every problem is reported against its field."""
     errors: dict[str, str] = {}
     text = {k: str(params.get(k) or "").strip()[:200] for k in FILTER_FIELDS}
+    for k, v in text.items():
+        if has_control_characters(v):
+            errors[k] = "Control characters are not allowed in a filter."
+            text[k] = ""
     since = _date(text["since"], "since", errors)
     until = _date(text["until"], "until", errors)
     if since and until and since > until:

@@ -5,6 +5,8 @@ every change in the audit trail, no 500 on any input)."""
 from __future__ import annotations
 
 import re
+import threading
+import time
 
 import pytest
 from fastapi.testclient import TestClient
@@ -395,3 +397,83 @@ def test_account_page_for_no_account_is_a_4xx(staff_client, path: str) -> None: 
     assert r.status_code in (404, 422)
     r = admin.post(path + "/deactivate", data={"csrf_token": csrf_of(admin, "/admin/staff")})
     assert r.status_code in (404, 422)
+
+
+def test_two_admins_demoting_each_other_at_once_leave_one_admin(fresh_settings) -> None:  # type: ignore[no-untyped-def]
+    """Committed transactions on two threads: the second waits for the first's row locks (PostgreSQL)
+    or the write lock (SQLite), then sees the first demotion and is refused."""
+    from server.db import make_engine, make_session_factory, writer_engine
+
+    engine = make_engine(fresh_settings.resolved_database_url())
+    factory = make_session_factory(writer_engine(engine))
+    try:
+        with factory() as s:
+            a, _ = factories.make_user(s, role="admin")
+            b, _ = factories.make_user(s, role="admin")
+            s.commit()
+            a_id, b_id = a.id, b.id
+        holding = threading.Event()
+        results: dict[str, str] = {}
+
+        def first() -> None:
+            with factory() as s:
+                service.change_access(s, actor="cli", user_id=b_id, role="lead")
+                holding.set()
+                time.sleep(0.6)  # the other demotion starts while this one holds its locks
+                s.commit()
+                results["first"] = "demoted"
+
+        def second() -> None:
+            holding.wait(10)
+            with factory() as s:
+                try:
+                    service.change_access(s, actor="cli", user_id=a_id, role="lead")
+                    s.commit()
+                    results["second"] = "demoted"
+                except service.LastAdmin:
+                    s.rollback()
+                    results["second"] = "last_admin"
+
+        threads = [threading.Thread(target=first), threading.Thread(target=second)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(30)
+        assert results == {"first": "demoted", "second": "last_admin"}
+        with factory() as s:
+            assert s.scalars(select(User.id).where(User.role == "admin", User.active.is_(True))).all() == [
+                a_id
+            ]
+    finally:
+        engine.dispose()
+
+
+@pytest.mark.parametrize(
+    "form, field",
+    [
+        ({"email": "nul\x00@example.test", "role": "lead"}, "email"),
+        ({"email": "tab@example.test", "role": "lead", "name": "Ann\x00Lee"}, "name"),
+        ({"email": "long@example.test", "role": "lead", "name": "n" * 201}, "name"),
+        ({"email": "a" * 250 + "@example.test", "role": "lead"}, "email"),
+    ],
+)
+def test_names_and_addresses_the_database_cannot_hold_are_field_errors(
+    staff_client, session: Session, form, field
+) -> None:  # type: ignore[no-untyped-def]
+    admin = staff_client("admin")
+    r = admin.post("/admin/staff", data={**form, "csrf_token": csrf_of(admin, "/admin/staff")})
+    assert r.status_code == 422 and f'id="err-{field}"' in r.text
+    r = admin.post("/api/v1/users", json=form, headers={"x-csrf-token": csrf_of(admin)})
+    assert r.status_code == 422 and r.json()["error"]["code"] in ("validation_failed", "invalid_request")
+    health_ok(admin)
+
+
+@pytest.mark.parametrize("param", ["actor", "action", "home", "object_type", "object_id"])
+def test_control_characters_in_trail_filters_are_field_errors(staff_client, param: str) -> None:  # type: ignore[no-untyped-def]
+    admin = staff_client("admin")
+    params = {param: "a\x00b", "object_type": "user"} if param == "object_id" else {param: "a\x00b"}
+    r = admin.get("/admin/audit", params=params)
+    assert r.status_code == 422 and f'id="err-{param}"' in r.text
+    r = admin.get("/api/v1/audit-events", params=params)
+    assert r.status_code == 422 and param in r.json()["error"]["fields"]
+    assert admin.get("/admin/audit.csv", params=params).status_code == 422
