@@ -27,6 +27,7 @@ class AccountOut(BaseModel):
     role: str
     is_adjudicator: bool
     active: bool
+    must_change_password: bool
     created_at: dt.datetime
     last_login_at: dt.datetime | None
 
@@ -39,6 +40,7 @@ class AccountOut(BaseModel):
             role=user.role,
             is_adjudicator=user.is_adjudicator,
             active=user.active,
+            must_change_password=user.must_change_password,
             created_at=user.created_at,
             last_login_at=user.last_login_at,
         )

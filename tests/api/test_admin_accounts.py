@@ -83,7 +83,9 @@ def test_admin_adds_an_account_with_a_temporary_password_that_signs_in(
     assert user.must_change_password is True
     created = events(session, "user.create", user.id)
     assert len(created) == 1 and created[0].actor_id == admin.user.id
-    assert "new.reviewer@example.test" in admin.get("/admin/staff").text
+    listing = admin.get("/admin/staff").text
+    row = re.search(r'<tr data-email="new.reviewer@example.test".*?</tr>', listing, re.S)
+    assert row and "temporary password" in row.group(0)
     with TestClient(app, raise_server_exceptions=False) as c:
         sign_in(c, "new.reviewer@example.test", password)
 
@@ -321,6 +323,7 @@ def test_account_api_round_trip(staff_client, session: Session) -> None:  # type
     body = r.json()
     uid = body["account"]["id"]
     assert body["account"]["role"] == "lead" and body["account"]["active"] is True
+    assert body["account"]["must_change_password"] is True
     auth_service.check_password_rule(body["temporary_password"])
     listed = {a["email"]: a for a in admin.get("/api/v1/users").json()}
     assert listed["api.lead@example.test"]["id"] == uid
