@@ -210,6 +210,7 @@ def test_access_change_takes_effect_and_ends_sessions(staff_client, session: Ses
     admin = staff_client("admin")
     rev = staff_client("reviewer")
     assert rev.get("/review").status_code == 200
+    assert rev.get("/api/v1/devices").status_code == 403  # reviewers work blind
     r = admin.post(
         f"/admin/staff/{rev.user.id}/access",
         data={"role": "lead", "is_adjudicator": "yes", "csrf_token": csrf_of(admin, "/admin/staff")},
@@ -224,7 +225,7 @@ def test_access_change_takes_effect_and_ends_sessions(staff_client, session: Ses
     assert ev.detail["after"] == {"role": "lead", "is_adjudicator": True}
     sign_in(rev, rev.user.email, factories.PASSWORD)
     assert rev.get("/review", headers={"accept": "application/json"}).status_code == 403  # leads don't review
-    assert rev.get("/summary").status_code == 200
+    assert rev.get("/api/v1/devices").status_code == 200
     # The same access again is no change: no session ended, no new audit row.
     r = admin.post(
         f"/admin/staff/{rev.user.id}/access",
@@ -232,7 +233,7 @@ def test_access_change_takes_effect_and_ends_sessions(staff_client, session: Ses
         follow_redirects=False,
     )
     assert r.headers["location"].endswith("done=access-same")
-    assert rev.get("/summary").status_code == 200
+    assert rev.get("/api/v1/devices").status_code == 200
     assert len(events(session, "user.access_change", rev.user.id)) == 1
 
 
