@@ -71,12 +71,13 @@ def _empty(title: str, message: str, caption: str) -> Chart:
 
 
 def pareto_chart(homes: pd.DataFrame, *, top: int = 25) -> Chart:
-    """Bars: false alarms of the homes with most; line: cumulative share of all false alarms."""
-    title = "False alarms by home"
-    shown = homes[homes["false_alarms"] > 0].head(top)
+    """Bars: false-alarm disturbances of the homes with most; line: cumulative share of them all."""
+    title = "False-alarm disturbances by home"
+    shown = homes[homes["disturbances"] > 0].head(top)
     caption = (
-        f"Bars: false alarms of the {len(shown)} home{'s' if len(shown) != 1 else ''} with the most, "
-        "highest first. Line: running share of all false alarms that these homes account for."
+        f"Bars: false-alarm disturbances of the {len(shown)} home{'s' if len(shown) != 1 else ''} with "
+        "the most, highest first. Line: running share of all false-alarm disturbances that these homes "
+        "account for."
     )
     if shown.empty:
         return _empty(title, "No false alarms in this period", "No home had a false alarm in this period.")
@@ -84,9 +85,9 @@ def pareto_chart(homes: pd.DataFrame, *, top: int = 25) -> Chart:
         fig = _figure()
         ax = fig.add_subplot()
         x = np.arange(len(shown))
-        ax.bar(x, shown["false_alarms"], color=BARS, width=0.75)
+        ax.bar(x, shown["disturbances"], color=BARS, width=0.75)
         ax.set_xticks(x, shown["home_code"], rotation=60, ha="right", fontsize=7)
-        ax.set_ylabel("false alarms")
+        ax.set_ylabel("disturbances")
         ax.spines[["top"]].set_visible(False)
         ax2 = ax.twinx()
         ax2.plot(x, shown["cumulative_share"], color=LINE, marker="o", markersize=3, linewidth=1.5)
@@ -159,9 +160,10 @@ def tradeoff_chart(table: pd.DataFrame, target: float) -> Chart:
 
 def trend_chart(trend: pd.DataFrame, target: float) -> Chart:
     """Weekly rate with its exact interval, the target line, and monitored home-months per week."""
-    title = "False alarms per home-month, week by week"
+    title = "False-alarm disturbances per home-month, week by week"
     caption = (
-        "Points: each ISO week's false alarms per home-month with its exact 95% interval (bars). "
+        "Points: each ISO week's false-alarm disturbances per home-month (a home's alerts on one sound "
+        "counted once) with the exact 95% interval (bars). "
         f"Dashed line: the target ({target:g}). Shaded columns: monitored home-months that week "
         "(right axis); weeks without monitored time have no point."
     )
@@ -193,7 +195,7 @@ def trend_chart(trend: pd.DataFrame, target: float) -> Chart:
         ax.axhline(target, color=TARGET, linestyle="--", linewidth=1)
         step = max(1, math.ceil(len(trend) / 14))
         ax.set_xticks(x[::step], trend["week"].iloc[::step], rotation=45, ha="right", fontsize=7)
-        ax.set_ylabel("false alarms per home-month")
+        ax.set_ylabel("disturbances per home-month")
         ax.set_ylim(bottom=0)
         for a in (ax, ax2):
             a.spines[["top"]].set_visible(False)

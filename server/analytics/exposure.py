@@ -15,7 +15,7 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 import pandas as pd
-from numpy.typing import NDArray
+from numpy.typing import ArrayLike, NDArray
 
 from server.analytics import rates
 from server.analytics.trend import as_utc
@@ -270,3 +270,115 @@ def monitored_time(
     out["seconds"] = out["seconds"].astype(np.float64)
     out["home_months"] = out["seconds"] / rates.HOME_MONTH_S
     return out.reset_index(drop=True)
+
+
+def overlapping_homes(windows: pd.DataFrame) -> NDArray[np.int64]:
+    """Homes with two windows that overlap in time: two devices of the home listened at once.
+
+    Only in these homes can summing the devices' listening count an hour twice; in every other
+    home (one device, or devices one after another) the home's monitored time is that sum.
+    """
+    if windows.empty:
+        return np.zeros(0, dtype=np.int64)
+    w = as_utc(windows.loc[:, ["home_id", "started_at", "ended_at"]], "started_at", "ended_at")
+    w = w.sort_values(["home_id", "started_at"], kind="mergesort").reset_index(drop=True)
+    home = w["home_id"].to_numpy(dtype=np.int64)
+    start = epoch_of(w["started_at"])
+    reach = pd.Series(epoch_of(w["ended_at"])).groupby(home).cummax().to_numpy()
+    same_home = np.r_[False, home[1:] == home[:-1]]
+    hit = same_home & (start < np.r_[-np.inf, reach[:-1]])
+    return np.unique(home[hit])
+
+
+def epoch_of(values: pd.Series) -> NDArray[np.float64]:
+    """UTC epoch seconds of aware timestamps (any stored resolution)."""
+    return np.asarray(pd.DatetimeIndex(values).as_unit("ns").asi8 / 1e9, dtype=np.float64)
+
+
+def merge_intervals(home_id: ArrayLike, start_s: ArrayLike, end_s: ArrayLike) -> pd.DataFrame:
+    """The union of each home's intervals [start_s, end_s) as disjoint, sorted intervals.
+
+    Returns home_id, start_s, end_s; empty intervals are dropped. Intervals that touch end to end
+    merge into one (the union is the same either way).
+    """
+    h = np.asarray(home_id, dtype=np.int64)
+    a = np.asarray(start_s, dtype=np.float64)
+    b = np.asarray(end_s, dtype=np.float64)
+    keep = b > a
+    h, a, b = h[keep], a[keep], b[keep]
+    order = np.lexsort((a, h))
+    h, a, b = h[order], a[order], b[order]
+    if not len(h):
+        return pd.DataFrame(
+            {"home_id": h, "start_s": a, "end_s": b}
+        )
+    # The furthest end reached so far within the home: a later interval starting after it opens
+    # a new stretch.
+    reach = pd.Series(b).groupby(h).cummax().to_numpy()
+    fresh = np.r_[True, (h[1:] != h[:-1]) | (a[1:] > reach[:-1])]
+    starts = np.flatnonzero(fresh)
+    ends = np.r_[starts[1:] - 1, len(h) - 1]
+    return pd.DataFrame({"home_id": h[starts], "start_s": a[starts], "end_s": reach[ends]})
+
+
+def union_over_buckets(
+    merged: pd.DataFrame,
+    bucket_start_s: Callable[[NDArray[np.int64]], NDArray[np.float64]],
+    buckets: tuple[int, int],
+) -> pd.DataFrame:
+    """Seconds per home and bucket of disjoint intervals (from `merge_intervals`).
+
+    `buckets` is the (first, last) bucket index that every interval lies in. An interval is
+    split at bucket starts by the rule of `spread_over_buckets`, so one device's home gets the
+    same seconds per bucket either way. Returns home_id, bucket, seconds.
+    """
+    first, last = buckets
+    edges = bucket_start_s(np.arange(first, last + 2, dtype=np.int64))
+    a = merged["start_s"].to_numpy(dtype=np.float64)
+    b = merged["end_s"].to_numpy(dtype=np.float64)
+    # The bucket holding a time t: the last bucket starting at or before t.
+    first_b = first - 1 + np.searchsorted(edges, a, side="right")
+    last_b = first - 1 + np.searchsorted(edges, b, side="right")
+    pieces = pd.DataFrame(
+        {
+            "window_id": merged["home_id"].to_numpy(dtype=np.int64),
+            "first_bucket": first_b.astype(np.int64),
+            "last_bucket": last_b.astype(np.int64),
+            "pieces": np.ones(len(a), dtype=np.int64),
+            "sum_start_s": a,
+            "sum_end_s": b,
+        }
+    )
+    out = spread_over_buckets(pieces, bucket_start_s)
+    return out.rename(columns={"window_id": "home_id"})
+
+
+def home_monitored(
+    by_bucket: pd.DataFrame,
+    windows: pd.DataFrame,
+    union: pd.DataFrame,
+    overlapping: ArrayLike,
+) -> pd.DataFrame:
+    """Monitored seconds per home and bucket: the time in which at least one of its devices listened.
+
+    Parameters
+    ----------
+    by_bucket: window_id, bucket, seconds (`spread_over_buckets`): each window's listening.
+    windows: window_id, home_id.
+    union: home_id, bucket, seconds (`union_over_buckets`) for the `overlapping` homes.
+    overlapping: homes whose windows overlap in time (`overlapping_homes`); every other home's
+        time is the sum of its windows' (their listening never overlaps).
+
+    Returns
+    -------
+    home_id, bucket, seconds, sorted by home and bucket.
+    """
+    over = np.asarray(overlapping, dtype=np.int64)
+    home_of = windows.set_index("window_id")["home_id"]
+    summed = by_bucket.assign(home_id=by_bucket["window_id"].map(home_of).to_numpy())
+    summed = summed[~summed["home_id"].isin(over)]
+    summed = summed.groupby(["home_id", "bucket"], as_index=False, sort=False)["seconds"].sum()
+    parts = [summed[["home_id", "bucket", "seconds"]], union.loc[union["home_id"].isin(over), ["home_id", "bucket", "seconds"]]]
+    out = pd.concat(parts, ignore_index=True)
+    out = out.astype({"home_id": np.int64, "bucket": np.int64, "seconds": np.float64})
+    return out.sort_values(["home_id", "bucket"], kind="mergesort").reset_index(drop=True)

@@ -18,12 +18,18 @@ resemblance grade is ""):
 - windows: `exposure.monitored_windows` cut by `exposure.split_by_firmware` (window_id,
   installation_id, device_id, home_id, room, started_at, ended_at, firmware: what the device's
   heartbeats reported then) plus the device's hardware_model.
-- monitored: window_id, bucket (local ISO week index, see `trend`), seconds (float).
+- monitored: window_id, bucket (local ISO week index, see `trend`), seconds (float): each
+  window's (device's) listening; summed by device property these are device-months.
+- home_monitored: home_id, bucket, seconds: the time in which at least one of the home's devices
+  listened (the union of their listening; only homes whose windows overlap read segments).
 - counted: window_id, period ("week" | "before"), sound_class, outcome, cause, resemblance, alerts:
   alerts detected inside a monitored window while their device was listening. outcome is
   "false_alarm" | "confirmed" | "unsure" | "unusable" (final verdicts) or "pending".
+- counted_alerts: the counted alerts one row each (for disturbances): alert_id, home_id,
+  sound_class, t (epoch s, clock skew corrected), outcome, period, week_index.
 - by_week: week_index, sound_class, outcome, alerts (counted alerts only).
-- fa_scores: period, sound_class, score_milli (floor(1000 x score)), alerts; counted false alarms.
+- fa_scores: period, sound_class, score_milli (floor(1000 x score)), home_id, alerts; counted
+  false alarms.
 - score_floors: sound_class, firmware (as sent with the alert), min_score.
 - not_counted: period, sound_class, reason ("unassigned" | "not_monitored" | "offline"), alerts.
 - staged_events: staged_event_id, home_id, sound_class, started_at, ended_at, source.
@@ -44,7 +50,7 @@ from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypeVar
 
 import numpy as np
 import pandas as pd
@@ -80,7 +86,9 @@ class PilotData:
     installations: pd.DataFrame
     windows: pd.DataFrame
     monitored: pd.DataFrame
+    home_monitored: pd.DataFrame
     counted: pd.DataFrame
+    counted_alerts: pd.DataFrame
     by_week: pd.DataFrame
     fa_scores: pd.DataFrame
     score_floors: pd.DataFrame
@@ -224,13 +232,14 @@ def _window_table(session: Session, dialect: str, windows: pd.DataFrame) -> Iter
             log.warning("could not drop temporary table %s", name, exc_info=True)
 
 
+_T = TypeVar("_T")
 _SNAPSHOT_ID = re.compile(r"[0-9A-Fa-f]+(-[0-9A-Fa-f]+)+")
 
 
 @contextmanager
 def _alongside(
-    session: Session, dialect: str, work: Callable[[Session], pd.DataFrame]
-) -> Iterator[Callable[[], pd.DataFrame]]:
+    session: Session, dialect: str, work: Callable[[Session], _T]
+) -> Iterator[Callable[[], _T]]:
     """Start `work` and yield a function that returns its result.
 
     On PostgreSQL, `work` runs in a thread on a second connection that imports this session's
@@ -251,7 +260,7 @@ def _alongside(
         return
     assert isinstance(bind, sa.Engine)
 
-    def run() -> pd.DataFrame:
+    def run() -> _T:
         with bind.connect() as side_conn:
             side_conn = side_conn.execution_options(isolation_level="REPEATABLE READ")
             with side_conn.begin(), Session(bind=side_conn) as side:
@@ -363,9 +372,20 @@ def load_pilot(
     steps = trend.utc_offset_steps(trial.timezone, start, end)
     _roomier_sorts(session, dialect)
 
-    def monitored_in(s: Session) -> pd.DataFrame:
+    overlapping = exposure.overlapping_homes(windows)
+    shared = windows[windows["home_id"].isin(overlapping)]
+
+    def monitored_in(s: Session) -> tuple[pd.DataFrame, pd.DataFrame]:
         with _window_table(s, dialect, windows) as w:
-            return _monitored(s, dialect, w, steps, trial.timezone, start, end)
+            by_window = _monitored(s, dialect, w, steps, trial.timezone, start, end)
+        if shared.empty:
+            return by_window, _NO_PIECES.copy()
+        with _window_table(s, dialect, shared) as w:
+            pieces = _fetch(s, _pieces(dialect, w, start), _PIECE_TIMES)
+        if dialect == "postgresql":  # its times count from `start`
+            pieces["start_s"] += start.timestamp()
+            pieces["end_s"] += start.timestamp()
+        return by_window, pieces
 
     book = _codebook(trial, [*devices["firmware"].tolist(), *changes["firmware"].tolist()])
     # The monitored seconds are mostly the database's work and the alert read mostly this
@@ -377,12 +397,14 @@ def load_pilot(
             steps,
             week,
         )
-        parts = _alert_parts(facts)
+        parts = _alert_parts(facts, windows)
+        counted_alerts = counted_alert_rows(facts, windows)
         staged_alerts = _staged_alerts(
             session, facts, staged_events, installations, margin_s=staged_tolerance_s + 1.0
         )
         del facts
-        monitored = monitored_later()
+        monitored, shared_pieces = monitored_later()
+    home_monitored = _home_monitored(monitored, windows, shared_pieces, overlapping, trial.timezone, start, end)
     return PilotData(
         trial=trial,
         week=week,
@@ -393,7 +415,9 @@ def load_pilot(
         installations=installations,
         windows=windows,
         monitored=monitored,
+        home_monitored=home_monitored,
         counted=parts["counted"],
+        counted_alerts=counted_alerts,
         by_week=parts["by_week"],
         fa_scores=parts["fa_scores"],
         score_floors=parts["score_floors"],
@@ -471,6 +495,61 @@ def _monitored(
         agg["sum_start_s"] += agg["pieces"] * start.timestamp()
         agg["sum_end_s"] += agg["pieces"] * start.timestamp()
     return exposure.spread_over_buckets(agg, lambda k: trend.week_start_s(k, tz))
+
+
+_PIECE_TIMES = ["window_id", "start_s", "end_s"]
+_NO_PIECES = pd.DataFrame(
+    {"window_id": np.zeros(0, np.int64), "start_s": np.zeros(0), "end_s": np.zeros(0)}
+)
+
+
+def _pieces(dialect: str, w: sa.FromClause, start: dt.datetime) -> sa.Select[Any]:
+    """Listening segments clipped to the windows `w`, one row each: window_id, start_s, end_s
+    (UTC epoch seconds). Read only for homes whose devices listened at the same time."""
+    s = ListeningSegment.__table__.c
+    if dialect == "postgresql":
+        a = sql_greatest(dialect, s.started_at, w.c.ws_at)
+        b = sql_least(dialect, s.ended_at, w.c.we_at)
+        origin = sa.literal(start, type_=sa.DateTime(timezone=True))
+        # Seconds after `start` (an interval converts exactly); `_home_monitored` adds it back.
+        return sa.select(
+            w.c.window_id,
+            sa.func.date_part("epoch", a - origin, type_=sa.Float).label("start_s"),
+            sa.func.date_part("epoch", b - origin, type_=sa.Float).label("end_s"),
+        ).select_from(
+            ListeningSegment.__table__.join(
+                w, (s.device_id == w.c.device_id) & (s.started_at < w.c.we_at) & (s.ended_at > w.c.ws_at)
+            )
+        )
+    seg_a, seg_b = _epoch_s(dialect, s.started_at), _epoch_s(dialect, s.ended_at)
+    return sa.select(
+        w.c.window_id,
+        sql_greatest(dialect, seg_a, w.c.ws).label("start_s"),
+        sql_least(dialect, seg_b, w.c.we).label("end_s"),
+    ).select_from(
+        ListeningSegment.__table__.join(w, (s.device_id == w.c.device_id) & (seg_a < w.c.we) & (seg_b > w.c.ws))
+    )
+
+
+def _home_monitored(
+    monitored: pd.DataFrame,
+    windows: pd.DataFrame,
+    pieces: pd.DataFrame,
+    overlapping: NDArray[np.int64],
+    tz: str,
+    start: dt.datetime,
+    end: dt.datetime,
+) -> pd.DataFrame:
+    """Monitored seconds per home and week: the union of its devices' listening (see `exposure`)."""
+    home_of = windows.set_index("window_id")["home_id"]
+    merged = exposure.merge_intervals(
+        pieces["window_id"].map(home_of).to_numpy(dtype=np.int64),
+        pieces["start_s"].to_numpy(dtype=np.float64),
+        pieces["end_s"].to_numpy(dtype=np.float64),
+    )
+    first, last = trend.week_index(pd.Series(pd.to_datetime([start, end], utc=True)), tz).tolist()
+    union = exposure.union_over_buckets(merged, lambda k: trend.week_start_s(k, tz), (first, last))
+    return exposure.home_monitored(monitored, windows, union, overlapping)
 
 
 _PIECE_COLUMNS = ["window_id", "first_bucket", "last_bucket", "pieces", "sum_start_s", "sum_end_s"]
@@ -692,6 +771,8 @@ _KINDS: dict[str, str] = {
     "score": "float",
     "sum_start_s": "float",
     "sum_end_s": "float",
+    "start_s": "float",
+    "end_s": "float",
 }
 # PostgreSQL's binary array format: a header of 5 int32 for one dimension, then per element its
 # length (int32) and its value, all big-endian.
@@ -827,7 +908,7 @@ def place_alerts(
     return out
 
 
-def _alert_parts(facts: pd.DataFrame) -> dict[str, pd.DataFrame]:
+def _alert_parts(facts: pd.DataFrame, windows: pd.DataFrame) -> dict[str, pd.DataFrame]:
     """The alert aggregates, from the placed alert read (`place_alerts`).
 
     pandas groups the one read three ways: on SQLite a GROUP BY sorts every row, so three of them
@@ -848,16 +929,35 @@ def _alert_parts(facts: pd.DataFrame) -> dict[str, pd.DataFrame]:
         return _plain_text(out)
 
     fa = counted[counted["outcome"] == "false_alarm"]
+    fa = fa.assign(home_id=fa["window_id"].map(windows.set_index("window_id")["home_id"]).to_numpy(dtype=np.int64))
     floors = facts.groupby(["sound_class", "firmware"], as_index=False, observed=True)["score"].min()
     return {
         "counted": tally(counted, ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]),
         "by_week": tally(counted, ["week_index", "sound_class", "outcome"]),
-        "fa_scores": tally(fa, ["period", "sound_class", "score_milli"]),
+        "fa_scores": tally(fa, ["period", "sound_class", "score_milli", "home_id"]),
         "score_floors": _plain_text(floors.rename(columns={"score": "min_score"})).astype(
             {"min_score": np.float64}
         ),
         "not_counted": tally(outside.assign(reason=reason), ["period", "sound_class", "reason"]),
     }
+
+
+def counted_alert_rows(facts: pd.DataFrame, windows: pd.DataFrame) -> pd.DataFrame:
+    """The counted alerts of the placed read (`place_alerts`), with the home of their window."""
+    c = facts[facts["counted"]]
+    home_of = windows.set_index("window_id")["home_id"]
+    out = pd.DataFrame(
+        {
+            "alert_id": c["alert_id"].to_numpy(dtype=np.int64),
+            "home_id": c["window_id"].map(home_of).to_numpy(dtype=np.int64),
+            "sound_class": c["sound_class"].to_numpy(dtype=object),
+            "t": c["t"].to_numpy(dtype=np.float64),
+            "outcome": c["outcome"].to_numpy(dtype=object),
+            "period": c["period"].to_numpy(dtype=object),
+            "week_index": c["week_index"].to_numpy(dtype=np.int64),
+        }
+    )
+    return out
 
 
 def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:

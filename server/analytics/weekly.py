@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy.orm import Session
 
-from server.analytics import breakdowns, load, rates, shares, staged, trend, whatif
+from server.analytics import breakdowns, compare, disturbances, homerate, load, rates, shares, staged, trend, whatif
 from server.errors import ValidationFailed
 from server.trials import service as trials_service
 from server.trials.models import Trial
@@ -44,12 +44,37 @@ DEFINITIONS = (
     "Monitored time: the listening of devices while installed in a home that is installed, active, or "
     "paused but still listening, inside the trial and the reporting window. Offline and muted time is "
     "not monitored time. A home-month is 30.4375 days (365.25 / 12) of monitored time.",
+    "A home is monitored while at least one of its devices listens: a home with two devices listening "
+    "through the same month gives one home-month, not two (the union of its devices' listening time). "
+    "Rates per home-month, their intervals, the week-by-week trend and readiness use this time.",
+    "Device-months: the tables by firmware, hardware model and room sum each device's own listening, "
+    "because those properties belong to a device; there two devices of one home listening for a month "
+    "are two device-months, and each false-alarm alert counts once.",
+    "Disturbance: a household is disturbed once when its devices alert on one sound. Alerts of one sound "
+    "class from one home belong to one disturbance when they come at most {window:g} s after its first "
+    "alert (the trial's disturbance window); a later alert starts a new disturbance, so disturbances do "
+    "not chain and none lasts longer than the window. A disturbance is confirmed if any of its alerts "
+    "was confirmed, else a false alarm if any was one, else awaiting review if any waits, else unsure "
+    "if any was judged unsure, else unusable. It belongs to the week of its first alert. False alarms "
+    "are shown both ways; the target, the intervals, readiness and the per-home figures are judged on "
+    "false-alarm disturbances.",
     "False alarm: an alert whose final review verdict is false alarm. Alerts awaiting review, and those "
     "judged unsure or unusable, are counted and shown apart; they are never folded into either side.",
     "Staged test event: a test sound a coordinator played on purpose and logged (home, sound class, start, "
     "end, source). An alert of the same class from a device installed in that home within the event's "
     "window, widened by {tol:g} s each side, detects it; it is a detection, not a false alarm. Latency "
     "runs from the logged start of the event.",
+    "Readiness: one rule for every verdict, printed beside it. Alerts awaiting review or judged unsure "
+    "count as false alarms for the upper bound the rule uses, so a review backlog holds readiness back; "
+    "the page shows the rate with none of them and with all of them counted as false alarms. Unusable "
+    "clips enter no rate and are counted and shown beside every verdict.",
+    "Home-level interval: the rate over homes, allowing homes to differ from one another. With fewer than "
+    "10 homes monitored the spread between homes cannot be judged, and the page says so rather than "
+    "print an interval.",
+    "Homes clearly above the target, and homes that stand out from chance: each home is tested, and the "
+    "tests are corrected for testing every home at once (the correction is named beside the figure).",
+    "Threshold what-if: false-alarm alerts at each raised threshold, with the staged detection it keeps; a "
+    "threshold that loses staged detections, or detects none, is never marked acceptable.",
     "Only alerts detected inside monitored time count towards rates; those outside it (unassigned device, "
     "home not monitored, device offline) are listed under Operations.",
 )
@@ -61,8 +86,9 @@ LIMITS = (
     "Staged test events are planned tests, not real emergencies: detection on them is a guide to, not a "
     "measure of, detection in a real fire or a real cry.",
     "Verdicts are human judgements; reviewer agreement is shown under Operations.",
-    "Exact (Garwood) intervals assume false alarms arrive independently at one rate; the home bootstrap "
-    "interval drops that assumption by resampling whole homes.",
+    "Exact (Garwood) intervals assume false alarms arrive independently at one rate; the home-level "
+    "interval drops that assumption by letting homes differ, and needs at least 10 homes to judge how much "
+    "they do.",
 )
 
 
@@ -84,18 +110,30 @@ class AlertTally:
 
 
 @dataclass(frozen=True)
-class Breakdown:
-    dimension: str
-    title: str
-    table: pd.DataFrame
-    test: breakdowns.Heterogeneity
+class DisturbanceTally:
+    """Disturbances of one class in one scope by their outcome (see `disturbances.PRECEDENCE`).
+
+    `alerts` is how many counted alerts they hold; a disturbance belongs to the scope of its
+    first alert.
+    """
+
+    false_alarm: int
+    confirmed: int
+    unsure: int
+    unusable: int
+    pending: int
+    alerts: int
+    window_s: float
 
 
 @dataclass(frozen=True)
-class FirmwareComparison:
-    version_a: str
-    version_b: str
-    ratio: rates.RatioEstimate
+class Breakdown:
+    """False-alarm alerts per device-month by one device property, and the clustered comparison."""
+
+    dimension: str
+    title: str
+    table: pd.DataFrame
+    comparison: compare.GroupComparison
 
 
 @dataclass(frozen=True)
@@ -106,24 +144,27 @@ class ClassFigures:
     scope: str
     label: str
     alerts: AlertTally
+    disturbances: DisturbanceTally
     homes_monitored: int
     home_months: float
+    device_months: float
     rate: rates.RateEstimate
-    upper_one_sided: float
-    bootstrap: rates.BootstrapRate
+    disturbance_rate: rates.RateEstimate
+    home_rate: homerate.HomeRate
     overdispersion: rates.Overdispersion
     homes_note: str | None
     homes: pd.DataFrame
     concentration: shares.Concentration
+    exposure_concentration: shares.ExposureConcentration
     causes: pd.DataFrame
     grades: pd.DataFrame
-    above_target: shares.HomesAboveTarget
+    above_target: shares.HomesAboveTargetAdjusted
     breakdowns: tuple[Breakdown, ...]
-    firmware_comparison: FirmwareComparison | None
+    firmware_comparison: compare.PairComparison | None
     detection: staged.Detection
     whatif: pd.DataFrame
     whatif_floor: float
-    readiness: rates.Readiness
+    readiness: homerate.ReadinessVerdict
 
 
 @dataclass(frozen=True)
@@ -185,7 +226,6 @@ class WeeklySummary:
     report_end: dt.datetime
     generated_at: dt.datetime
     staged_tolerance_s: float
-    bootstrap_resamples: int
     seed: int
     classes: tuple[ClassSummary, ...]
     operations: Operations
@@ -231,7 +271,6 @@ def build_summary(
     week: str | None = None,
     confidence_level: float = 0.95,
     staged_tolerance_s: float = staged.DEFAULT_TOLERANCE_S,
-    resamples: int = 2000,
     seed: int = DEFAULT_SEED,
     firmware_pair: tuple[str, str] | None = None,
     skew_limit_s: float = 300.0,
@@ -240,7 +279,7 @@ def build_summary(
     trial = trials_service.get_trial(session, trial_code)
     chosen = choose_week(trial, week, now)
     data = load.load_pilot(session, trial, chosen, now=now, staged_tolerance_s=staged_tolerance_s)
-    ctx = _Context(data, confidence_level, staged_tolerance_s, resamples, seed, firmware_pair)
+    ctx = _Context(data, confidence_level, staged_tolerance_s, seed, firmware_pair)
     classes = tuple(
         ClassSummary(
             sound_class=c,
@@ -263,11 +302,12 @@ def build_summary(
         report_end=data.end,
         generated_at=now,
         staged_tolerance_s=staged_tolerance_s,
-        bootstrap_resamples=resamples,
         seed=seed,
         classes=classes,
         operations=ops,
-        definitions=tuple(d.format(tol=staged_tolerance_s) for d in DEFINITIONS),
+        definitions=tuple(
+            d.format(tol=staged_tolerance_s, window=float(trial.disturbance_window_s)) for d in DEFINITIONS
+        ),
         cautions=CAUTIONS,
         limits=LIMITS,
         notes=tuple(notes),
@@ -358,13 +398,11 @@ class _Context:
         data: load.PilotData,
         confidence_level: float,
         tolerance_s: float,
-        resamples: int,
         seed: int,
         firmware_pair: tuple[str, str] | None,
     ) -> None:
         self.data = data
         self.level = confidence_level
-        self.resamples = resamples
         self.seed = seed
         self.target = float(data.trial.fa_target_per_home_month)
         codes = data.homes.set_index("home_id")["home_code"]
@@ -380,9 +418,10 @@ class _Context:
         m = matched[matched["counted"]]
         self._count_rows(data.counted, m)
         self.by_week = _subtract(data.by_week, m, ["week_index", "sound_class", "outcome"])
-        self.fa_scores = _subtract(
-            data.fa_scores, m[m["outcome"] == "false_alarm"], ["period", "sound_class", "score_milli"]
-        )
+        home_of_window = data.windows.set_index("window_id")["home_id"]
+        m_fa = m[m["outcome"] == "false_alarm"]
+        m_fa = m_fa.assign(home_id=m_fa["window_id"].astype(np.int64).map(home_of_window).to_numpy(dtype=np.int64))
+        self.fa_scores = _subtract(data.fa_scores, m_fa, ["period", "sound_class", "score_milli", "home_id"])
         week_index = data.week.index
         mon = data.monitored
         self.seconds = {
@@ -391,12 +430,35 @@ class _Context:
         }
         self.firmware_pair = firmware_pair or self._busiest_firmware()
 
+        # A home's monitored time is the union of its devices' listening (`load.home_monitored`);
+        # a device property's is the sum of its devices' listening: device-months.
+        hm = data.home_monitored
+        union_s = {
+            "week": hm[hm["bucket"] == week_index].groupby("home_id")["seconds"].sum(),
+            "to_date": hm.groupby("home_id")["seconds"].sum(),
+        }
         self._homes: dict[str, _Groups] = {}
         self._dims: dict[tuple[str, str], _Groups] = {}
+        self._device_months: dict[str, float] = {}
+        self._window_rows: dict[str, pd.DataFrame] = {}
         for scope in SCOPES:
             seconds = self.windows["window_id"].map(self.seconds[scope]).fillna(0.0)
             home_months = seconds / rates.HOME_MONTH_S
-            self._homes[scope] = _Groups.of(home_months, self.windows["home_code"], dropna=True)
+            by_device = _Groups.of(home_months, self.windows["home_code"], dropna=True)
+            union = pd.Series(union_s[scope].to_numpy(dtype=np.float64), index=union_s[scope].index.map(codes))
+            self._homes[scope] = _Groups(
+                by_device.keys,
+                union.reindex(by_device.keys).fillna(0.0).to_numpy(dtype=np.float64) / rates.HOME_MONTH_S,
+                by_device.of_window,
+            )
+            self._device_months[scope] = float(by_device.home_months.sum())
+            self._window_rows[scope] = pd.DataFrame(
+                {
+                    "home_code": self.windows["home_code"].to_numpy(dtype=object),
+                    **{dim: self.windows[dim].fillna(NOT_RECORDED).astype(str).to_numpy(dtype=object) for dim, _ in DIMENSIONS},
+                    "home_months": home_months.to_numpy(dtype=np.float64),
+                }
+            )
             for dim, _ in DIMENSIONS:
                 self._dims[scope, dim] = _Groups.of(home_months, self.windows[dim], dropna=False)
         events = self.match.events
@@ -409,6 +471,7 @@ class _Context:
         self._score_alerts = fs["alerts"].to_numpy()
         self._score_week = (fs["period"] == "week").to_numpy(dtype=bool)
         self._score_rows = dict(fs.groupby("sound_class", sort=False).indices)
+        self._score_home_code = fs["home_id"].map(codes).to_numpy(dtype=object)
         floors = data.score_floors
         self._floors = {
             k: whatif.score_floor(floors["min_score"].to_numpy()[rows])
@@ -419,6 +482,11 @@ class _Context:
             "week": week_matched["sound_class"].value_counts().to_dict(),
             "to_date": matched["sound_class"].value_counts().to_dict(),
         }
+        self.window_s = float(data.trial.disturbance_window_s)
+        kept = data.counted_alerts[~data.counted_alerts["alert_id"].isin(m["alert_id"])]
+        dist = disturbances.summarise(kept, window_s=self.window_s)
+        self.disturbances = dist.assign(home_code=dist["home_id"].map(codes))
+        self._d_rows = dict(self.disturbances.groupby("sound_class", sort=False).indices)
         self._outside = {
             scope: self._scoped(data.not_counted, scope).groupby("sound_class")["alerts"].sum().to_dict()
             for scope in SCOPES
@@ -505,36 +573,55 @@ class _Context:
         counts = np.concatenate([sums[present].astype(np.int64), np.zeros(len(zeros), dtype=np.int64)])
         return pd.DataFrame({column: names + zeros, "false_alarms": counts})
 
+    def _disturbances(self, sound_class: str, scope: str) -> tuple[np.ndarray, np.ndarray, DisturbanceTally]:
+        """Per home (in `_homes` order): false-alarm and open disturbances; and their tally."""
+        d = self.disturbances.iloc[self._d_rows.get(sound_class, np.zeros(0, dtype=np.intp))]
+        if scope == "week":
+            d = d[d["period"] == "week"]
+        keys = self._homes[scope].keys
+        at = keys.get_indexer(d["home_code"])
+        outcome = d["outcome"].to_numpy(dtype=object)
+        fa = np.bincount(at[(outcome == "false_alarm") & (at >= 0)], minlength=len(keys)).astype(np.int64)
+        is_open = np.isin(outcome, disturbances.OPEN) & (at >= 0)
+        opened = np.bincount(at[is_open], minlength=len(keys)).astype(np.int64)
+        counts = pd.Series(outcome).value_counts()
+        tally = DisturbanceTally(
+            **{o: int(counts.get(o, 0)) for o in OUTCOMES},
+            alerts=int(d["alerts"].sum()),
+            window_s=self.window_s,
+        )
+        return fa, opened, tally
+
     def figures(self, class_index: int, sound_class: str, scope: str) -> ClassFigures:
         d, level, target = self.data, self.level, self.target
         s_index = SCOPES.index(scope)
         tally = self._tally(sound_class, scope)
         per_home = self._homes[scope]
         fa_home = per_home.total(tally.false_alarms)
-        keep = (per_home.home_months > 0) | (fa_home > 0)
+        dist_home, open_home, dist_tally = self._disturbances(sound_class, scope)
+        keep = (per_home.home_months > 0) | (fa_home > 0) | (dist_home > 0) | (open_home > 0)
         home_fa, home_hm = fa_home[keep], per_home.home_months[keep]
-        homes = pd.DataFrame(
-            {"home_code": per_home.keys[keep], "false_alarms": home_fa, "home_months": home_hm}
-        )
+        home_dist, home_open = dist_home[keep], open_home[keep]
         total_fa = int(home_fa.sum())
+        total_dist = int(home_dist.sum())
         total_hm = float(home_hm.sum())  # numpy's sum, which is what pandas' Series.sum does here
         rate = rates.poisson_rate(total_fa, total_hm, confidence_level=level)
-        boot = rates.home_bootstrap(
-            home_fa,
-            home_hm,
-            rng=self._rng(class_index, s_index),
-            resamples=self.resamples,
-            confidence_level=level,
-        )
-        disp = rates.overdispersion(home_fa, home_hm)
-        pareto = shares.home_pareto(homes, confidence_level=level)
+        dist_rate = rates.poisson_rate(total_dist, total_hm, confidence_level=level)
+        # Everything per home is on disturbances: what a household lives with.
+        home_level = homerate.home_rate(home_dist, home_hm, confidence_level=level)
+        disp = rates.overdispersion(home_dist, home_hm)
+        by_home = pd.DataFrame({"home_code": per_home.keys[keep], "false_alarms": home_dist, "home_months": home_hm})
+        ranked = shares.home_pareto(by_home, confidence_level=level)
+        pareto = _homes_table(ranked, per_home.keys[keep], home_fa, home_open)
 
         causes = shares.category_shares(tally.causes, total_hm, category="cause", confidence_level=level)
         causes.insert(1, "label", [self.causes.get(c, c.replace("_", " ")) for c in causes["cause"]])
         grades = shares.category_shares(tally.grades, total_hm, category="grade", confidence_level=level)
 
+        # Per device-window rows for the comparisons, clustered by home (device-months).
+        window_rows = self._window_rows[scope].assign(false_alarms=tally.false_alarms)
         parts = []
-        for dim_index, (dim, title) in enumerate(DIMENSIONS):
+        for dim, title in DIMENSIONS:
             groups = self._dims[scope, dim]
             # Only groups with monitored time are shown (taking them out first leaves the order alone).
             shown = groups.home_months > 0
@@ -545,17 +632,15 @@ class _Context:
                 groups.home_months[shown],
                 confidence_level=level,
             )
-            test = breakdowns.heterogeneity(
-                table["false_alarms"].to_numpy(),
-                table["home_months"].to_numpy(),
-                rng=self._rng(class_index, s_index, 10 + dim_index),
-            )
-            parts.append(Breakdown(dimension=dim, title=title, table=table, test=test))
+            # A device property's monitored time sums its devices' listening: device-months, named so.
+            table = table.rename(columns={"home_months": "device_months"})
+            found = compare.compare_groups(window_rows, key=dim, confidence_level=level)
+            found = dataclasses.replace(found, table=found.table.rename(columns={"home_months": "device_months"}))
+            parts.append(Breakdown(dimension=dim, title=title, table=table, comparison=found))
         comparison = None
         if self.firmware_pair is not None:
-            fw = parts[0].table
             a, b = self.firmware_pair
-            comparison = FirmwareComparison(a, b, breakdowns.firmware_ratio(fw, a, b, confidence_level=level))
+            comparison = compare.compare_pair(window_rows, a, b, key="firmware", confidence_level=level)
 
         events = self._events.get(sound_class, self.match.events.iloc[:0])
         if scope == "week":
@@ -563,6 +648,8 @@ class _Context:
         detection = staged.detection(events, confidence_level=level)
         detection = _with_codes(detection, self.codes)
         table, floor = self._whatif(sound_class, scope, total_hm, events)
+        if len(table):
+            table = table.assign(state=_never_green_blind(table))
 
         alerts = AlertTally(
             **{o: int(tally.by_outcome.get(o, 0)) for o in OUTCOMES},
@@ -574,25 +661,30 @@ class _Context:
             scope=scope,
             label=d.week.label if scope == "week" else "trial to date",
             alerts=alerts,
+            disturbances=dist_tally,
             homes_monitored=int((home_hm > 0).sum()),
             home_months=total_hm,
+            device_months=self._device_months[scope],
             rate=rate,
-            upper_one_sided=rates.upper_bound_one_sided(total_fa, total_hm, confidence_level=level),
-            bootstrap=boot,
+            disturbance_rate=dist_rate,
+            home_rate=home_level,
             overdispersion=disp,
-            homes_note=_homes_note(rate, boot, disp),
+            homes_note=_homes_note(home_level, disp),
             homes=pareto,
-            concentration=shares.pareto_concentration(pareto, confidence_level=level),
+            concentration=shares.pareto_concentration(ranked, confidence_level=level),
+            exposure_concentration=shares.exposure_concentration(
+                by_home, rng=self._rng(class_index, s_index), alpha=1 - level
+            ),
             causes=causes,
             grades=grades,
-            above_target=shares.homes_above_target(pareto, target),
+            above_target=shares.homes_above_target_adjusted(by_home, target, alpha=1 - level),
             breakdowns=tuple(parts),
             firmware_comparison=comparison,
             detection=detection,
             whatif=table,
             whatif_floor=floor,
-            readiness=rates.readiness(
-                total_fa, total_hm, target, confidence_level=level, home_bootstrap_high=boot.high
+            readiness=homerate.readiness_verdict(
+                home_dist, home_open, home_hm, target, unusable=alerts.unusable, confidence_level=level
             ),
         )
 
@@ -609,6 +701,7 @@ class _Context:
         if scope == "week":
             rows = rows[self._score_week[rows]]
         best = np.floor(events["best_score"].to_numpy(dtype=np.float64) * 1000.0 + 1e-6)
+        per_home = self._homes[scope]
         table = whatif.at_thresholds(
             self._scores[rows],
             home_months,
@@ -618,6 +711,8 @@ class _Context:
             target=self.target,
             fa_counts=self._score_alerts[rows],
             confidence_level=self.level,
+            fa_homes=per_home.keys.get_indexer(self._score_home_code[rows]),
+            home_months_by_home=per_home.home_months,
         )
         table["threshold"] = table["threshold"] / 1000.0
         return table, floor_milli / 1000.0
@@ -628,13 +723,17 @@ class _Context:
             (self.by_week["sound_class"] == sound_class) & (self.by_week["outcome"] == "false_alarm")
         ]
         if self._trend_home_months is None:  # the same for every class
-            hm = d.monitored.groupby("bucket")["seconds"].sum() / rates.HOME_MONTH_S
+            # Per home-month: the union of each home's devices' listening, week by week.
+            hm = d.home_monitored.groupby("bucket")["seconds"].sum() / rates.HOME_MONTH_S
             self._trend_home_months = pd.DataFrame(
                 {"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}
             )
+        dist = self.disturbances
+        dist = dist[(dist["sound_class"] == sound_class) & (dist["outcome"] == "false_alarm")]
+        # The rate week by week is on false-alarm disturbances, as readiness is; alerts beside.
         weeks = pd.concat(
             [
-                fa.groupby("week_index")["alerts"].sum().rename("false_alarms").reset_index(),
+                dist.groupby("week_index").size().rename("false_alarms").reset_index(),
                 self._trend_home_months,
             ],
             ignore_index=True,
@@ -646,9 +745,37 @@ class _Context:
             last_index=d.week.index,
             tz=d.trial.timezone,
             confidence_level=self.level,
-        )
+        ).rename(columns={"false_alarms": "disturbances"})
+        alerts = fa.groupby("week_index")["alerts"].sum()
+        idx = np.arange(first, d.week.index + 1)
+        out.insert(2, "false_alarms", alerts.reindex(idx, fill_value=0).to_numpy(dtype=np.int64))
         out["target"] = self.target
         return out
+
+
+DETECTS_NOTHING = "detects_nothing"
+
+
+def _never_green_blind(table: pd.DataFrame) -> np.ndarray:
+    """The what-if states, with a threshold that detects none of the staged events never shown as
+    acceptable (`whatif` calls it acceptable when the floor detected none either)."""
+    state = table["state"].to_numpy(dtype=object).copy()
+    blind = (table["events"].to_numpy() > 0) & (table["detected"].to_numpy() == 0)
+    state[blind & (state == whatif.ACCEPTABLE)] = DETECTS_NOTHING
+    return state
+
+
+def _homes_table(
+    ranked: pd.DataFrame, codes: pd.Index, false_alarms: np.ndarray, open_: np.ndarray
+) -> pd.DataFrame:
+    """The per-home table shown: `shares.home_pareto` over false-alarm disturbances, with each
+    home's false-alarm alerts and open (awaiting review or unsure) disturbances beside."""
+    fa = pd.Series(false_alarms, index=codes)
+    op = pd.Series(open_, index=codes)
+    out = ranked.rename(columns={"false_alarms": "disturbances"})
+    out.insert(2, "false_alarms", fa.reindex(out["home_code"]).to_numpy(dtype=np.int64))
+    out.insert(3, "open_disturbances", op.reindex(out["home_code"]).to_numpy(dtype=np.int64))
+    return out
 
 
 def _with_codes(detection: staged.Detection, codes: pd.Series) -> staged.Detection:
@@ -664,20 +791,18 @@ def _with_codes(detection: staged.Detection, codes: pd.Series) -> staged.Detecti
     return dataclasses.replace(detection, missed=missed)
 
 
-def _homes_note(
-    rate: rates.RateEstimate, boot: rates.BootstrapRate, disp: rates.Overdispersion
-) -> str | None:
-    """One line on why the two intervals differ (or agree)."""
-    if boot.reason is not None or disp.reason is not None or rate.reason is not None:
+def _homes_note(home_level: homerate.HomeRate, disp: rates.Overdispersion) -> str | None:
+    """One line on why the home-level and exact intervals differ (or agree)."""
+    if home_level.reason is not None or disp.reason is not None:
         return None
     if disp.p_value < 0.05 and disp.ratio > 1.5:
         return (
             f"Homes are not alike (overdispersion {disp.ratio:.1f}, chi-square p = {disp.p_value:.2g}): "
-            "the home bootstrap interval resamples whole homes and is wider than the Poisson interval, "
+            "the home-level interval allows for that and is wider than the exact Poisson interval, "
             "which treats every home-month as interchangeable."
         )
     return (
-        f"Homes look alike (overdispersion {disp.ratio:.1f}), so the home bootstrap and Poisson intervals "
+        f"Homes look alike (overdispersion {disp.ratio:.1f}), so the home-level and exact Poisson intervals "
         "are close."
     )
 
@@ -809,16 +934,28 @@ def summary_tables(summary: WeeklySummary) -> dict[str, pd.DataFrame]:
                     "scope": f.label,
                     "false_alarms": f.rate.events,
                     "home_months": f.home_months,
+                    "device_months": f.device_months,
                     "rate": f.rate.estimate,
                     "low": f.rate.low,
                     "high": f.rate.high,
-                    "upper_one_sided": f.upper_one_sided,
-                    "bootstrap_low": f.bootstrap.low,
-                    "bootstrap_high": f.bootstrap.high,
+                    "false_alarm_disturbances": f.disturbance_rate.events,
+                    "disturbance_rate": f.disturbance_rate.estimate,
+                    "disturbance_low": f.disturbance_rate.low,
+                    "disturbance_high": f.disturbance_rate.high,
+                    "open_disturbances": f.disturbances.pending + f.disturbances.unsure,
+                    "unusable_disturbances": f.disturbances.unusable,
+                    "home_level_low": f.home_rate.low,
+                    "home_level_high": f.home_rate.high,
+                    "home_level_reason": f.home_rate.reason,
                     "overdispersion": f.overdispersion.ratio,
                     "target": summary.target,
                     "readiness": f.readiness.state,
+                    "readiness_reason": f.readiness.reason,
+                    "upper_bound_none_open": f.readiness.high_none,
+                    "upper_bound_all_open": f.readiness.high_all,
+                    "open_alerts": f.alerts.pending + f.alerts.unsure,
                     "more_home_months": f.readiness.more_home_months,
+                    "rule": f.readiness.rule,
                     "staged_events": f.detection.events,
                     "staged_detected": f.detection.detected,
                     "detected_share": f.detection.share.estimate,

@@ -141,16 +141,20 @@ def test_rate_per_home_month_with_exact_and_bootstrap_intervals(session, store, 
         "staged_detections": 0,
         "outside_monitored_time": 0,
     }
-    assert f["bootstrap"]["homes"] == 2 and f["bootstrap"]["resamples"] == 2000
-    # Only two homes: the bootstrap distribution takes the values of 0, 1 or 2 copies of home 1.
-    assert f["bootstrap"]["low"] == pytest.approx(0.0) and f["bootstrap"]["high"] == pytest.approx(
-        6 / home_months, rel=1e-9
-    )
+    # Two homes: too few to judge how homes differ, so no home-level interval (never a zero width).
+    assert f["home_rate"]["homes"] == 2 and f["home_rate"]["reason"] == "too_few_homes"
+    assert f["home_rate"]["low"] is None and f["home_rate"]["high"] is None
+    assert f["home_rate"]["estimate"] == pytest.approx(3 / home_months)
     table = homes_of(f)
     assert table[h1.code]["false_alarms"] == 3 and table[h2.code]["false_alarms"] == 0
     assert table[h1.code]["share"] == pytest.approx(1.0)
     assert f["concentration"]["top_home"] == h1.code
-    assert f["readiness"]["state"] == "not_met"  # lower limit 0.619 / 0.46 home-months > 1
+    # The rule judges over homes; two homes cannot show it either way (formerly "not_met" on the
+    # exact Poisson interval alone, which treated the two homes as alike).
+    assert f["readiness"]["state"] == "not_yet_shown" and f["readiness"]["reason"] == "too_few_homes"
+    # Every alert was its own disturbance (hours apart); the awaiting and unsure ones are open.
+    assert f["disturbances"]["false_alarm"] == 3 and f["readiness"]["open_count"] == 2
+    assert f["readiness"]["unusable"] == 0
     # Other classes keep their own false alarms.
     baby = figures(js, "baby_cry")
     assert baby["rate"]["events"] == 1
@@ -181,7 +185,7 @@ def test_device_moved_mid_week_splits_time_and_alerts_between_homes(session, sto
     assert table[second.code]["home_months"] == pytest.approx(4.5 * 86400 / HM)
     assert (table[first.code]["false_alarms"], table[second.code]["false_alarms"]) == (1, 2)
     rooms = {r["room"]: r for r in next(b for b in f["breakdowns"] if b["dimension"] == "room")["table"]}
-    assert rooms["kitchen"]["false_alarms"] == 1 and rooms["hallway"]["home_months"] == pytest.approx(
+    assert rooms["kitchen"]["false_alarms"] == 1 and rooms["hallway"]["device_months"] == pytest.approx(
         4.5 * 86400 / HM
     )
 
@@ -207,7 +211,7 @@ def test_firmware_breakdown_follows_an_upgrade_mid_week(session, store, settings
 
     f = figures(summary(lead))
     table = next(b for b in f["breakdowns"] if b["dimension"] == "firmware")["table"]
-    rows = {r["firmware"]: (r["false_alarms"], r["home_months"]) for r in table}
+    rows = {r["firmware"]: (r["false_alarms"], r["device_months"]) for r in table}
     assert rows.keys() == {"4.1.0", "4.2.0"}
     assert rows["4.1.0"][0] == 2 and rows["4.1.0"][1] == pytest.approx(9.5 * 86400 / HM)
     assert rows["4.2.0"][0] == 2 and rows["4.2.0"][1] == pytest.approx(4.5 * 86400 / HM)
@@ -225,7 +229,10 @@ def test_corrected_installation_date_applies_to_time_and_alerts(session, store, 
     listen(session, second, at(1), W1)
     alert(session, store, settings, second, at(2))
     f = figures(summary(lead))
-    assert f["home_months"] == pytest.approx((7 + 4) * 86400 / HM)
+    # The home was monitored all week by its first device; the second adds device time, not home
+    # time (this read 7 + 4 days of home time while home time summed device time).
+    assert f["home_months"] == pytest.approx(7 * 86400 / HM)
+    assert f["device_months"] == pytest.approx((7 + 4) * 86400 / HM)
     assert f["rate"]["events"] == 0 and f["alerts"]["outside_monitored_time"] == 1
 
     inst = next(
@@ -235,10 +242,11 @@ def test_corrected_installation_date_applies_to_time_and_alerts(session, store, 
         session, inst, installed_at=at(1), removed_at=None, room="landing"
     )
     f = figures(summary(lead))
-    assert f["home_months"] == pytest.approx((7 + 6) * 86400 / HM)
+    assert f["home_months"] == pytest.approx(7 * 86400 / HM)
+    assert f["device_months"] == pytest.approx((7 + 6) * 86400 / HM)
     assert f["rate"]["events"] == 1 and f["alerts"]["outside_monitored_time"] == 0
     rooms = {
-        r["room"]: r["home_months"]
+        r["room"]: r["device_months"]
         for r in next(b for b in f["breakdowns"] if b["dimension"] == "room")["table"]
     }
     assert rooms["landing"] == pytest.approx(6 * 86400 / HM)
@@ -311,7 +319,7 @@ def test_zero_monitored_time_is_a_state_not_a_division(session, store, settings,
     f = figures(js)
     assert f["home_months"] == 0
     assert f["rate"]["estimate"] is None and f["rate"]["reason"] == "no_monitored_time"
-    assert f["bootstrap"]["reason"] == "no_monitored_time"
+    assert f["home_rate"]["reason"] == "no_monitored_time"
     assert f["readiness"]["state"] == "not_yet_shown" and f["readiness"]["reason"] == "no_monitored_time"
     page = lead.get(f"/summary?trial=LARCH-1&week={WEEK}")
     assert page.status_code == 200 and "no monitored time" in page.text
