@@ -9,15 +9,14 @@ from contextlib import asynccontextmanager
 
 import anyio
 from fastapi import FastAPI
-from starlette.datastructures import MutableHeaders
 from starlette.middleware.sessions import SessionMiddleware
-from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from server import errors, health, migrate
 from server.db import make_engine, make_session_factory, utcnow, writer_engine
 from server.devices.clipstore import ClipStore
 from server.settings import Settings
-from server.web.templating import make_templates
+from server.web.guards import RequestGuard
+from server.web.templating import TEMPLATES_DIR, make_templates
 
 log = logging.getLogger(__name__)
 
@@ -32,34 +31,6 @@ A detector in trial is not a certified life-safety device and never replaces a h
 smoke and CO alarms; clips can hold private speech, so access and retention follow the
 household's consent and data-protection law.
 """
-
-
-class SecurityHeaders:
-    """Pure ASGI middleware adding the security headers to every response.
-
-    Not ``@app.middleware("http")``: that wrapper relays every body chunk through an extra task and
-    memory stream, which costs a device upload of 320 KB measurably more than the headers are worth.
-    """
-
-    HEADERS = (("x-content-type-options", "nosniff"), ("x-frame-options", "DENY"),
-               ("referrer-policy", "same-origin"))
-
-    def __init__(self, app: ASGIApp) -> None:
-        self.app = app
-
-    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http":
-            await self.app(scope, receive, send)
-            return
-
-        async def send_with_headers(message: Message) -> None:
-            if message["type"] == "http.response.start":
-                headers = MutableHeaders(scope=message)
-                for name, value in self.HEADERS:
-                    headers.setdefault(name, value)
-            await send(message)
-
-        await self.app(scope, receive, send_with_headers)
 
 
 def _lower_priority() -> None:
@@ -113,7 +84,15 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
                        session_cookie="trialhouse_session", max_age=settings.session_max_age_s,
                        same_site="lax", https_only=settings.secure_cookies)
 
-    app.add_middleware(SecurityHeaders)
+    from server.households.transfer import MAX_IMPORT_BYTES
+
+    # Outermost: turns away credential-less staff calls and oversized bodies before anything reads them.
+    import_limit = MAX_IMPORT_BYTES + 256 * 1024  # the file plus its multipart framing
+    app.add_middleware(RequestGuard, routes_of=app, max_body_bytes=settings.max_body_bytes,
+                       body_limits={("POST", "/api/v1/alerts"): None,  # caps its clip while streaming
+                                    ("POST", "/api/v1/homes/import"): import_limit,
+                                    ("POST", "/homes/import"): import_limit},
+                       session_cookie="trialhouse_session", template_dir=TEMPLATES_DIR)
 
     from server.admin import api as admin_api
     from server.admin import pages as admin_pages

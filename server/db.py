@@ -159,6 +159,22 @@ def writer_engine(engine: Engine) -> Engine:
     return engine.execution_options(sqlite_immediate=True)
 
 
+def begin_write(session: Session) -> None:
+    """Make the rest of a GET's work one write transaction (it also writes: an audit row).
+
+    On SQLite a transaction that began as a read and then writes fails with "database is locked"
+    whenever another connection committed in between (its snapshot is stale), so under device
+    uploads a personal-data view would fail now and then. Here the reads made so far (the caller
+    check) are committed and a transaction that takes the write lock up front (BEGIN IMMEDIATE) is
+    begun. No effect on PostgreSQL, or on a session bound to a connection (tests).
+    """
+    if not isinstance(session.get_bind(), Engine) or session.get_bind().dialect.name != "sqlite":
+        return
+    if session.in_transaction():
+        session.commit()
+    session.connection(execution_options={"sqlite_immediate": True})
+
+
 def make_session_factory(engine: Engine) -> sessionmaker[Session]:
     return sessionmaker(bind=engine, expire_on_commit=False, autoflush=True)
 

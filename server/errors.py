@@ -7,6 +7,7 @@ see HTTP objects.
 
 from __future__ import annotations
 
+import errno
 import logging
 from typing import Any
 
@@ -138,10 +139,92 @@ class IllegalTransition(AppError):
     code, status = "illegal_transition", 409
 
 
+class BodyTooLarge(AppError):
+    code, status = "body_too_large", 413
+
+
+class StorageFault(AppError):
+    """The server cannot store anything just now (full disk, read-only database, clip store gone).
+
+    503 with Retry-After: nothing was stored, and the same request may succeed later.
+    """
+
+    status = 503
+    RETRY_AFTER_S = 60
+
+    def __init__(self, code: str, message: str) -> None:
+        super().__init__(message, code=code, headers={"Retry-After": str(self.RETRY_AFTER_S)})
+
+
+# SQLite primary result codes (https://www.sqlite.org/rescode.html) and PostgreSQL SQLSTATEs
+# (PostgreSQL manual, appendix A) that say "storage", not "bug".
+_SQLITE_BUSY, _SQLITE_LOCKED, _SQLITE_READONLY, _SQLITE_IOERR, _SQLITE_FULL = 5, 6, 8, 10, 13
+_PG_DISK_FULL, _PG_READ_ONLY = ("53100", "53000"), ("25006",)
+
+
+def storage_fault(exc: BaseException) -> StorageFault | None:
+    """The StorageFault a low-level error means, or None when it is not a storage condition."""
+    orig = getattr(exc, "orig", None) or exc
+    sqlite_code = getattr(orig, "sqlite_errorcode", None)
+    sqlstate = getattr(orig, "sqlstate", None) or getattr(orig, "pgcode", None)
+    text = str(orig).lower()
+    if sqlite_code is not None:
+        primary = sqlite_code & 0xFF
+        if primary == _SQLITE_FULL:
+            return StorageFault("storage_full", "The database's disk is full; nothing was stored.")
+        if primary == _SQLITE_READONLY:
+            return StorageFault("database_read_only",
+                                "The database accepts no writes just now; nothing was stored.")
+        if primary in (_SQLITE_BUSY, _SQLITE_LOCKED):
+            return StorageFault("database_busy", "The database is busy; nothing was stored. Try again.")
+        if primary == _SQLITE_IOERR:
+            return StorageFault("storage_full" if "full" in text else "database_unavailable",
+                                "The database could not write to its disk; nothing was stored.")
+        return None
+    if sqlstate is not None:
+        if sqlstate in _PG_DISK_FULL:
+            return StorageFault("storage_full", "The database's disk is full; nothing was stored.")
+        if sqlstate in _PG_READ_ONLY:
+            return StorageFault("database_read_only",
+                                "The database accepts no writes just now; nothing was stored.")
+        if sqlstate.startswith("08") or sqlstate in ("57P01", "57P02", "57P03"):
+            return StorageFault("database_unavailable", "The database cannot be reached just now.")
+        return None
+    if isinstance(orig, OSError):
+        if orig.errno in (errno.ENOSPC, errno.EDQUOT):
+            return StorageFault("storage_full", "The disk is full; nothing was stored.")
+        if orig.errno in (errno.EROFS, errno.EACCES, errno.EPERM, errno.EIO):
+            return StorageFault("clip_store_unavailable",
+                                "The clip store cannot be written just now; nothing was stored.")
+    return None
+
+
+def input_fault(exc: BaseException) -> AppError | None:
+    """A 422 for input the database cannot hold (a number out of range, text it cannot encode)."""
+    orig = getattr(exc, "orig", None) or exc
+    sqlstate = getattr(orig, "sqlstate", None)
+    if isinstance(orig, RecursionError):
+        return InvalidRequest("The request nests too deeply to read.")
+    if isinstance(orig, OverflowError) or sqlstate in ("22003", "22008"):
+        return InvalidRequest("A number or date in the request is out of range.")
+    if isinstance(orig, UnicodeError) or sqlstate in ("22021", "22P05"):
+        return InvalidRequest("Text in the request is not valid Unicode (a lone surrogate or a NUL).")
+    if sqlstate is not None and sqlstate.startswith("22"):
+        return InvalidRequest("A value in the request does not fit its field.")
+    if type(orig).__name__ == "DataError" and "nul" in str(orig).lower():
+        return InvalidRequest("Text in the request holds a NUL character.")
+    return None
+
+
 def error_body(code: str, message: str, **extra: Any) -> dict[str, Any]:
     body: dict[str, Any] = {"code": code, "message": message}
     body.update({k: v for k, v in extra.items() if v is not None})
     return {"error": body}
+
+
+def _printable(text: str) -> str:
+    """Text safe to encode as UTF-8: a lone surrogate echoed from the input becomes '?'."""
+    return text if text.isascii() else text.encode("utf-8", "replace").decode("utf-8")
 
 
 def _wants_html(request: Request) -> bool:
@@ -153,6 +236,7 @@ def _wants_html(request: Request) -> bool:
 
 def render_error(request: Request, status: int, code: str, message: str,
                  headers: dict[str, str] | None = None, **extra: Any) -> Response:
+    message = _printable(message)
     if _wants_html(request):
         templates = getattr(request.app.state, "templates", None)
         if templates is not None:
@@ -176,18 +260,43 @@ _HTTP_CODES = {
 }
 
 
+def app_error_response(request: Request, exc: AppError) -> Response:
+    """The response for an AppError: JSON, ``error.html``, or for a page's 401 the sign-in redirect."""
+    extra: dict[str, Any] = {}
+    if exc.field:
+        extra["field"] = _printable(exc.field)
+    if isinstance(exc, ValidationFailed) and exc.errors:
+        extra["fields"] = {_printable(k): _printable(v) for k, v in exc.errors.items()}
+    if exc.status == 401 and request.url.path.startswith("/api/") is False and _wants_html(request):
+        from urllib.parse import quote
+
+        from fastapi.responses import RedirectResponse
+        return RedirectResponse(f"/login?next={quote(request.url.path)}", status_code=303)
+    return render_error(request, exc.status, exc.code, exc.message, exc.headers or None, **extra)
+
+
 def install_handlers(app: FastAPI) -> None:
+    from sqlalchemy.exc import DBAPIError, StatementError
+
     @app.exception_handler(AppError)
     async def _app_error(request: Request, exc: AppError) -> Response:
-        extra: dict[str, Any] = {}
-        if exc.field:
-            extra["field"] = exc.field
-        if isinstance(exc, ValidationFailed) and exc.errors:
-            extra["fields"] = exc.errors
-        if exc.status == 401 and request.url.path.startswith("/api/") is False and _wants_html(request):
-            from fastapi.responses import RedirectResponse
-            return RedirectResponse(f"/login?next={request.url.path}", status_code=303)
-        return render_error(request, exc.status, exc.code, exc.message, exc.headers or None, **extra)
+        if isinstance(exc, StorageFault):
+            log.warning("storage fault on %s %s: %s", request.method, request.url.path, exc.code)
+        return app_error_response(request, exc)
+
+    async def _fault(request: Request, exc: Exception) -> Response:
+        # Handled here rather than by the catch-all: the catch-all re-raises after answering, and
+        # the server then drops the connection; a storage fault or bad value must leave it usable.
+        known = storage_fault(exc) or input_fault(exc)
+        if known is None:
+            return await _unexpected(request, exc)
+        if isinstance(known, StorageFault):
+            log.warning("storage fault on %s %s: %s (%s)", request.method, request.url.path, known.code,
+                        type(getattr(exc, "orig", None) or exc).__name__)
+        return app_error_response(request, known)
+
+    for kind in (DBAPIError, StatementError, OSError, OverflowError, UnicodeError, RecursionError):
+        app.add_exception_handler(kind, _fault)
 
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError) -> Response:
@@ -215,8 +324,9 @@ def install_handlers(app: FastAPI) -> None:
         log.info("client disconnected during %s %s", request.method, request.url.path)
         return render_error(request, 400, "client_disconnected", "The request body ended early: the client went away.")
 
-    @app.exception_handler(Exception)
     async def _unexpected(request: Request, exc: Exception) -> Response:
-        log.exception("unhandled error on %s %s", request.method, request.url.path)
+        log.error("unhandled error on %s %s", request.method, request.url.path, exc_info=exc)
         return render_error(request, 500, "internal_error",
                             "Something went wrong on the server; the error was logged.")
+
+    app.add_exception_handler(Exception, _unexpected)

@@ -12,6 +12,7 @@ from server.analytics import weekly
 from server.auth.models import User
 from server.deps import DbSession, require
 from server.errors import NotFound
+from server.web.csvsafe import safe_frame
 
 router = APIRouter(prefix="/api/v1", tags=["analytics"])
 
@@ -63,7 +64,8 @@ def api_table_csv(
     tables = weekly.summary_tables(summary)
     if name not in tables:
         raise NotFound(f"The summary has no table called {name!r}.", code="unknown_table")
-    body = tables[name].to_csv(index=False)
+    # Firmware strings come from devices and attribute values from coordinators: escape text cells.
+    body = safe_frame(tables[name]).to_csv(index=False)
     filename = f"{summary.trial_code}-{summary.week.label}-{name}.csv"
     return Response(
         body,

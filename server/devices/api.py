@@ -176,7 +176,7 @@ def api_get_alert(alert_id: int, session: DbSession, user: User = Depends(requir
 
 def _serve_clip(alert_id: int, session: Session, store: ClipStoreDep, user: User) -> FileResponse:
     path, media_type = views.clip_file_for(session, store, user, alert_id)
-    return FileResponse(path, media_type=media_type, headers={"Cache-Control": "private, max-age=600"})
+    return FileResponse(path, media_type=media_type, headers={"Cache-Control": "private, no-store"})
 
 
 @router.get("/api/v1/alerts/{alert_id}/clip", tags=["staff"], response_class=FileResponse,

@@ -28,6 +28,26 @@ def _rfc3339(v: object) -> object:
         raise ValueError(f"is not a valid date-time ({exc})") from exc
 
 
+def json_datetime(v: object) -> object:
+    """Staff JSON times: an RFC 3339 string with an offset, never a number (an epoch is not a time)."""
+    if not isinstance(v, str):
+        raise ValueError("must be an RFC 3339 date-time string with an offset, such as 2026-03-02T11:57:30Z")
+    return _rfc3339(v)
+
+
+_ISO_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+
+
+def json_date(v: object) -> object:
+    """Staff JSON dates: a YYYY-MM-DD string, nothing else."""
+    if not isinstance(v, str) or not _ISO_DATE.match(v):
+        raise ValueError("must be a date string such as 2026-03-02")
+    try:
+        return dt.date.fromisoformat(v)
+    except ValueError as exc:
+        raise ValueError(f"is not a valid date ({exc})") from exc
+
+
 def _printable(v: str) -> str:
     if _CONTROL.search(v):
         raise ValueError("must not contain control characters")
@@ -97,7 +117,7 @@ class AlertReceipt(BaseModel):
 
 
 class DeviceIn(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", strict=True)
 
     serial: str = Field(min_length=1, max_length=64, pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
     hardware_model: str = Field(default="unknown", min_length=1, max_length=64)

@@ -11,9 +11,10 @@ from fastapi.responses import JSONResponse, Response
 from sqlalchemy.orm import Session
 
 from server.auth.models import User
+from server.db import begin_write
 from server.deps import ClipStoreDep, DbSession, SettingsDep, require
 from server.devices import service as devices_service
-from server.errors import InvalidRequest, error_body
+from server.errors import AppError, InvalidRequest, error_body
 from server.households import catalogue, erasure, schemas, service, transfer, views
 from server.households.models import Home, Installation, StagedEvent
 from server.roles import allowed
@@ -160,6 +161,7 @@ def api_export(
 def api_export_personal(
     session: DbSession, trial: str | None = None, user: User = Depends(require("personal.view"))
 ) -> Response:
+    begin_write(session)  # the view writes an audit row
     t = _trial(session, trial)
     text = transfer.export_csv(session, t, with_personal_data=True, actor=user)
     session.commit()
@@ -174,6 +176,9 @@ def api_export_personal(
 
 
 async def _csv_body(request: Request) -> bytes:
+    if request.headers.get("content-type", "").startswith(("application/x-www-form-urlencoded", "multipart/")):
+        raise AppError("Send the CSV file itself as the body (Content-Type: text/csv), not a form.",
+                       code="unsupported_media_type", status=415)
     body = bytearray()
     async for chunk in request.stream():
         body.extend(chunk)
@@ -353,6 +358,7 @@ def _contact_out(home: Home, contact: Any) -> schemas.ContactOut:
 def api_get_contact(
     code: str, session: DbSession, user: User = Depends(require("personal.view"))
 ) -> JSONResponse:
+    begin_write(session)  # the view writes an audit row
     home = service.get_home(session, code)
     contact = service.view_contact(session, home, actor=user, via="api")
     session.commit()

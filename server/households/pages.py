@@ -16,6 +16,7 @@ from starlette.datastructures import FormData, UploadFile
 from starlette.responses import Response
 
 from server.auth.models import User
+from server.db import begin_write
 from server.deps import ClipStoreDep, DbSession, SettingsDep, require
 from server.devices import service as devices_service
 from server.devices.models import Device
@@ -361,6 +362,7 @@ def export_page(
 def export_personal_page(
     session: DbSession, trial: str | None = None, user: User = Depends(require("personal.view"))
 ) -> Response:
+    begin_write(session)  # the view writes an audit row
     t = service.get_trial_or_default(session, trial)
     text = transfer.export_csv(session, t, with_personal_data=True, actor=user)
     session.commit()
@@ -628,6 +630,7 @@ def consent_submit(
 def contact_page(
     code: str, request: Request, session: DbSession, user: User = Depends(require("personal.view"))
 ) -> Response:
+    begin_write(session)  # the view writes an audit row
     home, t = _home_and_trial(session, code)
     contact = service.view_contact(session, home, actor=user, via="page")
     session.commit()

@@ -3,13 +3,21 @@
 from __future__ import annotations
 
 import datetime as dt
-from typing import Any
+from typing import Annotated, Any
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
+from pydantic import AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field
+
+from server.devices.schemas import json_date, json_datetime
 
 
 class Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    # No coercion: an epoch number is not a time, false is not 0, "3" is not 3, NaN is refused.
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False)
+
+
+# Times and dates arrive as JSON strings (RFC 3339 / ISO 8601) and nothing else.
+JsonDateTime = Annotated[AwareDatetime, BeforeValidator(json_datetime)]
+JsonDate = Annotated[dt.date, BeforeValidator(json_date)]
 
 
 class HomeIn(Strict):
@@ -17,7 +25,7 @@ class HomeIn(Strict):
     code: str | None = None
     attributes: dict[str, Any] = Field(default_factory=dict)
     note: str | None = None
-    at: AwareDatetime | None = None  # when the household entered the register (default now)
+    at: JsonDateTime | None = None  # when the household entered the register (default now)
 
 
 class HomePatch(Strict):
@@ -39,7 +47,7 @@ class HomeOut(BaseModel):
 class TransitionIn(Strict):
     to_state: str
     note: str | None = None
-    at: AwareDatetime | None = None
+    at: JsonDateTime | None = None
     # On a pause: do the devices keep listening (time still counts as monitored)?
     listening: bool = True
 
@@ -61,11 +69,11 @@ class TransitionOut(BaseModel):
 
 class ConsentIn(Strict):
     form_version: str
-    consented_on: dt.date
+    consented_on: JsonDate
     staff_may_listen: bool = True
     retention_days: int = Field(90, ge=1, le=3650)
     mark_consented: bool = False
-    at: AwareDatetime | None = None  # time of the move to consented (default now)
+    at: JsonDateTime | None = None  # time of the move to consented (default now)
 
 
 class ConsentOut(BaseModel):
@@ -93,19 +101,19 @@ class InstallationIn(Strict):
     device: str  # serial
     home: str  # code
     room: str
-    installed_at: AwareDatetime
+    installed_at: JsonDateTime
     move: bool = False
 
 
 class InstallationPatch(Strict):
-    installed_at: AwareDatetime | None = None
-    removed_at: AwareDatetime | None = None
+    installed_at: JsonDateTime | None = None
+    removed_at: JsonDateTime | None = None
     reopen: bool = False  # clear removed_at
     room: str | None = None
 
 
 class RemovalIn(Strict):
-    removed_at: AwareDatetime
+    removed_at: JsonDateTime
 
 
 class InstallationOut(BaseModel):
@@ -127,8 +135,8 @@ class InstallationResult(BaseModel):
 class StagedEventIn(Strict):
     home: str
     sound_class: str
-    started_at: AwareDatetime
-    ended_at: AwareDatetime
+    started_at: JsonDateTime
+    ended_at: JsonDateTime
     source: str
     level_db: float | None = None
 

@@ -21,6 +21,7 @@ from server.errors import AppError, ValidationFailed
 from server.households import catalogue, service
 from server.households.models import Consent, Home, HomeContact, HomeState
 from server.trials.models import Trial
+from server.web.csvsafe import safe_frame
 
 MAX_IMPORT_BYTES = 5 * 1024 * 1024
 BASE_COLUMNS = ("code", "state", "note")
@@ -215,16 +216,6 @@ def import_csv(session: Session, trial: Trial, data: bytes, *, actor: service.Ac
     return ImportReport(len(frame), tuple(created), ())
 
 
-def _safe_cell(value: str) -> str:
-    # Spreadsheets run cells that start with these as formulas; a leading apostrophe keeps them text
-    # (common practice against CSV injection). Phone numbers such as +44 20 ... stay as they are.
-    if value[:1] in ("=", "@", "\t", "\r") or (
-        value[:1] in ("+", "-") and not service.PHONE_PATTERN.match(value)
-    ):
-        return "'" + value
-    return value
-
-
 def export_csv(
     session: Session, trial: Trial, *, with_personal_data: bool = False, actor: service.Actor = "cli"
 ) -> str:
@@ -268,7 +259,7 @@ def export_csv(
         if with_personal_data:
             p = contacts.get(h.id)
             for f in service.CONTACT_FIELDS:
-                row[f] = _safe_cell(getattr(p, f)) if p else ""
+                row[f] = getattr(p, f) if p else ""
         rows.append(row)
     cols = ["code", "state", "note", *[s.key for s in specs], *EXPORT_ONLY]
     if with_personal_data:
@@ -276,4 +267,5 @@ def export_csv(
         audit.record(
             session, actor, "personal.export", "trial", trial.id, {"trial": trial.code, "homes": len(rows)}
         )
-    return pd.DataFrame(rows, columns=cols).to_csv(index=False)
+    # Every text cell is escaped: attribute values and contact details come from people.
+    return safe_frame(pd.DataFrame(rows, columns=cols)).to_csv(index=False)

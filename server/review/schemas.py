@@ -10,7 +10,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from server.review.queue import QueueItem, QueueView
 from server.review.service import AdjudicationCase, Recorded
 
-STRICT = ConfigDict(extra="forbid", str_strip_whitespace=True)
+STRICT = ConfigDict(extra="forbid", str_strip_whitespace=True, strict=True, allow_inf_nan=False)
 
 
 class CauseOut(BaseModel):

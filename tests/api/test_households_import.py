@@ -138,7 +138,7 @@ def test_export_without_personal_data_by_default(staff_client, session, trial):
     assert r.status_code == 200
     frame = pd.read_csv(io.StringIO(r.text), dtype=str, keep_default_na=False).set_index("code")
     assert (
-        frame.loc["H-7001", "names"] == "Ada Example" and frame.loc["H-7001", "phone"] == "+44 20 7946 0000"
+        frame.loc["H-7001", "names"] == "Ada Example" and frame.loc["H-7001", "phone"] == "'+44 20 7946 0000"
     )
     ev = session.scalars(select(AuditEvent).where(AuditEvent.action == "personal.export")).all()
     assert len(ev) == 1 and ev[0].actor_id == c.user.id and ev[0].detail["homes"] == 3  # type: ignore[attr-defined]
@@ -149,4 +149,5 @@ def test_exported_formula_text_is_defused(staff_client, session, trial):
     home = service.create_home(session, trial)
     service.set_contact(session, home, names='=HYPERLINK("x")', phone="+44 1632 960000")
     text = c.get(f"/api/v1/homes/export-personal.csv?trial={trial.code}").text
-    assert re.search(r"'=HYPERLINK", text) and ",+44 1632 960000," in text
+    # Phone numbers too: a spreadsheet reads "+44 ..." as a formula.
+    assert re.search(r"'=HYPERLINK", text) and ",'+44 1632 960000," in text
