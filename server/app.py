@@ -12,6 +12,7 @@ from fastapi import FastAPI
 from starlette.middleware.sessions import SessionMiddleware
 
 from server import errors, health, migrate
+from server.auth import web as auth_web
 from server.db import make_engine, make_session_factory, utcnow, writer_engine
 from server.devices.clipstore import ClipStore
 from server.settings import Settings
@@ -79,10 +80,18 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     app.state.schema_revision = None
     app.state.background = None
 
+    # The clock of sessions, personal tokens and sign-in throttling (tests move it; the demo's
+    # replay of device time does not).
+    app.state.auth_clock = utcnow
+
     errors.install_handlers(app)
+    # Staff sessions live in the database (auth/sessions.py); their cookie holds only the id. This
+    # signed cookie carries page state that is no credential: the sign-in form's token, flash
+    # messages, desk filters. resolved_secret_key() refuses a placeholder or short key.
     app.add_middleware(SessionMiddleware, secret_key=settings.resolved_secret_key(),
-                       session_cookie="trialhouse_session", max_age=settings.session_max_age_s,
+                       session_cookie=auth_web.UI_COOKIE_NAME, max_age=settings.session_max_age_s,
                        same_site="lax", https_only=settings.secure_cookies)
+    app.add_middleware(auth_web.StaleSessionCookie, settings=settings)
 
     from server.households.transfer import MAX_IMPORT_BYTES
 
@@ -98,6 +107,7 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     from server.admin import pages as admin_pages
     from server.analytics import api as analytics_api
     from server.analytics import pages as analytics_pages
+    from server.auth import api as auth_api
     from server.auth import pages as auth_pages
     from server.devices import api as devices_api
     from server.devices import pages as devices_pages
@@ -108,7 +118,7 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     from server.web import pages as web_pages
 
     app.include_router(health.router)
-    for module in (auth_pages, web_pages, devices_api, devices_pages, households_api, households_pages,
+    for module in (auth_pages, auth_api, web_pages, devices_api, devices_pages, households_api, households_pages,
                    review_api, review_pages, analytics_api, analytics_pages, admin_api, admin_pages):
         app.include_router(module.router)
     return app

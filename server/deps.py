@@ -1,7 +1,12 @@
-"""FastAPI dependencies: database session, settings, clip store, the signed-in staff member, CSRF."""
+"""FastAPI dependencies: database session, settings, clip store, the signed-in staff member, CSRF.
+
+Staff are signed in by a server-side session (cookie ``trialhouse_session``, see auth/sessions.py) or a
+personal API token (``Authorization: Bearer ths_...``).
+"""
 
 from __future__ import annotations
 
+import datetime as dt
 import hmac
 import secrets
 from collections.abc import AsyncIterator, Callable
@@ -12,14 +17,23 @@ from sqlalchemy.orm import Session
 from starlette.concurrency import run_in_threadpool
 
 from server.auth import service as auth_service
+from server.auth import sessions
 from server.auth.models import User
 from server.devices.clipstore import ClipStore
-from server.errors import CsrfFailed, Forbidden, InvalidToken, NotSignedIn
+from server.errors import AppError, CsrfFailed, Forbidden, InvalidToken, NotSignedIn
 from server.roles import CAPABILITIES
 from server.settings import Settings
 from server.tokens import STAFF_PREFIX
 
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
+
+
+class TokenExpired(InvalidToken):
+    code = "token_expired"
+
+
+class PasswordChangeRequired(AppError):
+    code, status = "password_change_required", 403
 
 
 async def get_session(request: Request) -> AsyncIterator[Session]:
@@ -54,7 +68,25 @@ SettingsDep = Annotated[Settings, Depends(get_settings)]
 ClipStoreDep = Annotated[ClipStore, Depends(get_clip_store)]
 
 
+def auth_now(request: Request) -> dt.datetime:
+    """The clock that sessions, tokens and sign-in throttling read (tests move it; the demo does not)."""
+    return request.app.state.auth_clock()
+
+
+def session_limits(settings: Settings) -> sessions.Limits:
+    return sessions.Limits(idle_s=settings.session_idle_s, max_age_s=settings.session_max_age_s,
+                           touch_s=settings.session_touch_s)
+
+
 def csrf_token(request: Request) -> str:
+    """The form token: the signed-in session's (kept in its database row), else the sign-in form's.
+
+    Before sign-in the token lives in the signed UI cookie: it only ties the sign-in form to the
+    browser that loaded it. Signing in starts a session with a new token.
+    """
+    row = getattr(request.state, "web_session", None)
+    if row is not None:
+        return row.csrf_token
     token = request.session.get("csrf")
     if not token:
         token = secrets.token_urlsafe(32)
@@ -62,8 +94,20 @@ def csrf_token(request: Request) -> str:
     return token
 
 
-async def _check_csrf(request: Request) -> None:
-    expected = request.session.get("csrf")
+def _bearer_staff_token(request: Request) -> str | None:
+    scheme, _, value = request.headers.get("authorization", "").partition(" ")
+    value = value.strip()
+    if scheme.lower() == "bearer" and value.startswith(STAFF_PREFIX):
+        return value
+    return None
+
+
+async def sent_csrf(request: Request) -> str | None:
+    """The CSRF token an unsafe cookie-session request sent (header ``X-CSRF-Token`` or form field)."""
+    if request.method in SAFE_METHODS or _bearer_staff_token(request) is not None:
+        return None
+    if not request.cookies.get(sessions.COOKIE_NAME):
+        return None  # not signed in: the role check answers 401
     sent = request.headers.get("x-csrf-token")
     if sent is None:
         ctype = request.headers.get("content-type", "")
@@ -71,59 +115,84 @@ async def _check_csrf(request: Request) -> None:
             form = await request.form()
             value = form.get("csrf_token")
             sent = value if isinstance(value, str) else None
-    if not expected or not sent or not hmac.compare_digest(str(expected), sent):
-        raise CsrfFailed("The form's security token is missing or stale; reload the page and try again.")
+    return sent if sent is not None else ""
+
+
+def _record_use(session: Session, write: Callable[[], None]) -> None:
+    """Write a last-seen/last-used time in its own short transaction.
+
+    The read so far is committed first, so on SQLite the write begins a fresh transaction (no lock
+    upgrade from a read snapshot); nothing else has happened in the request's session yet.
+    """
+    session.commit()
+    write()
+    session.commit()
 
 
 def _load_staff(request: Request, session: Session) -> User | None:
-    auth = request.headers.get("authorization", "")
-    scheme, _, value = auth.partition(" ")
-    if scheme.lower() == "bearer" and value.strip().startswith(STAFF_PREFIX):
-        user = auth_service.find_user_by_api_token(session, value.strip())
-        if user is None:
+    settings: Settings = request.app.state.settings
+    now = auth_now(request)
+    token = _bearer_staff_token(request)
+    if token is not None:
+        row = auth_service.find_api_token(session, token)
+        if row is None or row.revoked or not row.user.active:
             raise InvalidToken("The personal API token is not recognised or was revoked.")
+        if row.expires_at <= now:
+            raise TokenExpired(f"The personal API token expired on {row.expires_at:%Y-%m-%d %H:%M} UTC; "
+                               "create a new one on your account page.")
+        if row.last_used_at is None or (now - row.last_used_at).total_seconds() >= settings.session_touch_s:
+            def write() -> None:
+                row.last_used_at = now
+                session.flush()
+            _record_use(session, write)
         request.state.via_token = True
-        return user
-    uid = request.session.get("uid")
-    if uid is None:
+        request.state.web_session = None
+        return row.user
+    raw = request.cookies.get(sessions.COOKIE_NAME)
+    if not raw:
         return None
-    user = session.get(User, uid)
-    if user is None or not user.active:
-        request.session.clear()
+    limits = session_limits(settings)
+    found = sessions.find(session, raw, now=now, limits=limits)
+    if found is None:
+        request.state.clear_session_cookie = True
         return None
+    if sessions.touch_due(found, now=now, limits=limits):
+        _record_use(session, lambda: sessions.touch(session, found, now=now))
     request.state.via_token = False
-    return user
+    request.state.web_session = found
+    return found.user
 
 
-async def csrf_guard(request: Request) -> None:
-    """Unsafe methods over a cookie session need the session's CSRF token (form or header)."""
-    if request.method in SAFE_METHODS:
-        return
-    scheme, _, value = request.headers.get("authorization", "").partition(" ")
-    if scheme.lower() == "bearer" and value.strip().startswith(STAFF_PREFIX):
-        return  # personal API token: no ambient credentials, so no CSRF
-    if request.session.get("uid") is None:
-        return  # not signed in: the role check answers 401
-    await _check_csrf(request)
+def current_staff(request: Request, session: Session) -> User | None:
+    """The signed-in staff member (cookie session or personal token), or None; no role check."""
+    return _load_staff(request, session)
 
 
 def require(capability: str) -> Callable[..., User]:
     """Dependency: the signed-in staff member holding ``capability``, else 401 or 403.
 
-    Unsafe methods over a cookie session also need a matching CSRF token (form field
-    ``csrf_token`` or header ``X-CSRF-Token``); personal API tokens need none.
+    Unsafe methods over a cookie session also need the session's CSRF token (form field
+    ``csrf_token`` or header ``X-CSRF-Token``); personal API tokens need none. A user whose password
+    an admin chose may use only the ``staff.self`` routes (their account page) until they change it.
     """
     if capability not in CAPABILITIES:
         raise KeyError(f"unknown capability {capability!r}")
     roles = CAPABILITIES[capability]
 
-    def dependency(request: Request, session: DbSession, _csrf: None = Depends(csrf_guard)) -> User:
+    def dependency(request: Request, session: DbSession, sent: str | None = Depends(sent_csrf)) -> User:
         user = _load_staff(request, session)
         if user is None:
             raise NotSignedIn("Sign in to continue.")
+        row = request.state.web_session
+        if row is not None and request.method not in SAFE_METHODS:
+            if not sent or not hmac.compare_digest(row.csrf_token, sent):
+                raise CsrfFailed("The form's security token is missing or stale; reload the page and try again.")
+        request.state.user = user
+        if user.must_change_password and capability != "staff.self":
+            raise PasswordChangeRequired(
+                "An administrator set your password: choose your own on your account page (/account) first.")
         if user.role not in roles:
             raise Forbidden(f"Your role ({user.role}) does not allow this.")
-        request.state.user = user
         return user
 
     dependency.capability = capability  # type: ignore[attr-defined]

@@ -16,7 +16,7 @@ from sqlalchemy.orm import Session
 from server.auth.models import StaffSession, User
 from server.tokens import token_digest
 
-COOKIE_NAME = "trialhouse_sid"
+COOKIE_NAME = "trialhouse_session"
 
 
 @dataclasses.dataclass(frozen=True)

@@ -6,17 +6,15 @@ from fastapi import APIRouter, Request
 from fastapi.responses import RedirectResponse
 from starlette.responses import Response
 
-from server.auth.models import User
 from server.auth.pages import HOME_BY_ROLE
-from server.deps import DbSession
+from server.deps import DbSession, current_staff
 
 router = APIRouter(include_in_schema=False)
 
 
 @router.get("/")
 def front(request: Request, session: DbSession) -> Response:
-    uid = request.session.get("uid")
-    user = session.get(User, uid) if uid is not None else None
-    if user is None or not user.active:
+    user = current_staff(request, session)
+    if user is None:
         return RedirectResponse("/login", status_code=303)
     return RedirectResponse(HOME_BY_ROLE.get(user.role, "/devices"), status_code=303)

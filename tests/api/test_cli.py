@@ -189,7 +189,7 @@ def test_user_add_refuses_a_short_password_and_a_bad_email(data_dir: Path, capsy
                                                            monkeypatch: pytest.MonkeyPatch) -> None:
     code, _, err = run(capsys, "user", "add", "--email", "sam@example.test", "--role", "lead",
                        stdin="short\n", monkeypatch=monkeypatch)
-    assert code != 0 and "at least 10 characters" in err
+    assert code != 0 and "at least 12 characters" in err
     code, _, err = run(capsys, "user", "add", "--email", "not-an-address", "--role", "lead",
                        stdin="long enough password\n", monkeypatch=monkeypatch)
     assert code != 0 and "is not an e-mail address" in err
