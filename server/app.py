@@ -60,6 +60,10 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
         # Device writes run a few at a time: dozens of threads taking turns at the interpreter lock
         # get less done than a handful working while the rest queue (see devices/api.py).
         app.state.device_work_limiter = anyio.CapacityLimiter(settings.device_work_slots)
+        # Upload spools left by a crash hold raw audio; those untouched for a while are abandoned
+        # (a younger one may be another worker's upload in flight).
+        for key in app.state.clip_store.remove_spools(app.state.clip_store.stale_spools()):
+            log.warning("removed an upload spool left by a crash: %s", key)
         try:
             yield
         finally:

@@ -176,19 +176,7 @@ def cmd_storage_check(args: argparse.Namespace, settings: Settings) -> int:
     from server.devices import storage
 
     with session_scope(open_db(settings)) as s:
-        report = storage.check(s, settings)
-    if args.json:
-        _print_json(report)
-    else:
-        print(f"clips in database: {report['rows']}, files in store: {report['files']}")
-        for key in report["orphans"]:
-            print(f"orphan file (no row): {key}")
-        for key in report["missing"]:
-            print(f"missing file (row without file): {key}")
-        for key in report["corrupt"]:
-            print(f"file whose bytes do not match its SHA-256: {key}")
-        print("ok" if not (report["missing"] or report["corrupt"]) else "problems found")
-    return 0 if not (report["missing"] or report["corrupt"]) else 1
+        return storage.run_check(s, settings, as_json=args.json, fix=args.repair)
 
 
 def cmd_simulate(args: argparse.Namespace, settings: Settings) -> int:
@@ -258,8 +246,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     st = sub.add_parser("storage", help="the clip store")
     st_sub = st.add_subparsers(dest="storage_cmd", required=True)
-    sc = st_sub.add_parser("check", help="list orphan files and rows whose file is missing")
+    sc = st_sub.add_parser("check", help="list orphan files, rows whose file is missing, and upload spools "
+                           "left by a crash (exit 1 if any)")
     sc.add_argument("--json", action="store_true")
+    sc.add_argument("--repair", action="store_true", help="list, then remove orphan files and stale upload spools")
     sc.set_defaults(func=cmd_storage_check)
 
     from server import simulate

@@ -153,6 +153,9 @@ def _configure_sqlite(engine: Engine) -> None:
         else:
             conn.exec_driver_sql("BEGIN")
 
+        # Deleted rows are overwritten with zeros, so erased personal data does not stay readable
+        # in free pages of the database file (the erasure also truncates the write-ahead log).
+        cur.execute("PRAGMA secure_delete=ON")
 
 def writer_engine(engine: Engine) -> Engine:
     """The same pool, with write transactions taking SQLite's lock at BEGIN (no-op elsewhere)."""

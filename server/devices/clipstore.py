@@ -2,7 +2,9 @@
 
 Bytes are stored exactly as received (reviewers must hear what the device heard). A put writes a
 temporary file, fsyncs it, renames it into place and fsyncs the directory, so after a crash a key
-either names a complete file or does not exist.
+either names a complete file or does not exist. Uploads stream into spool files under ``tmp/``;
+one left by a crash holds raw audio, so spools older than ``SPOOL_GRACE`` are removed at start-up
+and by `trialhouse storage check --repair` / `storage purge --apply`.
 """
 
 from __future__ import annotations
@@ -10,12 +12,17 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
-from collections.abc import Iterator
+import time
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import BinaryIO
 
 
 class ClipStore:
+    # An upload in flight (in this or another worker) writes to its spool every few milliseconds
+    # and finishes within its request timeout; a spool untouched for this long was abandoned.
+    SPOOL_GRACE_S = 600.0
+
     def __init__(self, root: Path) -> None:
         self.root = Path(root)
         self.tmp = self.root / "tmp"
@@ -91,6 +98,40 @@ class ClipStore:
         for p in self.root.glob("??/??/*"):
             if p.is_file():
                 yield p.relative_to(self.root).as_posix()
+
+    def age_s(self, key: str, now: float | None = None) -> float:
+        """Seconds since the file under ``key`` (or ``tmp/<name>``) was last written; 0 if gone."""
+        try:
+            return (now or time.time()) - self.path(key).stat().st_mtime
+        except FileNotFoundError:
+            return 0.0
+
+    def stale_spools(self, grace_s: float | None = None) -> list[str]:
+        """Spool files (``tmp/<name>``) untouched for ``grace_s`` seconds: left by a crash."""
+        grace = self.SPOOL_GRACE_S if grace_s is None else grace_s
+        if not self.tmp.is_dir():
+            return []
+        now = time.time()
+        out = []
+        for p in sorted(self.tmp.iterdir()):
+            key = f"tmp/{p.name}"
+            if p.is_file() and self.age_s(key, now) >= grace:
+                out.append(key)
+        return out
+
+    def remove_spools(self, keys: Iterable[str]) -> list[str]:
+        """Delete the given spool files; returns those verified gone."""
+        removed = []
+        for key in keys:
+            if not key.startswith("tmp/") or "/" in key[4:]:
+                continue  # only spool files, never a clip
+            p = self.path(key)
+            p.unlink(missing_ok=True)
+            if not p.exists():
+                removed.append(key)
+        if removed:
+            _fsync_dir(self.tmp)
+        return removed
 
     def writable(self) -> bool:
         try:

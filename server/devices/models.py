@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import datetime as dt
 
-from sqlalchemy import Float, ForeignKey, Index, String, UniqueConstraint
+from sqlalchemy import Float, ForeignKey, Index, String, UniqueConstraint, text
 from sqlalchemy.orm import Mapped, mapped_column, relationship
 
 from server.db import Base, UTCDateTime, utcnow
@@ -63,12 +63,20 @@ class FirmwareChange(Base):
 
 
 class Clip(Base):
-    """Audio bytes as received, content-addressed by SHA-256 in the clip store."""
+    """Audio bytes as received, content-addressed by SHA-256 in the clip store.
+
+    One live row per SHA-256; erased rows keep theirs, so identical bytes sent later get a new row
+    and never bring an erased alert's audio back.
+    """
 
     __tablename__ = "clip"
+    __table_args__ = (
+        Index("ix_clip_sha256_live", "sha256", unique=True,
+              sqlite_where=text("erased_at IS NULL"), postgresql_where=text("erased_at IS NULL")),
+    )
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    sha256: Mapped[str] = mapped_column(String(64), unique=True)
+    sha256: Mapped[str] = mapped_column(String(64))
     storage_key: Mapped[str] = mapped_column(String(200))
     format: Mapped[str] = mapped_column(String(16))
     subtype: Mapped[str] = mapped_column(String(16))

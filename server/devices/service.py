@@ -39,12 +39,21 @@ from server.errors import (
     UnsupportedChannels,
     ValidationFailed,
 )
-from server.households.models import Installation
+from server.households.models import Home, Installation
 from server.settings import Settings
 from server.tokens import DEVICE_PREFIX, new_token, token_digest
 from server.trials.models import Trial
 
 log = logging.getLogger(__name__)
+
+
+class ClipOfErasedHome(AppError):
+    """A clip detected while its device was installed in a home that has since been erased.
+
+    Final for the device (410: the home is gone for good); nothing of the upload is stored.
+    """
+
+    code, status = "home_erased", 410
 
 
 # --- registration ---------------------------------------------------------------------------
@@ -261,9 +270,11 @@ _UPLOAD_FACTS = select(
     select(Alert.id).where(Alert.device_id == bindparam("device_id_v"), Alert.event_id == bindparam("event_id_v"))
     .scalar_subquery().label("alert_id"),
     select(Trial.sound_classes).where(Trial.id == bindparam("trial_id_v")).scalar_subquery().label("classes"),
-    select(Clip.id).where(Clip.sha256 == bindparam("sha_v")).scalar_subquery().label("clip_id"))
+    select(Clip.id).where(Clip.sha256 == bindparam("sha_v"), Clip.erased_at.is_(None))
+    .scalar_subquery().label("clip_id"))
 # As installation_at, columns only, with the end of the device's last segment started by then.
-_PLACED_AT = (select(Installation.id, Installation.home_id)
+_PLACED_AT = (select(Installation.id, Installation.home_id, Home.erased_at.label("home_erased_at"))
+              .join(Home, Home.id == Installation.home_id)
               .where(Installation.device_id == bindparam("device_id_v"), Installation.installed_at <= bindparam("at_v"),
                      (Installation.removed_at.is_(None)) | (Installation.removed_at > bindparam("at_v")))
               .order_by(Installation.installed_at.desc()).limit(1).subquery("placed"))
@@ -273,6 +284,7 @@ _SEGMENT_END_AT = (select(ListeningSegment.ended_at)
                    .order_by(ListeningSegment.started_at.desc()).limit(1))
 _PLACEMENT = select(select(_PLACED_AT.c.id).scalar_subquery().label("installation_id"),
                     select(_PLACED_AT.c.home_id).scalar_subquery().label("home_id"),
+                    select(_PLACED_AT.c.home_erased_at).scalar_subquery().label("home_erased_at"),
                     _SEGMENT_END_AT.scalar_subquery().label("segment_end"))
 _NOTE_LISTENING_CHECK = (update(Device.__table__).where(_device.id == bindparam("device_id_v"))
                          .values(listening_check_from=case(
@@ -371,10 +383,18 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
         raise InvalidMeta(f"clip_offset_s is {meta.clip_offset_s} s but the clip lasts only "
                           f"{info.duration_s:.3f} s.", field="clip_offset_s")
     size = upload.size
-    key = store.put_file(upload.path, sha)  # durable before the row commits
     skew = device.clock_skew_s if device.clock_skew_s and abs(device.clock_skew_s) >= 1.0 else None
     at = meta.detected_at - dt.timedelta(seconds=skew) if skew else meta.detected_at  # Alert.effective_at
     placed = conn.execute(_PLACEMENT, {"device_id_v": device.id, "at_v": at}).one()
+    if placed.home_erased_at is not None:
+        # Heard inside a home that was erased (a device that buffered while offline): nothing of it
+        # is kept. The check comes before the store, so not a byte reaches it; the caller's spool
+        # is deleted on the way out.
+        log.info("clip from device %s dropped: its home was erased", device.serial)
+        raise ClipOfErasedHome(
+            f"This clip was detected on {at:%Y-%m-%d %H:%M} UTC in a home that has since been withdrawn "
+            "and erased; it is not stored. Do not send it again.")
+    key = store.put_file(upload.path, sha)  # durable before the row commits
     within = placed.segment_end is not None and placed.segment_end >= at
     if not within:
         # Usually the detection came after the last heartbeat: the next one decides.
@@ -399,40 +419,44 @@ def ingest_alert(session: Session, *, store: ClipStore, settings: Settings, devi
     return IngestResult(alert_id, clip_id, False)
 
 
-def _insert_ignoring_conflict(table: Any, columns: list[str]) -> dict[str, Any]:
-    """Per dialect: INSERT of one row that does nothing on a unique conflict on `columns`,
-    returning the new id (no row when it did nothing)."""
+def _insert_ignoring_conflict(table: Any, columns: list[str], where: Any = None) -> dict[str, Any]:
+    """Per dialect: INSERT of one row that does nothing on a unique conflict on `columns` (of a
+    partial unique index when `where` is given), returning the new id (no row when it did nothing)."""
     return {
-        name: module.insert(table).on_conflict_do_nothing(index_elements=columns).returning(table.c.id)
+        name: module.insert(table).on_conflict_do_nothing(index_elements=columns, index_where=where)
+        .returning(table.c.id)
         for name, module in (("sqlite", sqlite_dialect), ("postgresql", postgresql_dialect))
     }
 
 
 _INSERT_ALERT = _insert_ignoring_conflict(Alert.__table__, ["device_id", "event_id"])
-_INSERT_CLIP = _insert_ignoring_conflict(Clip.__table__, ["sha256"])
-_CLIP_ID_BY_SHA = select(Clip.id, Clip.erased_at).where(Clip.sha256 == bindparam("sha_v"))
+# Only live clip rows are unique by SHA-256 (ix_clip_sha256_live): an erased row keeps its digest.
+_INSERT_CLIP = _insert_ignoring_conflict(Clip.__table__, ["sha256"], Clip.__table__.c.erased_at.is_(None))
+_LIVE_CLIP_BY_SHA = select(Clip.id).where(Clip.sha256 == bindparam("sha_v"), Clip.erased_at.is_(None))
 
 
 def _clip_for(conn: Connection, clip_id: int | None, sha: str, key: str, info: audio.ClipInfo,
               size: int) -> int:
-    """The id of the clip row for these bytes: the stored one (brought back if its file had been
-    erased), or a new one."""
-    if clip_id is None:
-        clip_id = conn.scalar(
-            _INSERT_CLIP[conn.dialect.name],
-            {"sha256": sha, "storage_key": key, "format": info.format, "subtype": info.subtype,
-             "sample_rate_hz": info.sample_rate_hz, "channels": info.channels, "frames": info.frames,
-             "duration_s": info.duration_s, "peak_dbfs": info.peak_dbfs, "rms_dbfs": info.rms_dbfs,
-             "clipped_fraction": info.clipped_fraction, "size_bytes": size})
+    """The id of the live clip row for these bytes: the stored one, or a new one.
+
+    An erased row is never brought back: its alerts stay erased, and identical bytes sent later
+    get a row of their own.
+    """
+    for _ in range(3):  # a row found may be erased before it is used, or a new one won the insert
+        if clip_id is None:
+            clip_id = conn.scalar(
+                _INSERT_CLIP[conn.dialect.name],
+                {"sha256": sha, "storage_key": key, "format": info.format, "subtype": info.subtype,
+                 "sample_rate_hz": info.sample_rate_hz, "channels": info.channels, "frames": info.frames,
+                 "duration_s": info.duration_s, "peak_dbfs": info.peak_dbfs, "rms_dbfs": info.rms_dbfs,
+                 "clipped_fraction": info.clipped_fraction, "size_bytes": size})
+            if clip_id is not None:
+                return clip_id
+        # The bytes are stored already (found before, or another device's upload just won the insert).
+        clip_id = conn.scalar(_LIVE_CLIP_BY_SHA, {"sha_v": sha})
         if clip_id is not None:
-            return clip_id
-    # The bytes are stored already (found before, or another device's upload just won the insert).
-    row = conn.execute(_CLIP_ID_BY_SHA, {"sha_v": sha}).one()
-    if row.erased_at is not None:
-        c = Clip.__table__.c
-        conn.execute(update(Clip.__table__).where(c.id == row.id)
-                     .values(erased_at=None, erased_reason=None, storage_key=key))
-    return int(row.id)
+            return int(clip_id)
+    raise RuntimeError(f"no live clip row for {sha} after three attempts")
 
 
 def list_alerts(session: Session, *, limit: int = 200, offset: int = 0, device_id: int | None = None,
@@ -456,5 +480,11 @@ def count_alerts(session: Session) -> int:
     return session.scalar(select(func.count(Alert.id))) or 0
 
 
-def mark_clip_erased(session: Session, clip: Clip, reason: str) -> None:
-    session.execute(update(Clip).where(Clip.id == clip.id).values(erased_at=utcnow(), erased_reason=reason))
+def mark_clip_erased(session: Session, clip: Clip, reason: str, at: dt.datetime | None = None) -> None:
+    """Mark a clip row erased (its file already removed). The row is never brought back: identical
+    bytes sent later get a new row (see ``_clip_for``)."""
+    at = at or utcnow()
+    session.execute(update(Clip).where(Clip.id == clip.id).values(erased_at=at, erased_reason=reason)
+                    .execution_options(synchronize_session=False))
+    set_committed_value(clip, "erased_at", at)
+    set_committed_value(clip, "erased_reason", reason)

@@ -123,7 +123,8 @@ def cmd_storage_purge(args: argparse.Namespace, settings: Settings) -> int:
                     "applied": report.applied,
                     "deleted": report.deleted,
                     "failed": list(report.failed),
-                    "kept_without_consent": report.kept_without_consent,
+                    "waiting_no_home": report.waiting_no_home,
+                    "spools": list(report.spools),
                     "items": [
                         {
                             "clip_id": i.clip_id,
@@ -142,22 +143,25 @@ def cmd_storage_purge(args: argparse.Namespace, settings: Settings) -> int:
                 f"{'removed' if report.applied else 'would remove'} clip {i.clip_id} ({i.reason}; "
                 f"homes {', '.join(i.homes) or '-'}; last received {i.received_at:%Y-%m-%d})"
             )
+        for key in report.spools:
+            print(f"{'removed' if report.applied else 'would remove'} upload spool left by a crash: {key}")
         n = report.by_reason
         if report.applied:
             print(
-                f"{report.deleted} clip file(s) removed ({n['retention']} past retention, {n['private']} "
-                f"flagged private)"
+                f"{report.deleted} clip file(s) removed ({n['retention']} past retention, {n['no_home']} "
+                f"with no home past the trial's limit, {n['private']} flagged private)"
                 + (f"; {len(report.failed)} could not be removed" if report.failed else "")
             )
         else:
             print(
                 f"dry run: {len(report.items)} clip file(s) would be removed ({n['retention']} past "
-                f"retention, {n['private']} flagged private); run again with --apply to remove them"
+                f"retention, {n['no_home']} with no home past the trial's limit, {n['private']} flagged "
+                "private); run again with --apply to remove them"
             )
-        if report.kept_without_consent:
+        if report.waiting_no_home:
             print(
-                f"{report.kept_without_consent} clip(s) kept: no home or no consent on record to set "
-                "a retention"
+                f"{report.waiting_no_home} clip(s) with no home kept until the trial's limit for such "
+                "clips (unassigned_clip_retention_days) has passed"
             )
     return 1 if report.failed else 0
 
@@ -189,7 +193,8 @@ def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersActio
 
     sp = storage.add_parser(
         "purge",
-        help="remove clips past their home's retention, and clips flagged private (dry run unless --apply)",
+        help="remove clips past their home's retention (or the trial's limit for clips with no home), "
+        "clips flagged private and crashed upload spools (dry run unless --apply)",
     )
     sp.add_argument("--apply", action="store_true", help="remove the files (otherwise only list them)")
     sp.add_argument("--json", action="store_true")

@@ -2,7 +2,8 @@
 
 Erasure removes a household's personal data and its audio (files deleted from the clip store
 and checked gone) and keeps the de-identified alert rows the pilot's figures need. It takes two
-steps: ``plan_erasure`` + ``erasure_ticket`` show what will happen, ``erase_home`` acts.
+steps: ``plan_erasure`` + ``erasure_ticket`` show what will happen, ``erase_home`` acts; running it
+again on an erased home removes whatever arrived since (and nothing else).
 """
 
 from __future__ import annotations
@@ -14,17 +15,20 @@ import logging
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from sqlalchemy import select, update
+from sqlalchemy import event, select, update
+from sqlalchemy.engine import Engine
 from sqlalchemy.orm import Session
 
 from server import audit
 from server.db import utcnow
+from server.devices import service as devices_service
 from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, Clip
-from server.errors import AppError, Conflict, ValidationFailed
+from server.errors import AppError, ValidationFailed
 from server.households import service
 from server.households.models import Consent, Home, HomeContact, HomeState, HomeStateChange, StagedEvent
 from server.review.models import Verdict
+from server.trials.models import Trial
 
 log = logging.getLogger(__name__)
 
@@ -71,27 +75,26 @@ def _home_clips(session: Session, home: Home) -> tuple[list[Clip], list[Clip]]:
     return own, shared
 
 
+def _verdict_notes(home: Home):  # type: ignore[no-untyped-def]
+    """The reviewer notes erasure clears: plan and erasure use this same condition."""
+    return (
+        Verdict.alert_id.in_(select(Alert.id).where(Alert.home_id == home.id)),
+        Verdict.note.is_not(None),
+        Verdict.note != "",
+    )
+
+
+def _timeline_notes(home: Home):  # type: ignore[no-untyped-def]
+    return (HomeStateChange.home_id == home.id, HomeStateChange.note.is_not(None), HomeStateChange.note != "")
+
+
 def _counts(session: Session, home: Home) -> dict[str, int]:
     alert_ids = select(Alert.id).where(Alert.home_id == home.id)
     return {
         "alerts": len(list(session.scalars(alert_ids))),
-        "verdict_notes": len(
-            list(
-                session.scalars(
-                    select(Verdict.id).where(
-                        Verdict.alert_id.in_(alert_ids), Verdict.note.is_not(None), Verdict.note != ""
-                    )
-                )
-            )
-        ),
+        "verdict_notes": len(list(session.scalars(select(Verdict.id).where(*_verdict_notes(home))))),
         "timeline_notes": len(
-            list(
-                session.scalars(
-                    select(HomeStateChange.id).where(
-                        HomeStateChange.home_id == home.id, HomeStateChange.note.is_not(None)
-                    )
-                )
-            )
+            list(session.scalars(select(HomeStateChange.id).where(*_timeline_notes(home))))
         ),
         "staged": len(list(session.scalars(select(StagedEvent.id).where(StagedEvent.home_id == home.id)))),
     }
@@ -122,7 +125,8 @@ def plan_erasure(session: Session, home: Home) -> ErasurePlan:
     if shared:
         keep.append(
             f"{len(shared)} clip file{'s' if len(shared) != 1 else ''} whose identical bytes also "
-            "belong to an alert outside this home; only that other alert keeps it"
+            "belong to an alert outside this home; only that other alert keeps it (this home's "
+            "alerts lose their audio all the same)"
         )
     keep.append("the audit trail, which records this erasure")
     return ErasurePlan(
@@ -180,6 +184,9 @@ class ErasureResult:
     clips_shared: int
     alerts_kept: int
     failed: tuple[str, ...] = field(default=())  # storage keys that would not go away
+    verdict_notes: int = 0  # reviewer notes cleared
+    timeline_notes: int = 0  # timeline notes cleared
+    repeat: bool = False  # the home had been erased before: only what arrived since was removed
 
 
 def _forget_images(cache_dir: Path | None, sha256: str) -> None:
@@ -202,13 +209,75 @@ def _delete_clip_files(
     for clip in clips:
         _forget_images(cache_dir, clip.sha256)
         if store.delete(clip.storage_key) and not store.exists(clip.storage_key):
-            clip.erased_at, clip.erased_reason = now, reason
+            # Erased for good: identical bytes sent later get a clip row of their own.
+            devices_service.mark_clip_erased(session, clip, reason, now)
             deleted += 1
         else:
             failed.append(clip.storage_key)
             log.error("clip file %s could not be removed", clip.storage_key)
     session.flush()
     return deleted, failed
+
+
+def _detach_shared(session: Session, home: Home, shared: list[Clip], now: dt.datetime) -> int:
+    """Point this home's alerts that share a clip with another home at an erased copy of its row.
+
+    The file stays for the other alert; this home's alerts answer ``clip_erased`` from now on,
+    whatever happens to the shared row later. Returns how many alerts were moved.
+    """
+    moved = 0
+    columns = [c.key for c in Clip.__table__.columns if c.key not in ("id", "erased_at", "erased_reason")]
+    for clip in shared:
+        marker = Clip(**{k: getattr(clip, k) for k in columns}, erased_at=now, erased_reason="erasure")
+        session.add(marker)
+        session.flush()
+        alerts = list(
+            session.scalars(select(Alert).where(Alert.home_id == home.id, Alert.clip_id == clip.id))
+        )
+        for alert in alerts:
+            alert.clip_id = marker.id
+            alert.clip = marker
+        moved += len(alerts)
+    session.flush()
+    return moved
+
+
+def _rowcount(result: object) -> int:
+    """Rows an UPDATE changed (a CursorResult's rowcount; typed loosely by SQLAlchemy)."""
+    return int(getattr(result, "rowcount", 0))
+
+
+def _checkpoint_after_commit(session: Session) -> None:
+    """SQLite: when the erasure commits, fold the write-ahead log into the database file and
+    truncate it, so the erased rows do not linger in the log (``secure_delete``, set on every
+    connection, zeroes them in the file itself). PostgreSQL needs VACUUM instead (DEVELOPERS.md).
+
+    A session bound to a connection (an outer transaction, as in tests) is left alone: the
+    checkpoint could not finish while that transaction is open.
+    """
+    bind = session.get_bind()
+    if bind.dialect.name != "sqlite" or not isinstance(bind, Engine):
+        return
+    engine = bind
+
+    def checkpoint(_session: Session) -> None:
+        try:
+            raw = engine.raw_connection()
+            try:
+                cur = raw.cursor()
+                busy, log_frames, done = cur.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()
+                cur.close()
+            finally:
+                raw.close()
+        except Exception:  # the erasure itself has committed; a later checkpoint finishes the job
+            log.exception("write-ahead log checkpoint after erasure failed")
+            return
+        if busy:
+            log.warning(
+                "write-ahead log checkpoint after erasure was blocked (%s of %s frames)", done, log_frames
+            )
+
+    event.listen(session, "after_commit", checkpoint, once=True)
 
 
 def erase_home(
@@ -228,13 +297,16 @@ def erase_home(
 
     Needs the ticket from the first step and the home code typed again. A file that cannot be
     removed leaves the erasure incomplete (``complete`` False, logged); running it again finishes it.
+    Running it on a home already erased is allowed: it removes what arrived since (a reviewer's
+    note, say) and keeps the first erasure's date. Its devices stay registered for reuse elsewhere:
+    the home's installations end at the withdrawal, and a clip detected during one of them is
+    refused on arrival (``devices.service.ClipOfErasedHome``).
     """
     now = now or utcnow()
     check_confirm_code(home, confirm_code)
     _check_ticket(secret, home, ticket, now)
-    if home.erased_at is not None:
-        raise Conflict(f"{home.code} was already erased on {home.erased_at:%Y-%m-%d}.", code="home_erased")
-    if home.state not in (HomeState.withdrawn, HomeState.declined):
+    repeat = home.erased_at is not None
+    if not repeat and home.state not in (HomeState.withdrawn, HomeState.declined):
         service.transition(
             session, home, HomeState.withdrawn, actor=actor, at=max(now, home.state_changed_at), note=None
         )
@@ -242,24 +314,29 @@ def erase_home(
     if contact is not None:
         session.delete(contact)
     alert_ids = select(Alert.id).where(Alert.home_id == home.id)
-    session.execute(
-        update(Verdict)
-        .where(Verdict.alert_id.in_(alert_ids))
-        .values(note=None)
-        .execution_options(synchronize_session=False)
+    verdict_notes = _rowcount(
+        session.execute(
+            update(Verdict)
+            .where(*_verdict_notes(home))
+            .values(note=None)
+            .execution_options(synchronize_session=False)
+        )
     )
-    session.execute(
-        update(HomeStateChange)
-        .where(HomeStateChange.home_id == home.id)
-        .values(note=None)
-        .execution_options(synchronize_session=False)
+    timeline_notes = _rowcount(
+        session.execute(
+            update(HomeStateChange)
+            .where(*_timeline_notes(home))
+            .values(note=None)
+            .execution_options(synchronize_session=False)
+        )
     )
     session.flush()
     own, shared = _home_clips(session, home)
     deleted, failed = _delete_clip_files(session, store, own, "erasure", cache_dir, now)
+    _detach_shared(session, home, shared, now)
     kept = len(list(session.scalars(alert_ids)))
     complete = not failed
-    if complete:
+    if complete and not repeat:
         home.erased_at = now
     session.flush()
     # Expire what the bulk updates changed, so later reads in this session see it.
@@ -278,11 +355,26 @@ def erase_home(
             "clips_deleted": deleted,
             "clips_shared_kept": len(shared),
             "alerts_kept": kept,
+            "verdict_notes_cleared": verdict_notes,
+            "timeline_notes_cleared": timeline_notes,
+            "repeat": repeat,
             "complete": complete,
             "note": (note or "").strip()[:200] or None,
         },
     )
-    return ErasureResult(home.code, complete, contact is not None, deleted, len(shared), kept, tuple(failed))
+    _checkpoint_after_commit(session)
+    return ErasureResult(
+        home.code,
+        complete,
+        contact is not None,
+        deleted,
+        len(shared),
+        kept,
+        tuple(failed),
+        verdict_notes,
+        timeline_notes,
+        repeat,
+    )
 
 
 # --- purge ---------------------------------------------------------------------------------------
@@ -292,7 +384,7 @@ def erase_home(
 class PurgeItem:
     clip_id: int
     storage_key: str
-    reason: str  # "private" | "retention"
+    reason: str  # "private" | "retention" | "no_home"
     homes: tuple[str, ...]  # codes of the homes whose alerts used the clip
     received_at: dt.datetime  # the latest receipt among its alerts
 
@@ -303,48 +395,64 @@ class PurgeReport:
     items: tuple[PurgeItem, ...]
     deleted: int
     failed: tuple[str, ...]
-    kept_without_consent: int  # clips of alerts with no home or no consent on record: never purged here
+    # Clips with an alert that has no home's consent behind it (unassigned, or a home with no
+    # consent on record), still inside their trial's ``unassigned_clip_retention_days``.
+    waiting_no_home: int
+    spools: tuple[str, ...] = ()  # upload spool files left by a crash (removed when applied)
 
     @property
     def by_reason(self) -> dict[str, int]:
-        out = {"private": 0, "retention": 0}
+        out = {"private": 0, "retention": 0, "no_home": 0}
         for i in self.items:
             out[i.reason] += 1
         return out
 
 
 def purge_candidates(session: Session, now: dt.datetime) -> tuple[list[PurgeItem], int]:
-    """Clips of alerts flagged private, and clips all of whose alerts are past their home's retention."""
+    """Clips of alerts flagged private, and clips all of whose alerts are past their retention.
+
+    An alert's retention is its home's latest consent (``retention_days`` from receipt); an alert
+    with no home, or of a home with no consent on record, is kept for its trial's
+    ``unassigned_clip_retention_days``. A clip goes when every alert using it is past its own.
+    Returns the items and how many clips wait only on the second rule.
+    """
     consents: dict[int, int] = {}
     for consent_home, days in session.execute(
         select(Consent.home_id, Consent.retention_days).order_by(Consent.recorded_at, Consent.id)
     ):
         consents[consent_home] = days  # the latest consent wins
+    no_home_days = {t: d for t, d in session.execute(select(Trial.id, Trial.unassigned_clip_retention_days))}
     codes = {hid: code for hid, code in session.execute(select(Home.id, Home.code))}
     rows = session.execute(
-        select(Clip.id, Clip.storage_key, Alert.home_id, Alert.received_at, Alert.private_flag)
+        select(
+            Clip.id, Clip.storage_key, Alert.home_id, Alert.trial_id, Alert.received_at, Alert.private_flag
+        )
         .join(Alert, Alert.clip_id == Clip.id)
         .where(Clip.erased_at.is_(None))
         .order_by(Clip.id)
     )
-    per_clip: dict[int, list[tuple[str, int | None, dt.datetime, bool]]] = {}
-    for clip_id, key, home_id, received_at, private in rows:
-        per_clip.setdefault(clip_id, []).append((key, home_id, received_at, bool(private)))
+    per_clip: dict[int, list[tuple[str, int | None, int, dt.datetime, bool]]] = {}
+    for clip_id, key, home_id, trial_id, received_at, private in rows:
+        per_clip.setdefault(clip_id, []).append((key, home_id, trial_id, received_at, bool(private)))
     items: list[PurgeItem] = []
-    no_consent = 0
+    waiting_no_home = 0
     for clip_id, alerts in per_clip.items():
         key = alerts[0][0]
-        homes = tuple(sorted({codes[h] for _, h, _, _ in alerts if h is not None}))
-        latest = max(r for _, _, r, _ in alerts)
-        if any(p for _, _, _, p in alerts):
+        homes = tuple(sorted({codes[h] for _, h, _, _, _ in alerts if h is not None}))
+        latest = max(r for _, _, _, r, _ in alerts)
+        if any(p for *_, p in alerts):
             items.append(PurgeItem(clip_id, key, "private", homes, latest))
             continue
-        if any(h is None or h not in consents for _, h, _, _ in alerts):
-            no_consent += 1
-            continue
-        if all(r + dt.timedelta(days=consents[h]) <= now for _, h, r, _ in alerts if h is not None):
-            items.append(PurgeItem(clip_id, key, "retention", homes, latest))
-    return items, no_consent
+        no_home = [h is None or h not in consents for _, h, _, _, _ in alerts]
+        due = [
+            r + dt.timedelta(days=no_home_days[t] if n else consents[h]) <= now  # type: ignore[index]
+            for (_, h, t, r, _), n in zip(alerts, no_home, strict=True)
+        ]
+        if all(due):
+            items.append(PurgeItem(clip_id, key, "no_home" if any(no_home) else "retention", homes, latest))
+        elif any(n and not d for n, d in zip(no_home, due, strict=True)):
+            waiting_no_home += 1
+    return items, waiting_no_home
 
 
 def purge_clips(
@@ -356,17 +464,25 @@ def purge_clips(
     actor: service.Actor = "cli",
     cache_dir: Path | None = None,
 ) -> PurgeReport:
-    """Dry run by default: list what would go. With ``apply`` delete the files and mark the rows."""
+    """Dry run by default: list what would go. With ``apply`` delete the files and mark the rows.
+
+    Upload spool files left by a crash (older than ``ClipStore.SPOOL_GRACE``) are listed and, when
+    applied, removed too: they hold raw audio that no row accounts for.
+    """
     now = now or utcnow()
-    items, no_consent = purge_candidates(session, now)
+    items, waiting = purge_candidates(session, now)
+    spools = store.stale_spools()
     deleted, failed = 0, []
+    if apply and spools:
+        spools = store.remove_spools(spools)
     if apply and items:
-        for reason in ("private", "retention"):
+        for reason in ("private", "retention", "no_home"):
             ids = [i.clip_id for i in items if i.reason == reason]
             clips = list(session.scalars(select(Clip).where(Clip.id.in_(ids)))) if ids else []
             d, f = _delete_clip_files(session, store, clips, reason, cache_dir, now)
             deleted += d
             failed += f
+    if apply and (items or spools):
         audit.record(
             session,
             actor,
@@ -378,6 +494,8 @@ def purge_clips(
                 "failed": len(failed),
                 "private": sum(1 for i in items if i.reason == "private"),
                 "retention": sum(1 for i in items if i.reason == "retention"),
+                "no_home": sum(1 for i in items if i.reason == "no_home"),
+                "spools_removed": len(spools),
             },
         )
-    return PurgeReport(apply, tuple(items), deleted, tuple(failed), no_consent)
+    return PurgeReport(apply, tuple(items), deleted, tuple(failed), waiting, tuple(spools))

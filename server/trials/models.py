@@ -43,6 +43,9 @@ class Trial(Base):
     # Lifecycle states whose homes count toward the recruitment quota.
     quota_states: Mapped[list[str]] = mapped_column(
         default=lambda: ["consented", "installed", "active"])
+    # Days to keep the clips of alerts with no home's consent behind them (unassigned alerts, or a
+    # home with no consent on record); `trialhouse storage purge` removes them after that.
+    unassigned_clip_retention_days: Mapped[int] = mapped_column(default=30, server_default="30")
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
     def __repr__(self) -> str:

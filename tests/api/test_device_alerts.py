@@ -919,6 +919,31 @@ def test_attribution_corrects_a_known_device_clock_skew(clocked, client, session
     assert a.home_id == inst_a.home_id
 
 
+def test_clip_heard_in_an_erased_home_is_refused_before_it_reaches_the_store(  # type: ignore[no-untyped-def]
+        seeded, client, session: Session, trial, device, store: ClipStore) -> None:
+    """A device that buffered while offline sends after its home was erased: 410 ``home_erased``, the
+    same on a resend, so the device can drop it. The clip part comes before the meta, so its bytes
+    were spooled; the spool is deleted and the store never sees them."""
+    dev, tok = device
+    home = factories.make_home(session, trial, state="withdrawn")
+    ended = NOW - dt.timedelta(hours=2)
+    factories.make_installation(session, dev, home, installed_at=NOW - dt.timedelta(days=3), removed_at=ended)
+    home.erased_at = NOW - dt.timedelta(hours=1)
+    session.flush()
+    clip = sine(seed=197)
+    for _ in range(2):
+        heard = ended - dt.timedelta(hours=1)
+        r = post_alert(client, tok, meta(event_id="buffered", detected_at=heard.isoformat()), clip, clip_first=True)
+        assert_rejected(r, 410, "home_erased", client, session, store, seeded)
+    assert not store.exists(ClipStore.key_for(hashlib.sha256(clip).hexdigest()))
+    # The device stays usable: a detection after the installation ended is stored, unassigned.
+    later = ended + dt.timedelta(minutes=5)
+    r = post_alert(client, tok, meta(event_id="later", detected_at=later.isoformat()), clip, clip_first=True)
+    assert r.status_code == 201, r.text
+    a = session.get(Alert, r.json()["alert_id"])
+    assert a is not None and a.home_id is None and store.exists(a.clip.storage_key)
+
+
 # --- durability -------------------------------------------------------------------------------
 
 def test_clip_file_is_fsynced_and_in_place_before_the_row_commits(clocked, client, token: str,
