@@ -130,6 +130,9 @@ def _configure_sqlite(engine: Engine) -> None:
         dbapi_conn.isolation_level = None
         cur = dbapi_conn.cursor()
         cur.execute("PRAGMA foreign_keys=ON")
+        # Deleted rows are overwritten with zeros, so erased personal data does not stay readable
+        # in free pages of the database file (the erasure also truncates the write-ahead log).
+        cur.execute("PRAGMA secure_delete=ON")
         cur.execute("PRAGMA journal_mode=WAL")
         # FULL: a commit that returned has survived a power cut (WAL is fsynced on commit).
         cur.execute("PRAGMA synchronous=FULL")
@@ -152,10 +155,6 @@ def _configure_sqlite(engine: Engine) -> None:
                 raise
         else:
             conn.exec_driver_sql("BEGIN")
-
-        # Deleted rows are overwritten with zeros, so erased personal data does not stay readable
-        # in free pages of the database file (the erasure also truncates the write-ahead log).
-        cur.execute("PRAGMA secure_delete=ON")
 
 def writer_engine(engine: Engine) -> Engine:
     """The same pool, with write transactions taking SQLite's lock at BEGIN (no-op elsewhere)."""
