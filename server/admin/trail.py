@@ -17,12 +17,12 @@ from sqlalchemy import ColumnElement, and_, func, or_, select
 from sqlalchemy.orm import Session
 
 from server import audit
-from server.admin.csvcell import safe_cell
 from server.admin.service import has_control_characters
 from server.auth.models import AuditEvent, User
 from server.errors import ValidationFailed
 from server.households import service as households_service
 from server.households.models import Installation
+from server.web.csvsafe import safe_cell
 
 PER_PAGE = 50
 MAX_PER_PAGE = 500

@@ -14,8 +14,8 @@ from sqlalchemy.orm import Session
 
 from server import audit
 from server.admin import trail
-from server.admin.csvcell import safe_cell
 from server.auth.models import AuditEvent
+from server.web.csvsafe import safe_cell
 from tests import factories
 from tests.conftest import utc
 
