@@ -248,61 +248,72 @@ def compare_groups(
     return result(statistic, q, p_joint, None)
 
 
-def _pair_t(xa: Floats, ta: Floats, xb: Floats, tb: Floats, delta: float) -> float:
-    """Score statistic for log(rate_a / rate_b) = delta, home-clustered variance (CR1, kept at or
-    above the Poisson one), for per-home sums of the two groups."""
+def _pair_t(xa: Floats, ta: Floats, xb: Floats, tb: Floats, delta: Floats | float) -> Floats:
+    """Score statistic for log(rate_a / rate_b) = delta (a scalar or an array of values), with the
+    home-clustered variance (CR1, kept at or above the Poisson one), for per-home sums of the two
+    groups."""
+    d = np.atleast_1d(np.asarray(delta, dtype=np.float64))[:, None]
     g = len(xa)
-    ratio = math.exp(delta)
+    ratio = np.exp(d)
     big_ta, big_tb = float(ta.sum()), float(tb.sum())
     n = float(xa.sum() + xb.sum())
     w = ratio * big_ta / (ratio * big_ta + big_tb)
     r0 = n / (ratio * big_ta + big_tb)
     per_home = (xa - r0 * ratio * ta) - w * (xa + xb - r0 * (ratio * ta + tb))
-    score = float(xa.sum()) - w * n
-    var = max(g / (g - 1) * float((per_home**2).sum()), n * w * (1 - w))
-    return score / math.sqrt(var) if var > 0 else 0.0
+    score = (float(xa.sum()) - w * n)[:, 0]
+    var = np.maximum(g / (g - 1) * (per_home**2).sum(axis=1), (n * w * (1 - w))[:, 0])
+    out: Floats = np.divide(score, np.sqrt(var), out=np.zeros_like(score), where=var > 0)
+    return out
 
 
 def _pair_test(
     xa: Floats, ta: Floats, xb: Floats, tb: Floats, df: int, confidence_level: float
 ) -> tuple[float, float, float, float]:
-    """Ratio, interval and p-value of rate a over rate b from one score statistic (`_pair_t`):
-    p = 2 P(T_df > |t(0)|); the interval is every ratio whose |t| stays within the t quantile,
-    so p < 1 - level exactly when the interval leaves out 1."""
+    """Ratio, interval and p-value of rate a over rate b from one score statistic (`_pair_t`).
+
+    The interval is the stretch of log ratios around the estimate where |t| stays within the t
+    quantile (with a clustered variance t need not be monotone, so the stretch ends at the first
+    crossing). The p-value is 2 P(T_df > m), m the largest |t| between the estimate and a ratio of
+    1; so p < 1 - level exactly when the interval leaves out 1. When t is monotone, m = |t(0)|.
+    """
     xa_sum, xb_sum = float(xa.sum()), float(xb.sum())
     big_ta, big_tb = float(ta.sum()), float(tb.sum())
     q = float(stats.t.ppf(1 - (1 - confidence_level) / 2, df))
-    p = float(2 * stats.t.sf(abs(_pair_t(xa, ta, xb, tb, 0.0)), df))
     if xa_sum > 0 and xb_sum > 0:
         centre = math.log((xa_sum / big_ta) / (xb_sum / big_tb))
-    elif xa_sum > 0:
-        centre = _BOUND
     else:
-        centre = -_BOUND
+        centre = _BOUND if xa_sum > 0 else -_BOUND
+    centre = min(max(centre, -_BOUND), _BOUND)
+    grid = np.unique(np.concatenate([np.arange(-_BOUND, _BOUND + _STEP / 2, _STEP), [0.0, centre]]))
+    stat = _pair_t(xa, ta, xb, tb, grid)
+    at = int(np.searchsorted(grid, centre))
+    zero = int(np.searchsorted(grid, 0.0))
+    between = stat[min(at, zero) : max(at, zero) + 1]
+    p = float(2 * stats.t.sf(float(np.abs(between).max()), df))
 
-    def edge(sign: float) -> float:
-        # t(delta) falls from + to - as delta grows; find where it crosses -sign * q.
-        def f(d: float) -> float:
-            return _pair_t(xa, ta, xb, tb, d) + sign * q
+    def edge(direction: int) -> float:
+        i = at
+        while 0 <= i + direction < len(grid):
+            j = i + direction
+            if abs(stat[j]) > q:
+                target = math.copysign(q, stat[j])
 
-        step = 0.5
-        inner = centre
-        while abs(inner - centre) < 2 * _BOUND:
-            outer = inner + sign * step
-            if abs(outer) > _BOUND:
-                return sign * math.inf
-            if f(inner) * f(outer) <= 0:
-                return float(optimize.brentq(f, min(inner, outer), max(inner, outer), xtol=1e-10))
-            inner, step = outer, step * 2
-        return sign * math.inf
+                def f(d: float) -> float:
+                    return float(_pair_t(xa, ta, xb, tb, d)[0]) - target
 
-    low = 0.0 if xa_sum == 0 else math.exp(edge(-1.0))
-    high = math.inf if xb_sum == 0 else math.exp(edge(1.0))
+                lo, hi = sorted((grid[i], grid[j]))
+                return float(optimize.brentq(f, lo, hi, xtol=1e-10)) if f(lo) * f(hi) < 0 else float(grid[j])
+            i = j
+        return direction * math.inf
+
+    low = 0.0 if xa_sum == 0 else math.exp(edge(-1))
+    high = math.inf if xb_sum == 0 else math.exp(edge(1))
     est = (xa_sum / big_ta) / (xb_sum / big_tb) if xb_sum > 0 else math.inf
     return est, low, high, p
 
 
 _BOUND = 30.0
+_STEP = 0.02
 Floats = np.ndarray
 
 
