@@ -46,6 +46,9 @@ class Trial(Base):
     # Days to keep the clips of alerts with no home's consent behind them (unassigned alerts, or a
     # home with no consent on record); `trialhouse storage purge` removes them after that.
     unassigned_clip_retention_days: Mapped[int] = mapped_column(default=30, server_default="30")
+    # Alerts of one sound class from one home at most this many seconds after the first alert of
+    # a disturbance belong to it: the household was disturbed once (see analytics/disturbances.py).
+    disturbance_window_s: Mapped[float] = mapped_column(Float, default=60.0, server_default="60")
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
 
     def __repr__(self) -> str:

@@ -20,7 +20,7 @@ _CLASS = re.compile(r"^[a-z][a-z0-9_]{1,63}$")
 def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
                  sound_classes: list[str], ends_on: dt.date | None = None,
                  fa_target_per_home_month: float = 1.0, timezone: str = "UTC",
-                 actor: object = "cli") -> Trial:
+                 disturbance_window_s: float = 60.0, actor: object = "cli") -> Trial:
     code = code.strip().upper()
     errors: dict[str, str] = {}
     if not _CODE.match(code):
@@ -33,6 +33,8 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
         errors["ends_on"] = "The trial cannot end before it starts."
     if not (fa_target_per_home_month > 0):
         errors["fa_target_per_home_month"] = "The false-alarm target must be a positive rate."
+    if not (0 <= disturbance_window_s <= 3600):
+        errors["disturbance_window_s"] = "The disturbance window must be 0 to 3600 seconds."
     try:
         zoneinfo.ZoneInfo(timezone)
     except (zoneinfo.ZoneInfoNotFoundError, ValueError):
@@ -43,7 +45,8 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
         raise Conflict(f"A trial with code {code} already exists.", code="trial_exists")
     trial = Trial(code=code, name=name or code, starts_on=starts_on, ends_on=ends_on,
                   sound_classes=list(dict.fromkeys(sound_classes)),
-                  fa_target_per_home_month=fa_target_per_home_month, timezone=timezone)
+                  fa_target_per_home_month=fa_target_per_home_month, timezone=timezone,
+                  disturbance_window_s=float(disturbance_window_s))
     session.add(trial)
     session.flush()
     # Every trial starts with the default household attribute catalogue.
