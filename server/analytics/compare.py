@@ -298,7 +298,7 @@ def _pair_test(
             if abs(stat[j]) > q:
                 target = math.copysign(q, stat[j])
 
-                def f(d: float) -> float:
+                def f(d: float, target: float = target) -> float:
                     return float(_pair_t(xa, ta, xb, tb, d)[0]) - target
 
                 lo, hi = sorted((grid[i], grid[j]))

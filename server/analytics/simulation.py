@@ -162,7 +162,7 @@ class Check:
     """One line of the study: what is measured, under which truth, against which goal."""
 
     name: str
-    measure: str  # "coverage" (want >= goal) or "flag rate" (want <= goal)
+    measure: str  # "coverage" (want >= goal), "flag rate" (want <= goal) or "power" (shown only)
     spec: PilotSpec
     run: Callable[[Pilot, PilotSpec], bool]
     goal: float
@@ -224,6 +224,16 @@ def study_checks() -> list[Check]:
             )
         )
     for homes in (10, 40):
+        checks.append(
+            Check(
+                f'firmware "differs", new firmware doubles every home\'s rate, {homes} homes, shape 0.5',
+                "power",
+                PilotSpec(homes=homes, shape=0.5, firmware_effect=2.0),
+                firmware_differs,
+                float("nan"),
+            )
+        )
+    for homes in (10, 40):
         equal = PilotSpec(homes=homes, shape=None)
         checks.append(
             Check(
@@ -265,7 +275,12 @@ def run_check(check: Check, rng: np.random.Generator, pilots: int) -> Outcome:
     hits = sum(check.run(simulate_pilot(rng, check.spec), check.spec) for _ in range(pilots))
     value = hits / pilots
     se = float(np.sqrt(max(value * (1 - value), 1e-12) / pilots))
-    passed = value >= check.goal if check.measure == "coverage" else value <= check.goal
+    if check.measure == "coverage":
+        passed = value >= check.goal
+    elif check.measure == "flag rate":
+        passed = value <= check.goal
+    else:
+        passed = True
     return Outcome(check.name, check.measure, check.goal, pilots, value, se, bool(passed))
 
 
