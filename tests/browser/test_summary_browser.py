@@ -96,6 +96,15 @@ def test_summary_page_and_export_render_with_charts(server, page, tmp_path: Path
     assert "not a certified life-safety device" in page.inner_text("#caution")
     smoke = page.locator("#smoke_alarm-week")
     assert "3 of 4" in smoke.inner_text()  # staged events detected
+    # The verdict carries the one rule; four homes are too few for a home-level interval; the
+    # device tables say they are per device-month; disturbances stand beside alerts.
+    to_date = page.locator("#smoke_alarm-to_date")
+    assert "Met when the upper end of the 95% confidence interval" in to_date.locator("p.rule").inner_text()
+    assert "too few homes to judge spread" in to_date.locator("p.home-level").inner_text()
+    assert "device-month" in to_date.inner_text()
+    assert "Disturbances (judged against the target)" in to_date.locator("table.side-by-side").inner_text()
+    assert "Unusable clips: 0" in to_date.locator("p.unusable-line").inner_text()
+    assert "Disturbance:" in page.inner_text("#definitions + .defs")
     # Smoke alarm has all five charts (trend, and per period the homes and the threshold trade-off);
     # the classes without alerts still draw their trend and (empty) homes charts.
     assert page.locator("#class-smoke_alarm svg.chart").count() == 5
