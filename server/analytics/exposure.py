@@ -309,9 +309,7 @@ def merge_intervals(home_id: ArrayLike, start_s: ArrayLike, end_s: ArrayLike) ->
     order = np.lexsort((a, h))
     h, a, b = h[order], a[order], b[order]
     if not len(h):
-        return pd.DataFrame(
-            {"home_id": h, "start_s": a, "end_s": b}
-        )
+        return pd.DataFrame({"home_id": h, "start_s": a, "end_s": b})
     # The furthest end reached so far within the home: a later interval starting after it opens
     # a new stretch.
     reach = pd.Series(b).groupby(h).cummax().to_numpy()
@@ -378,7 +376,10 @@ def home_monitored(
     summed = by_bucket.assign(home_id=by_bucket["window_id"].map(home_of).to_numpy())
     summed = summed[~summed["home_id"].isin(over)]
     summed = summed.groupby(["home_id", "bucket"], as_index=False, sort=False)["seconds"].sum()
-    parts = [summed[["home_id", "bucket", "seconds"]], union.loc[union["home_id"].isin(over), ["home_id", "bucket", "seconds"]]]
+    parts = [
+        summed[["home_id", "bucket", "seconds"]],
+        union.loc[union["home_id"].isin(over), ["home_id", "bucket", "seconds"]],
+    ]
     out = pd.concat(parts, ignore_index=True)
     out = out.astype({"home_id": np.int64, "bucket": np.int64, "seconds": np.float64})
     return out.sort_values(["home_id", "bucket"], kind="mergesort").reset_index(drop=True)

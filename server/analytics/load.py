@@ -237,9 +237,7 @@ _SNAPSHOT_ID = re.compile(r"[0-9A-Fa-f]+(-[0-9A-Fa-f]+)+")
 
 
 @contextmanager
-def _alongside(
-    session: Session, dialect: str, work: Callable[[Session], _T]
-) -> Iterator[Callable[[], _T]]:
+def _alongside(session: Session, dialect: str, work: Callable[[Session], _T]) -> Iterator[Callable[[], _T]]:
     """Start `work` and yield a function that returns its result.
 
     On PostgreSQL, `work` runs in a thread on a second connection that imports this session's
@@ -404,7 +402,9 @@ def load_pilot(
         )
         del facts
         monitored, shared_pieces = monitored_later()
-    home_monitored = _home_monitored(monitored, windows, shared_pieces, overlapping, trial.timezone, start, end)
+    home_monitored = _home_monitored(
+        monitored, windows, shared_pieces, overlapping, trial.timezone, start, end
+    )
     return PilotData(
         trial=trial,
         week=week,
@@ -498,9 +498,7 @@ def _monitored(
 
 
 _PIECE_TIMES = ["window_id", "start_s", "end_s"]
-_NO_PIECES = pd.DataFrame(
-    {"window_id": np.zeros(0, np.int64), "start_s": np.zeros(0), "end_s": np.zeros(0)}
-)
+_NO_PIECES = pd.DataFrame({"window_id": np.zeros(0, np.int64), "start_s": np.zeros(0), "end_s": np.zeros(0)})
 
 
 def _pieces(dialect: str, w: sa.FromClause, start: dt.datetime) -> sa.Select[Any]:
@@ -527,7 +525,9 @@ def _pieces(dialect: str, w: sa.FromClause, start: dt.datetime) -> sa.Select[Any
         sql_greatest(dialect, seg_a, w.c.ws).label("start_s"),
         sql_least(dialect, seg_b, w.c.we).label("end_s"),
     ).select_from(
-        ListeningSegment.__table__.join(w, (s.device_id == w.c.device_id) & (seg_a < w.c.we) & (seg_b > w.c.ws))
+        ListeningSegment.__table__.join(
+            w, (s.device_id == w.c.device_id) & (seg_a < w.c.we) & (seg_b > w.c.ws)
+        )
     )
 
 
@@ -929,7 +929,9 @@ def _alert_parts(facts: pd.DataFrame, windows: pd.DataFrame) -> dict[str, pd.Dat
         return _plain_text(out)
 
     fa = counted[counted["outcome"] == "false_alarm"]
-    fa = fa.assign(home_id=fa["window_id"].map(windows.set_index("window_id")["home_id"]).to_numpy(dtype=np.int64))
+    fa = fa.assign(
+        home_id=fa["window_id"].map(windows.set_index("window_id")["home_id"]).to_numpy(dtype=np.int64)
+    )
     floors = facts.groupby(["sound_class", "firmware"], as_index=False, observed=True)["score"].min()
     return {
         "counted": tally(counted, ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]),

@@ -41,14 +41,14 @@ def readiness_text(r: homerate.ReadinessVerdict) -> str:
         )
     if r.state == "not_met":
         return (
-            f"Not met: even the {level} lower limit, {_n(r.low_none, 3)}, with none of the open ones counted, "
-            f"is above the target of {r.target:g}."
+            f"Not met: even the {level} lower limit, {_n(r.low_none, 3)}, with none of the open ones "
+            f"counted, is above the target of {r.target:g}."
         )
     text = f"Not yet shown: {r.reason_text or ''}".strip()
     if r.more_home_months is not None and r.more_home_months > 0:
         text += (
-            f" At the current rate about {r.more_home_months:,.0f} more home-months of monitoring would bring "
-            f"the upper bound to the target of {r.target:g}."
+            f" At the current rate about {r.more_home_months:,.0f} more home-months of monitoring would "
+            f"bring the upper bound to the target of {r.target:g}."
         )
     return text
 

@@ -18,7 +18,18 @@ import numpy as np
 import pandas as pd
 from sqlalchemy.orm import Session
 
-from server.analytics import breakdowns, compare, disturbances, homerate, load, rates, shares, staged, trend, whatif
+from server.analytics import (
+    breakdowns,
+    compare,
+    disturbances,
+    homerate,
+    load,
+    rates,
+    shares,
+    staged,
+    trend,
+    whatif,
+)
 from server.errors import ValidationFailed
 from server.trials import service as trials_service
 from server.trials.models import Trial
@@ -420,7 +431,9 @@ class _Context:
         self.by_week = _subtract(data.by_week, m, ["week_index", "sound_class", "outcome"])
         home_of_window = data.windows.set_index("window_id")["home_id"]
         m_fa = m[m["outcome"] == "false_alarm"]
-        m_fa = m_fa.assign(home_id=m_fa["window_id"].astype(np.int64).map(home_of_window).to_numpy(dtype=np.int64))
+        m_fa = m_fa.assign(
+            home_id=m_fa["window_id"].astype(np.int64).map(home_of_window).to_numpy(dtype=np.int64)
+        )
         self.fa_scores = _subtract(data.fa_scores, m_fa, ["period", "sound_class", "score_milli", "home_id"])
         week_index = data.week.index
         mon = data.monitored
@@ -445,7 +458,9 @@ class _Context:
             seconds = self.windows["window_id"].map(self.seconds[scope]).fillna(0.0)
             home_months = seconds / rates.HOME_MONTH_S
             by_device = _Groups.of(home_months, self.windows["home_code"], dropna=True)
-            union = pd.Series(union_s[scope].to_numpy(dtype=np.float64), index=union_s[scope].index.map(codes))
+            union = pd.Series(
+                union_s[scope].to_numpy(dtype=np.float64), index=union_s[scope].index.map(codes)
+            )
             self._homes[scope] = _Groups(
                 by_device.keys,
                 union.reindex(by_device.keys).fillna(0.0).to_numpy(dtype=np.float64) / rates.HOME_MONTH_S,
@@ -455,7 +470,10 @@ class _Context:
             self._window_rows[scope] = pd.DataFrame(
                 {
                     "home_code": self.windows["home_code"].to_numpy(dtype=object),
-                    **{dim: self.windows[dim].fillna(NOT_RECORDED).astype(str).to_numpy(dtype=object) for dim, _ in DIMENSIONS},
+                    **{
+                        dim: self.windows[dim].fillna(NOT_RECORDED).astype(str).to_numpy(dtype=object)
+                        for dim, _ in DIMENSIONS
+                    },
                     "home_months": home_months.to_numpy(dtype=np.float64),
                 }
             )
@@ -610,7 +628,9 @@ class _Context:
         # Everything per home is on disturbances: what a household lives with.
         home_level = homerate.home_rate(home_dist, home_hm, confidence_level=level)
         disp = rates.overdispersion(home_dist, home_hm)
-        by_home = pd.DataFrame({"home_code": per_home.keys[keep], "false_alarms": home_dist, "home_months": home_hm})
+        by_home = pd.DataFrame(
+            {"home_code": per_home.keys[keep], "false_alarms": home_dist, "home_months": home_hm}
+        )
         ranked = shares.home_pareto(by_home, confidence_level=level)
         pareto = _homes_table(ranked, per_home.keys[keep], home_fa, home_open)
 
@@ -635,7 +655,9 @@ class _Context:
             # A device property's monitored time sums its devices' listening: device-months, named so.
             table = table.rename(columns={"home_months": "device_months"})
             found = compare.compare_groups(window_rows, key=dim, confidence_level=level)
-            found = dataclasses.replace(found, table=found.table.rename(columns={"home_months": "device_months"}))
+            found = dataclasses.replace(
+                found, table=found.table.rename(columns={"home_months": "device_months"})
+            )
             parts.append(Breakdown(dimension=dim, title=title, table=table, comparison=found))
         comparison = None
         if self.firmware_pair is not None:

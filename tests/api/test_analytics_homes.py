@@ -56,7 +56,13 @@ def home_with(session: Session, trial, devices: int = 1, rooms=("kitchen", "hall
 
 def alert(session, store, settings, device, when, label="false_alarm", cls="smoke_alarm"):  # type: ignore[no-untyped-def]
     a = factories.make_alert(
-        session, store, settings, device, sound_class=cls, detected_at=when, now=when + dt.timedelta(minutes=1)
+        session,
+        store,
+        settings,
+        device,
+        sound_class=cls,
+        detected_at=when,
+        now=when + dt.timedelta(minutes=1),
     )
     if label is not None:
         a.state, a.final_label, a.final_method = "final", label, "single"
@@ -218,7 +224,9 @@ def test_readiness_counts_the_review_backlog_and_judges_over_homes(session, stor
     assert r.rule == homerate.READINESS_RULE
 
 
-def test_summary_json_csv_and_page_say_which_figures_are_per_device(session, store, settings, pell, staff_client, app):  # type: ignore[no-untyped-def]
+def test_summary_json_csv_and_page_say_which_figures_are_per_device(
+    session, store, settings, pell, staff_client, app
+):  # type: ignore[no-untyped-def]
     app.state.clock = lambda: NOW
     lead = staff_client("lead")
     home, (a, b) = home_with(session, pell, devices=2)
@@ -228,7 +236,9 @@ def test_summary_json_csv_and_page_say_which_figures_are_per_device(session, sto
     alert(session, store, settings, b, W0 + dt.timedelta(days=1, seconds=3))
     js = lead.get(f"/api/v1/trials/PELL-2/summary?week={WEEK}").json()
     f = next(c for c in js["classes"] if c["sound_class"] == "smoke_alarm")["week"]
-    assert f["home_months"] == pytest.approx(7 * DAY / HM) and f["device_months"] == pytest.approx(14 * DAY / HM)
+    assert f["home_months"] == pytest.approx(7 * DAY / HM) and f["device_months"] == pytest.approx(
+        14 * DAY / HM
+    )
     room = next(x for x in f["breakdowns"] if x["dimension"] == "room")["table"]
     assert {r["room"]: r["device_months"] for r in room} == {
         "kitchen": pytest.approx(7 * DAY / HM),
@@ -243,8 +253,12 @@ def test_summary_json_csv_and_page_say_which_figures_are_per_device(session, sto
     assert float(ov["device_months"]) == pytest.approx(14 * DAY / HM)
     assert (ov["false_alarms"], ov["false_alarm_disturbances"]) == ("2", "1")
     assert ov["readiness_reason"] == "too_few_homes"
-    firmware_csv = lead.get(f"/api/v1/trials/PELL-2/summary/tables/smoke_alarm-week-firmware.csv?week={WEEK}").text
-    assert "device_months" in firmware_csv.splitlines()[0] and "home_months" not in firmware_csv.splitlines()[0]
+    firmware_csv = lead.get(
+        f"/api/v1/trials/PELL-2/summary/tables/smoke_alarm-week-firmware.csv?week={WEEK}"
+    ).text
+    assert (
+        "device_months" in firmware_csv.splitlines()[0] and "home_months" not in firmware_csv.splitlines()[0]
+    )
     page = lead.get(f"/summary?trial=PELL-2&week={WEEK}").text
     assert "device-month" in page and "Disturbance" in page
     assert homerate.READINESS_RULE in page.replace("&#39;", "'")
@@ -254,7 +268,9 @@ def test_summary_json_csv_and_page_say_which_figures_are_per_device(session, sto
 def test_a_simulated_pilot_gives_the_pure_functions_figures(session, store, settings, pell):  # type: ignore[no-untyped-def]
     """Known truth seeded into the database: the summary's figures are the statistics modules'
     figures on the same per-home arrays, so the simulation study applies to the summary."""
-    spec = simulation.PilotSpec(homes=12, shape=0.5, rate=6.0, months=0.2, devices=(1, 1), open_share=0.3, switch_share=0.0)
+    spec = simulation.PilotSpec(
+        homes=12, shape=0.5, rate=6.0, months=0.2, devices=(1, 1), open_share=0.3, switch_share=0.0
+    )
     pilot = simulation.simulate_pilot(np.random.default_rng(20261203), spec)
     homes = pilot.homes
     seconds = np.round(homes["home_months"].to_numpy() * HM)
@@ -267,7 +283,9 @@ def test_a_simulated_pilot_gives_the_pure_functions_figures(session, store, sett
         n = int(h["false_alarms"] + h["open"])
         for k in range(n):  # spread through the listening, hours apart
             when = start + dt.timedelta(seconds=float(listen_s) * (k + 1) / (n + 1))
-            alert(session, store, settings, device, when, label="false_alarm" if k < h["false_alarms"] else None)
+            alert(
+                session, store, settings, device, when, label="false_alarm" if k < h["false_alarms"] else None
+            )
     f = smoke(build(session))
     fa = homes["false_alarms"].to_numpy()
     op = homes["open"].to_numpy()
@@ -284,7 +302,10 @@ def test_a_simulated_pilot_gives_the_pure_functions_figures(session, store, sett
     for name in ("estimate_none", "low_none", "high_none", "estimate_all", "high_all"):
         assert getattr(got, name) == pytest.approx(getattr(expected, name), rel=1e-9), name
     rate = homerate.home_rate(fa, hm)
-    assert (f.home_rate.low, f.home_rate.high) == (pytest.approx(rate.low, rel=1e-9), pytest.approx(rate.high, rel=1e-9))
+    assert (f.home_rate.low, f.home_rate.high) == (
+        pytest.approx(rate.low, rel=1e-9),
+        pytest.approx(rate.high, rel=1e-9),
+    )
     # Per home, in the summary's order.
     by_code = dict(zip(codes, zip(fa, op, hm, strict=True), strict=True))
     for r in f.homes.itertuples():

@@ -57,9 +57,7 @@ def test_anchor_rule_against_a_plain_loop() -> None:
     # Straightforward reference: walk each (home, class) in time order.
     expected = {}
     for key in sorted(set(zip(homes.tolist(), classes.tolist(), strict=True))):
-        rows = sorted(
-            (i for i in range(400) if (homes[i], classes[i]) == key), key=lambda i: t[i]
-        )
+        rows = sorted((i for i in range(400) if (homes[i], classes[i]) == key), key=lambda i: t[i])
         anchor = None
         label = -1
         for i in rows:
