@@ -16,7 +16,7 @@ from server.auth import web as auth_web
 from server.db import make_engine, make_session_factory, utcnow, writer_engine
 from server.devices.clipstore import ClipStore
 from server.settings import Settings
-from server.web.guards import RequestGuard
+from server.web.guards import RequestGuard, document_error_responses
 from server.web.templating import TEMPLATES_DIR, make_templates
 
 log = logging.getLogger(__name__)
@@ -125,4 +125,5 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     for module in (auth_pages, auth_api, web_pages, devices_api, devices_pages, households_api, households_pages,
                    review_api, review_pages, analytics_api, analytics_pages, admin_api, admin_pages):
         app.include_router(module.router)
+    document_error_responses(app)
     return app

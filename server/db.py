@@ -6,10 +6,12 @@ Dialect-specific code lives here and nowhere else.
 from __future__ import annotations
 
 import datetime as dt
+import os
 import sqlite3
 import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any
 
 from sqlalchemy import JSON, DateTime, MetaData, create_engine, event
@@ -115,10 +117,31 @@ def make_engine(url: str, **kw: Any) -> Engine:
             **kw,
         )
         _configure_sqlite(engine)
+        _private_file(engine.url.database)
         return engine
     if url.startswith("postgresql://"):
         url = "postgresql+psycopg://" + url[len("postgresql://"):]
     return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=40, **kw)
+
+
+def _private_file(database: str | None) -> None:
+    """Create the SQLite file readable by its owner only (0600), or make an existing one so.
+
+    It holds contact details. SQLite creates the -wal and -shm files with the database file's
+    permissions, so those follow.
+    """
+    if not database or database == ":memory:" or database.startswith("file:"):
+        return
+    path = Path(database)
+    try:
+        if not path.exists():
+            path.parent.mkdir(parents=True, exist_ok=True)
+            os.close(os.open(path, os.O_WRONLY | os.O_CREAT, 0o600))  # an empty file is an empty database
+        for each in (path, Path(f"{path}-wal"), Path(f"{path}-shm")):
+            if each.exists() and each.stat().st_mode & 0o077:
+                each.chmod(0o600)
+    except OSError:  # a read-only location or someone else's file: SQLite reports it on connect
+        pass
 
 
 def _configure_sqlite(engine: Engine) -> None:

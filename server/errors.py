@@ -14,6 +14,7 @@ from typing import Any
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, JSONResponse, Response
+from pydantic import BaseModel
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.requests import ClientDisconnect
 
@@ -214,6 +215,19 @@ def input_fault(exc: BaseException) -> AppError | None:
     if type(orig).__name__ == "DataError" and "nul" in str(orig).lower():
         return InvalidRequest("Text in the request holds a NUL character.")
     return None
+
+
+class ErrorDetail(BaseModel):
+    code: str
+    message: str
+    field: str | None = None
+    fields: dict[str, str] | None = None
+
+
+class ErrorBody(BaseModel):
+    """Every error response: ``{"error": {"code", "message"}}`` (OpenAPI documentation only)."""
+
+    error: ErrorDetail
 
 
 def error_body(code: str, message: str, **extra: Any) -> dict[str, Any]:

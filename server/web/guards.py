@@ -249,3 +249,60 @@ def _content_length(scope: Scope) -> int | None:
 def _too_large(limit: int, declared: int | None) -> errors.BodyTooLarge:
     size = f" ({declared} bytes)" if declared is not None else ""
     return errors.BodyTooLarge(f"The request body{size} is larger than the limit of {limit} bytes.")
+
+
+# What each documented error status means, by code (the table in DEVELOPERS.md has them all).
+_ERROR_STATUSES = {
+    "401": "Not signed in or token unknown: `not_signed_in`, `invalid_token`, `missing_token`",
+    "403": "Not allowed: `forbidden`, `csrf_failed` and the route's own refusals",
+    "404": "Nothing there: `not_found` or the route's `unknown_*` code",
+    "413": "The body is over the limit: `body_too_large`",
+    "422": "The input fails validation: `invalid_request`, `validation_failed` and the route's own codes",
+    "503": "Storage cannot take writes now: `storage_full`, `database_read_only`, `clip_store_unavailable`, "
+           "`database_busy`, `database_unavailable`; the response carries Retry-After",
+}
+_UNSAFE = {"post", "put", "patch", "delete"}
+
+
+def document_error_responses(app: Any) -> None:
+    """Make /openapi.json list, for every operation, the error statuses it can answer.
+
+    Staff routes: 401 and 403; routes with path parameters: 404; routes taking input: 422; routes
+    taking a body: 413; every route: 503. Each error response refers to the one error body schema.
+    """
+    default_openapi = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is not None and app.openapi_schema.get("x-errors-documented"):
+            return app.openapi_schema  # type: ignore[no-any-return]
+        schema = default_openapi()
+        staff = {(m.lower(), path) for path, route in _iter_routes(app.routes) if _needs_capability(route)
+                 for m in (getattr(route, "methods", None) or ())}
+        components = schema.setdefault("components", {}).setdefault("schemas", {})
+        body_schema = errors.ErrorBody.model_json_schema(ref_template="#/components/schemas/{model}")
+        components.update(body_schema.pop("$defs", {}))
+        components["ErrorBody"] = body_schema
+        ref = {"application/json": {"schema": {"$ref": "#/components/schemas/ErrorBody"}}}
+        for path, operations in schema.get("paths", {}).items():
+            for method, op in operations.items():
+                params = op.get("parameters", [])
+                wanted = {"503"}
+                if (method, path) in staff:
+                    wanted |= {"401", "403"}
+                if any(p.get("in") == "path" for p in params):
+                    wanted.add("404")
+                if params or "requestBody" in op:
+                    wanted.add("422")
+                if "requestBody" in op or method in _UNSAFE:
+                    wanted.add("413")
+                responses = op.setdefault("responses", {})
+                for status in sorted(wanted | {s for s in responses if s[0] in "45"}):
+                    entry = responses.setdefault(status, {})
+                    if not entry.get("description"):
+                        entry["description"] = _ERROR_STATUSES.get(status, "An error; see the code")
+                    entry["content"] = ref
+        schema["x-errors-documented"] = True
+        app.openapi_schema = schema
+        return schema  # type: ignore[no-any-return]
+
+    app.openapi = openapi
