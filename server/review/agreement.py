@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Hashable, Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime
 from itertools import combinations
 from typing import Any, Literal
@@ -44,6 +44,12 @@ class Kappa:
     n: int
     weights: str | None = None
     reason: str | None = None
+    # Large-sample interval (``kappa_interval``); NaN until one is attached.
+    low: float = math.nan
+    high: float = math.nan
+    std_error: float = math.nan
+    confidence_level: float | None = None
+    method: str | None = None
 
 
 @dataclass(frozen=True)
@@ -149,6 +155,50 @@ def cohen_kappa_from_table(table: Any, *, weights: Weights = None) -> Kappa:
     return Kappa(1.0 - d_obs / d_exp, observed, expected, n_int, weights)
 
 
+KAPPA_INTERVAL_METHOD = "fleiss-cohen-everitt"
+
+
+def kappa_interval(table: Any, kappa: Kappa, confidence_level: float = 0.95) -> Kappa:
+    """``kappa`` with a two-sided large-sample interval: estimate +/- z * SE.
+
+    SE is the non-null large-sample standard error of unweighted kappa,
+    var = (A + B - C) / ((1 - p_e)^2 N) with
+    A = sum_i p_ii (1 - (p_i. + p_.i)(1 - k))^2,
+    B = (1 - k)^2 sum_{i != j} p_ij (p_.i + p_j.)^2,
+    C = (k - p_e (1 - k))^2.
+    The interval is clipped to [-1, 1]. Weighted kappa and undefined kappa get no interval.
+
+    References: Fleiss JL, Cohen J, Everitt BS (1969) "Large sample standard errors of kappa
+    and weighted kappa", Psychol Bull 72:323-327 (citation from memory); the same formula is
+    statsmodels' ``cohens_kappa(...).std_kappa``, against which the unit tests check it.
+    """
+    if not 0 < confidence_level < 1:
+        raise ValueError("confidence_level must lie strictly between 0 and 1")
+    if kappa.weights is not None or math.isnan(kappa.estimate):
+        return kappa
+    t = np.asarray(table, dtype=float)
+    n = t.sum()
+    p = t / n
+    rows, cols = p.sum(axis=1), p.sum(axis=0)
+    k, pe = kappa.estimate, kappa.expected
+    a = float((np.diag(p) * (1 - (rows + cols) * (1 - k)) ** 2).sum())
+    off = p * (cols[:, None] + rows[None, :]) ** 2
+    np.fill_diagonal(off, 0.0)
+    b = (1 - k) ** 2 * float(off.sum())
+    c = (k - pe * (1 - k)) ** 2
+    var = max(0.0, (a + b - c) / ((1 - pe) ** 2 * n))
+    se = math.sqrt(var)
+    z = float(norm.ppf(1 - (1 - confidence_level) / 2))
+    return replace(
+        kappa,
+        low=max(-1.0, k - z * se),
+        high=min(1.0, k + z * se),
+        std_error=se,
+        confidence_level=confidence_level,
+        method=KAPPA_INTERVAL_METHOD,
+    )
+
+
 def cohen_kappa(
     first: Sequence[Hashable],
     second: Sequence[Hashable],
@@ -250,6 +300,96 @@ def krippendorff_alpha_from_coincidence(coincidence: Any, pairable_units: int) -
             reason="every pairable value is the same label, so disagreement cannot be expected",
         )
     return Alpha(1.0 - d_obs / d_exp, d_obs, d_exp, n_int, pairable_units)
+
+
+# --------------------------------------------------------------------------------------
+# Three or more reviewers per clip: Fleiss' kappa
+# --------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class FleissKappa:
+    """Fleiss' kappa over clips that each had ``raters_min``..``raters_max`` reviewers."""
+
+    estimate: float
+    observed: float
+    expected: float
+    subjects: int
+    ratings: int
+    raters_min: int
+    raters_max: int
+    reason: str | None = None
+
+
+def fleiss_kappa(table: Any) -> FleissKappa:
+    """Fleiss' kappa from a subjects-by-categories table of counts (cell: raters choosing it).
+
+    With n_i raters on subject i and n_ij of them choosing category j:
+    P_i = (sum_j n_ij^2 - n_i) / (n_i (n_i - 1)), P_bar = mean of P_i,
+    p_j = sum_i n_ij / sum_i n_i, P_e = sum_j p_j^2, kappa = (P_bar - P_e) / (1 - P_e).
+    With every n_i equal this is exactly Fleiss (1971). When the number of raters varies, each
+    subject's agreement uses its own n_i and the category shares pool all ratings (the usual
+    generalisation); subjects with fewer than two ratings are dropped.
+
+    References: Fleiss JL (1971) "Measuring nominal scale agreement among many raters",
+    Psychol Bull 76:378-382.
+    """
+    t = np.asarray(table, dtype=float)
+    if t.ndim != 2:
+        raise ValueError(f"table must be subjects by categories, got shape {t.shape}")
+    if (t < 0).any():
+        raise ValueError("table counts must be non-negative")
+    n_i = t.sum(axis=1)
+    t = t[n_i >= 2]
+    n_i = n_i[n_i >= 2]
+    if t.shape[0] == 0:
+        return FleissKappa(
+            math.nan,
+            math.nan,
+            math.nan,
+            0,
+            0,
+            0,
+            0,
+            reason="no clip has verdicts from three or more reviewers",
+        )
+    p_i = ((t * t).sum(axis=1) - n_i) / (n_i * (n_i - 1))
+    observed = float(p_i.mean())
+    p_j = t.sum(axis=0) / n_i.sum()
+    expected = float((p_j * p_j).sum())
+    shape = (int(t.shape[0]), int(n_i.sum()), int(n_i.min()), int(n_i.max()))
+    if expected >= 1.0:
+        return FleissKappa(
+            math.nan, observed, expected, *shape, reason="every reviewer gave the same label to every clip"
+        )
+    return FleissKappa((observed - expected) / (1 - expected), observed, expected, *shape)
+
+
+def rating_table(ratings: pd.DataFrame, labels: Sequence[Hashable], *, min_raters: int = 3) -> np.ndarray:
+    """Subjects-by-labels counts for ``fleiss_kappa`` from one row per rating.
+
+    ``ratings`` has columns ``unit``, ``rater``, ``label`` and a sortable ``order``; each rater
+    counts once per unit (their earliest rating), and units with fewer than ``min_raters``
+    raters are left out. Labels outside ``labels`` are an error.
+    """
+    if ratings.empty:
+        return np.zeros((0, len(labels)), dtype=np.int64)
+    index = {lab: i for i, lab in enumerate(labels)}
+    unknown = set(ratings["label"]) - set(index)
+    if unknown:
+        raise ValueError(f"label {sorted(unknown, key=str)[0]!r} is not among the given labels")
+    firsts = ratings.sort_values("order").drop_duplicates(["unit", "rater"], keep="first")
+    rows: list[np.ndarray] = []
+    for _, g in firsts.groupby("unit", sort=True):
+        if len(g) < min_raters:
+            continue
+        row = np.zeros(len(labels), dtype=np.int64)
+        for lab in g["label"]:
+            row[index[lab]] += 1
+        rows.append(row)
+    if not rows:
+        return np.zeros((0, len(labels)), dtype=np.int64)
+    return np.vstack(rows)
 
 
 # --------------------------------------------------------------------------------------

@@ -29,6 +29,11 @@ class Verdict(Base):
     resemblance: Mapped[str | None] = mapped_column(String(20))
     note: Mapped[str | None] = mapped_column(Text)
     created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
+    # First verdicts only: True when the keyed random draw (queue.drawn_for_second_review) sent
+    # the alert to a blind second review, whatever the label; False when it did not. "Unsure"
+    # verdicts go to a second reviewer either way, so only this tells the random sample apart.
+    # NULL on later rounds, and on first verdicts written without routing (see overview).
+    random_draw: Mapped[bool | None] = mapped_column(nullable=True)
 
     reviewer: Mapped[User] = relationship(lazy="joined")
 

@@ -69,6 +69,17 @@ def chosen_for_second_review(key: bytes, alert_id: int, share: float) -> bool:
     return _unit_hash(key, f"second:{alert_id}") < share
 
 
+def drawn_for_second_review(key: bytes, alert: Alert, share: float) -> bool:
+    """The random draw for a first verdict: the keyed hash chose the alert and it is not private.
+
+    Recorded on the first verdict (``Verdict.random_draw``) whatever its label, so that the
+    agreement figures can use the random sample alone: "unsure" verdicts are sent to a second
+    reviewer as well, and pooling them with the draw would bias the agreement measured.
+    A private clip is heard by admins only, so it is never part of the sample.
+    """
+    return not alert.private_flag and chosen_for_second_review(key, alert.id, share)
+
+
 def _gold_due(key: bytes, reviewer_id: int, progress: int, share: float) -> bool:
     return _unit_hash(key, f"gold:{reviewer_id}:{progress}") < share
 

@@ -41,8 +41,8 @@ from server.review.queue import (
     PrivateContent,
     QueueItem,
     SameReviewer,
-    chosen_for_second_review,
     claim_next,
+    drawn_for_second_review,
     gold_for,
     gold_open_to,
     is_admin,
@@ -249,13 +249,14 @@ def record_verdict(
 
     if round_ == ROUND_FIRST:
         share = trial.second_review_share if trial.second_review_share is not None else 0.10
+        verdict.random_draw = drawn_for_second_review(key, alert, share)
         if alert.private_flag:
             alert.needs_second_review = False
             if label == "unsure":
                 alert.state = AlertState.adjudication
             else:
                 _finalise(alert, verdict, "single", now)
-        elif label == "unsure" or chosen_for_second_review(key, alert.id, share):
+        elif label == "unsure" or verdict.random_draw:
             alert.needs_second_review = True
             alert.state = AlertState.second_review
         else:

@@ -510,3 +510,130 @@ def test_simultaneous_claims_never_hand_one_clip_to_two_reviewers(fresh_settings
             s.execute(select(Alert.id, Alert.claimed_by_id).where(Alert.claimed_by_id.is_not(None))).all()
         )
     assert {a: r for r, ids in got.items() for a in ids} == owners
+
+
+# --- the random draw behind the agreement sample ------------------------------------------------------
+
+
+def _first_verdicts(session, alerts, reviewer, labels, private=()):
+    """First verdicts without claims: nobody else holds these clips."""
+    for i, (a, label) in enumerate(zip(alerts, labels, strict=True)):
+        service.record_verdict(
+            session,
+            reviewer=reviewer,
+            alert_id=a.id,
+            label=label,
+            cause="dog" if label == "false_alarm" else None,
+            resemblance="unrelated" if label == "false_alarm" else None,
+            private=i in private,
+            key=KEY,
+        )
+
+
+def test_first_verdict_records_the_random_draw_whatever_its_label(session, store, settings, trial):
+    trial.second_review_share = 0.5
+    session.flush()
+    a = _alerts(session, store, settings, trial, 16)
+    r1, r2 = _reviewer(session), _reviewer(session)
+    admin = factories.make_user(session, role="admin")[0]
+    labels = ["unsure" if i % 2 else "false_alarm" for i in range(16)]
+    _first_verdicts(session, a[:15], r1, labels[:15])
+    _first_verdicts(session, a[15:], admin, ["false_alarm"], private={0})
+    drawn = {x.id: queue.chosen_for_second_review(KEY, x.id, 0.5) for x in a}
+    recorded = {v.alert_id: v.random_draw for v in session.scalars(select(Verdict).where(Verdict.round == 1))}
+    # Private clips are never in the sample; every other first verdict carries the keyed draw.
+    assert recorded == {**drawn, a[15].id: False}
+    # Both kinds of unsure verdict occur here, and every unsure one is sent on regardless.
+    assert {drawn[x.id] for x, lab in zip(a[:15], labels, strict=False) if lab == "unsure"} == {True, False}
+    for x, lab in zip(a[:15], labels[:15], strict=True):
+        alert = session.get(Alert, x.id)
+        assert alert.needs_second_review == (lab == "unsure" or drawn[x.id])
+    # The second verdict carries no draw of its own.
+    sent_on = next(x for x in a[:15] if session.get(Alert, x.id).state == AlertState.second_review)
+    _fa(session, r2, sent_on.id)
+    second = session.scalar(select(Verdict).where(Verdict.alert_id == sent_on.id, Verdict.round == 2))
+    assert second.random_draw is None
+
+
+def test_overview_measures_agreement_on_the_drawn_sample_only(session, store, settings, trial):
+    from sklearn.metrics import cohen_kappa_score
+
+    from server.review import overview
+
+    trial.second_review_share = 0.5
+    session.flush()
+    a = _alerts(session, store, settings, trial, 24)
+    r1, r2 = _reviewer(session), _reviewer(session)
+    labels = ["unsure" if i % 3 == 0 else "false_alarm" for i in range(24)]
+    _first_verdicts(session, a, r1, labels)
+    first, second = [], []
+    for x, lab in zip(a, labels, strict=True):
+        if session.get(Alert, x.id).state != AlertState.second_review:
+            continue
+        answer = "confirmed" if x.id % 2 else "false_alarm"
+        if answer == "false_alarm":
+            _fa(session, r2, x.id)
+        else:
+            service.record_verdict(session, reviewer=r2, alert_id=x.id, label=answer, key=KEY)
+        if queue.chosen_for_second_review(KEY, x.id, 0.5):
+            first.append(lab)
+            second.append(answer)
+    ov = overview.review_overview(session, trial.id)
+    assert ov.double_reviewed == len(first) and 0 < len(first) < ov.pooled_double_reviewed
+    assert ov.sample_drawn == sum(queue.chosen_for_second_review(KEY, x.id, 0.5) for x in a)
+    # Reference: scikit-learn's cohen_kappa_score on the drawn pairs only.
+    assert ov.kappa_overall.estimate == pytest.approx(
+        cohen_kappa_score(first, second, labels=["confirmed", "false_alarm", "unsure", "unusable"]),
+        abs=1e-12,
+    )
+    u = ov.unsure_resolution
+    assert u.first_unsure == 8 and u.drawn == sum(
+        queue.chosen_for_second_review(KEY, x.id, 0.5)
+        for x, lab in zip(a, labels, strict=True)
+        if lab == "unsure"
+    )
+    assert sum(u.second_said.values()) == 8 and u.awaiting_adjudication == 8
+    assert overview.agreement_brief(session, trial.id).unsure_resolution == u
+
+
+def test_migration_back_fills_the_draw_as_the_queue_records_it(fresh_settings):
+    import importlib.util
+
+    from sqlalchemy import update
+
+    from server.db import make_engine
+    from server.devices.clipstore import ClipStore
+    from server.migrate import MIGRATIONS_DIR
+    from tests.conftest import committed_session
+
+    MIGRATIONS = MIGRATIONS_DIR / "versions"
+    store = ClipStore(fresh_settings.clip_dir)
+    store.ensure()
+    with committed_session(fresh_settings) as s:
+        trial = factories.make_trial(s)
+        trial.second_review_share = 0.5
+        s.flush()
+        a = _alerts(s, store, fresh_settings, trial, 14)
+        r1 = _reviewer(s)
+        admin = factories.make_user(s, role="admin")[0]
+        _first_verdicts(s, a[:12], r1, ["unsure" if i % 2 else "confirmed" for i in range(12)])
+        _first_verdicts(s, a[12:], admin, ["unsure", "confirmed"], private={0, 1})
+    with committed_session(fresh_settings) as s:
+        written = dict(s.execute(select(Verdict.alert_id, Verdict.random_draw)).all())
+    assert set(written.values()) == {True, False}
+
+    # The schema steps are covered by test_migrations; here the back-fill runs on the rows as
+    # they stand, with the draw wiped first.
+    spec = importlib.util.spec_from_file_location("step_0008", MIGRATIONS / "2026-12-03_0008_random_draw.py")
+    step = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(step)
+    engine = make_engine(fresh_settings.resolved_database_url())
+    try:
+        with engine.begin() as conn:
+            conn.execute(update(Verdict).values(random_draw=None))
+            step.back_fill(conn, lambda: KEY)
+    finally:
+        engine.dispose()
+    with committed_session(fresh_settings) as s:
+        back_filled = dict(s.execute(select(Verdict.alert_id, Verdict.random_draw)).all())
+    assert back_filled == written

@@ -422,3 +422,215 @@ def test_backlog_of_ages_is_the_backlog() -> None:
     ages = [(now - t).total_seconds() for t in received]
     assert ag.backlog_of_ages(np.array(ages)) == ag.backlog(received, now)
     assert ag.backlog_of_ages([]).reason == ag.backlog([], now).reason
+
+
+# ---------------------------------------------------------------- Cohen's kappa: the interval
+
+
+def test_kappa_interval_matches_statsmodels_on_altman_table_14_2() -> None:
+    # Reference: statsmodels.stats.inter_rater.cohens_kappa (std_kappa, kappa_low, kappa_upp),
+    # the large-sample SE of Fleiss, Cohen & Everitt (1969) (citation from memory). Altman's own
+    # interval for this table is not used: checks.md section 5 explains why it does not reproduce.
+    from statsmodels.stats.inter_rater import cohens_kappa
+
+    k = ag.kappa_interval(ALTMAN_14_2, ag.cohen_kappa_from_table(ALTMAN_14_2))
+    ref = cohens_kappa(np.asarray(ALTMAN_14_2))
+    assert k.estimate == pytest.approx(ref.kappa, abs=1e-12)
+    assert k.std_error == pytest.approx(ref.std_kappa, abs=1e-12)
+    assert (k.low, k.high) == pytest.approx((ref.kappa_low, ref.kappa_upp), abs=1e-12)
+    assert k.confidence_level == 0.95 and k.method == ag.KAPPA_INTERVAL_METHOD
+
+
+@pytest.mark.parametrize("seed", [3, 17, 29])
+def test_kappa_interval_matches_statsmodels_on_random_tables(seed: int) -> None:
+    # Reference: statsmodels cohens_kappa, as above.
+    from statsmodels.stats.inter_rater import cohens_kappa
+
+    rng = np.random.default_rng(seed)
+    table = rng.integers(0, 40, size=(4, 4)) + np.diag(rng.integers(20, 80, size=4))
+    k = ag.kappa_interval(table, ag.cohen_kappa_from_table(table))
+    ref = cohens_kappa(table)
+    assert k.std_error == pytest.approx(ref.std_kappa, rel=1e-10)
+    assert (k.low, k.high) == pytest.approx((ref.kappa_low, ref.kappa_upp), abs=1e-10)
+
+
+def test_kappa_interval_contains_estimate_and_widens_with_level() -> None:
+    base = ag.cohen_kappa_from_table(COHEN_1960_2B)
+    k90, k95, k99 = (ag.kappa_interval(COHEN_1960_2B, base, c) for c in (0.90, 0.95, 0.99))
+    for k in (k90, k95, k99):
+        assert k.low < k.estimate < k.high
+    assert k99.low < k95.low < k90.low and k90.high < k95.high < k99.high
+    # Half-width is z * SE: the 95% one is 1.959964 standard errors.
+    assert (k95.high - k95.low) / 2 == pytest.approx(1.959964 * k95.std_error, abs=1e-6)
+
+
+def test_kappa_interval_absent_for_weighted_or_undefined_kappa() -> None:
+    weighted = ag.cohen_kappa_from_table(ALTMAN_14_2, weights="linear")
+    assert math.isnan(ag.kappa_interval(ALTMAN_14_2, weighted).low)
+    empty = ag.cohen_kappa_from_table([[0, 0], [0, 0]])
+    out = ag.kappa_interval([[0, 0], [0, 0]], empty)
+    assert math.isnan(out.low) and out.reason == empty.reason
+    with pytest.raises(ValueError):
+        ag.kappa_interval(ALTMAN_14_4A, ag.cohen_kappa_from_table(ALTMAN_14_4A), 1.0)
+
+
+def test_kappa_interval_clipped_at_one_for_near_perfect_agreement() -> None:
+    table = [[30, 0], [1, 3]]
+    k = ag.kappa_interval(table, ag.cohen_kappa_from_table(table))
+    assert k.high == 1.0 and k.low < k.estimate
+
+
+# ---------------------------------------------------------------- Fleiss' kappa
+
+# Worked example of the Wikipedia article "Fleiss' kappa" (a secondary source; 10 subjects,
+# 14 raters each, 5 categories), as transcribed in reference/checks.md section 6. Fleiss (1971)
+# has its own example (30 patients, 6 psychiatrists, 5 diagnoses, kappa about 0.43: from memory);
+# its table was not to hand, so it is not used here.
+WIKI_FLEISS = [
+    [0, 0, 0, 0, 14],
+    [0, 2, 6, 4, 2],
+    [0, 0, 3, 5, 6],
+    [0, 3, 9, 2, 0],
+    [2, 2, 8, 1, 1],
+    [7, 7, 0, 0, 0],
+    [3, 2, 6, 3, 0],
+    [2, 5, 3, 2, 2],
+    [6, 5, 2, 1, 0],
+    [0, 2, 2, 3, 7],
+]
+
+
+def test_fleiss_kappa_worked_example() -> None:
+    f = ag.fleiss_kappa(WIKI_FLEISS)
+    # Published: mean agreement 0.378, chance agreement 0.213, kappa 0.210 (checks.md section 6).
+    assert abs(f.observed - 0.378) <= HALF_3DP
+    assert abs(f.expected - 0.213) <= HALF_3DP
+    assert abs(f.estimate - 0.210) <= HALF_3DP
+    assert f.estimate == pytest.approx(0.209931, abs=5e-7)
+    assert (f.subjects, f.ratings, f.raters_min, f.raters_max) == (10, 140, 14, 14)
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3, 4])
+def test_fleiss_kappa_matches_statsmodels_with_equal_raters(seed: int) -> None:
+    # Reference: statsmodels.stats.inter_rater.fleiss_kappa (Fleiss 1971), equal raters per subject.
+    from statsmodels.stats.inter_rater import aggregate_raters, fleiss_kappa
+
+    rng = np.random.default_rng(seed)
+    truth = rng.integers(0, 3, size=40)
+    ratings = np.where(rng.random((40, 5)) < 0.7, truth[:, None], rng.integers(0, 3, size=(40, 5)))
+    table, _ = aggregate_raters(ratings, n_cat=3)
+    assert ag.fleiss_kappa(table).estimate == pytest.approx(fleiss_kappa(table), abs=1e-12)
+
+
+def test_fleiss_kappa_with_unequal_raters_by_hand() -> None:
+    # Three subjects: 3 raters (2 A, 1 B), 4 raters (4 A), 3 raters (1 A, 1 B, 1 C).
+    # P_i = (4+1-3)/6 = 1/3, (16-4)/12 = 1, (3-3)/6 = 0 -> P_bar = 4/9.
+    # p = (7, 2, 1) / 10 -> P_e = 0.54; kappa = (4/9 - 0.54) / 0.46.
+    f = ag.fleiss_kappa([[2, 1, 0], [4, 0, 0], [1, 1, 1]])
+    assert f.observed == pytest.approx(4 / 9, abs=1e-12)
+    assert f.expected == pytest.approx(0.54, abs=1e-12)
+    assert f.estimate == pytest.approx((4 / 9 - 0.54) / 0.46, abs=1e-12)
+    assert (f.raters_min, f.raters_max, f.ratings) == (3, 4, 10)
+
+
+def test_fleiss_kappa_edge_cases() -> None:
+    none = ag.fleiss_kappa(np.zeros((0, 3)))
+    assert math.isnan(none.estimate) and none.reason and none.subjects == 0
+    lone = ag.fleiss_kappa([[1, 0], [0, 1]])  # single ratings are not pairable
+    assert lone.subjects == 0 and math.isnan(lone.estimate)
+    same = ag.fleiss_kappa([[3, 0], [3, 0]])
+    assert math.isnan(same.estimate) and same.reason and same.observed == 1.0
+    with pytest.raises(ValueError):
+        ag.fleiss_kappa([[1, -1]])
+
+
+def test_rating_table_counts_each_reviewer_once_and_drops_small_units() -> None:
+    ratings = pd.DataFrame(
+        {
+            "unit": [1, 1, 1, 1, 2, 2, 3, 3, 3],
+            "rater": ["a", "b", "c", "a", "a", "b", "a", "b", "c"],
+            "label": ["x", "y", "x", "y", "x", "x", "z", "z", "y"],
+            "order": [1, 2, 3, 4, 5, 6, 7, 8, 9],
+        }
+    )
+    table = ag.rating_table(ratings, ["x", "y", "z"], min_raters=3)
+    # Unit 1: a's first label x (the later y is ignored), b y, c x; unit 2 has two raters only.
+    assert table.tolist() == [[2, 1, 0], [0, 1, 2]]
+    assert ag.rating_table(ratings.iloc[:0], ["x"]).shape == (0, 1)
+    with pytest.raises(ValueError):
+        ag.rating_table(ratings, ["x", "y"])
+
+
+# ---------------------------------------------------------------- seeded simulation: which sample
+
+LAB_CONFIRMED, LAB_FALSE, LAB_UNSURE = 0, 1, 2
+# Invented model: four reviewers who are right this often on an easy clip.
+EASY_ACCURACY = np.array([0.98, 0.96, 0.94, 0.91])
+
+
+def _label_probabilities(truth: np.ndarray, difficulty: np.ndarray, reviewer: int) -> np.ndarray:
+    """P(confirmed, false alarm, unsure) for one reviewer on each clip: (n, 3)."""
+    p_unsure = 0.01 + 0.9 * difficulty**2  # harder clips: more often unsure (about 7% overall)
+    acc = 0.5 + (EASY_ACCURACY[reviewer] - 0.5) * (1 - difficulty**2)  # coin toss at the hardest
+    right = (1 - p_unsure) * acc
+    wrong = (1 - p_unsure) * (1 - acc)
+    out = np.empty((truth.size, 3))
+    out[:, LAB_CONFIRMED] = np.where(truth == LAB_CONFIRMED, right, wrong)
+    out[:, LAB_FALSE] = np.where(truth == LAB_FALSE, right, wrong)
+    out[:, LAB_UNSURE] = p_unsure
+    return out
+
+
+def _clips(rng: np.random.Generator, n: int) -> tuple[np.ndarray, np.ndarray]:
+    truth = np.where(rng.random(n) < 0.35, LAB_CONFIRMED, LAB_FALSE)
+    return truth, rng.beta(1.0, 4.0, size=n)  # most clips easy, a few hard
+
+
+def _model_kappa() -> float:
+    """Kappa of first against second review over every clip: exact given each clip's truth and
+    difficulty, averaged over all ordered reviewer pairs and 400 000 model clips."""
+    truth, difficulty = _clips(np.random.default_rng(20261203), 400_000)
+    probs = [_label_probabilities(truth, difficulty, r) for r in range(len(EASY_ACCURACY))]
+    table = np.zeros((3, 3))
+    pairs = [(a, b) for a in range(len(probs)) for b in range(len(probs)) if a != b]
+    for a, b in pairs:
+        table += np.einsum("ni,nj->ij", probs[a], probs[b])
+    return ag.cohen_kappa_from_table(table / len(pairs)).estimate
+
+
+def _draw(rng: np.random.Generator, p: np.ndarray) -> np.ndarray:
+    return (rng.random(p.shape[0])[:, None] > np.cumsum(p, axis=1)).sum(axis=1)
+
+
+def _one_pilot(rng: np.random.Generator, n: int, share: float) -> tuple[float, float, int, int]:
+    truth, difficulty = _clips(rng, n)
+    first_r = rng.integers(0, 4, size=n)
+    second_r = (first_r + rng.integers(1, 4, size=n)) % 4  # someone else
+    probs = np.stack([_label_probabilities(truth, difficulty, r) for r in range(4)])
+    idx = np.arange(n)
+    first = _draw(rng, probs[first_r, idx])
+    second = _draw(rng, probs[second_r, idx])
+    drawn = rng.random(n) < share  # the keyed draw: independent of the clip
+    pooled = drawn | (first == LAB_UNSURE)  # every unsure first verdict also gets a second review
+
+    def kappa(mask: np.ndarray) -> float:
+        table = np.bincount(first[mask] * 3 + second[mask], minlength=9).reshape(3, 3)
+        return ag.cohen_kappa_from_table(table).estimate
+
+    return kappa(drawn), kappa(pooled), int(drawn.sum()), int(pooled.sum())
+
+
+def test_random_sample_recovers_model_kappa_while_pooling_unsure_biases_it() -> None:
+    target = _model_kappa()
+    rng = np.random.default_rng(11)
+    runs = np.array([_one_pilot(rng, 3000, 0.10) for _ in range(300)])
+    random_k, pooled_k = runs[:, 0], runs[:, 1]
+    mc_se = random_k.std(ddof=1) / math.sqrt(len(random_k))
+    # Recovered within Monte Carlo tolerance (4 standard errors of the mean, plus 0.005 for the
+    # ratio estimator's small-sample bias at about 300 pairs per pilot).
+    assert abs(random_k.mean() - target) < 4 * mc_se + 0.005
+    # Pooling every unsure first verdict with the draw drags kappa far below the model's value.
+    assert pooled_k.mean() < target - 0.15
+    assert (pooled_k < random_k).mean() > 0.95
+    assert 0.4 < target < 0.8  # a plausible reviewer agreement for this model
+    assert runs[:, 3].mean() > 1.5 * runs[:, 2].mean()  # the unsure clips are a large share of the pool
