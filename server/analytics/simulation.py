@@ -183,6 +183,17 @@ def study_checks() -> list[Check]:
                     goal,
                 )
             )
+    for homes, goal in ((10, 0.92), (40, 0.94)):
+        for rate in (0.3, 3.0):
+            checks.append(
+                Check(
+                    f"home-level 95% interval, {homes} homes, gamma shape 0.5, {rate:g} false alarms a month",
+                    "coverage",
+                    PilotSpec(homes=homes, shape=0.5, rate=rate),
+                    covers,
+                    goal,
+                )
+            )
     for homes in (10, 40):
         checks.append(
             Check(
