@@ -29,12 +29,33 @@ def cmd_review_overview(args: argparse.Namespace, settings: Settings) -> int:
     oldest = "—" if math.isnan(b.oldest_age_s) else f"{b.oldest_age_s / 3600:.1f} h"
     print(f"backlog: {b.count} alert(s) without a final verdict; oldest waited {oldest}")
     print("  " + ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in ov.by_state.items() if k != "final"))
+    k = ov.kappa_overall
+    interval = "" if math.isnan(k.low) else f" ({k.confidence_level:.0%} CI {_fmt(k.low)} to {_fmt(k.high)})"
+    print(f"agreement sample: {ov.kappa_sample}")
+    print(f"  {ov.why_random}")
     print(
-        f"double-reviewed: {ov.double_reviewed}; agreement {_fmt(ov.percent_agreement.estimate)}, "
-        f"Cohen's kappa {_fmt(ov.kappa_overall.estimate)}, Krippendorff's alpha {_fmt(ov.alpha.estimate)}"
+        f"  double-reviewed at random: {ov.double_reviewed}; "
+        f"agreement {_fmt(ov.percent_agreement.estimate)}, "
+        f"Cohen's kappa {_fmt(k.estimate)}{interval}, Krippendorff's alpha {_fmt(ov.alpha.estimate)}"
+    )
+    print(
+        f"  for comparison, all {ov.pooled_double_reviewed} double-reviewed clips including those sent on "
+        f"as unsure: kappa {_fmt(ov.kappa_pooled.estimate)}"
     )
     for p in ov.pair_kappas:
         print(f"  {p.reviewer_a} / {p.reviewer_b}: {p.shared} shared, kappa {_fmt(p.kappa.estimate)}")
+    u = ov.unsure_resolution
+    print(
+        f"unsure first verdicts: {u.first_unsure} ({u.drawn} also drawn at random); "
+        f"{u.awaiting_second} waiting for a second verdict, {u.awaiting_adjudication} for adjudication"
+    )
+    said = ", ".join(f"{lab} {n}" for lab, n in u.second_said.items() if n)
+    settled = ", ".join(f"{lab} {n}" for lab, n in u.settled.items() if n)
+    print(f"  second reviewer said: {said or 'nothing yet'}")
+    print(f"  adjudication settled: {settled or 'nothing yet'}")
+    for name, f in (("gold checks", ov.fleiss.gold), ("adjudicated clips", ov.fleiss.adjudication)):
+        why = f" ({f.reason})" if f.reason else ""
+        print(f"Fleiss' kappa, {name}: {_fmt(f.estimate)} over {f.subjects} clip(s){why}")
     for r in ov.reviewers:
         gold = f"gold {r.gold.successes}/{r.gold.n}" if r.gold else "no gold answers"
         rate = _fmt(r.throughput.clips_per_hour, 0) if r.throughput else "—"

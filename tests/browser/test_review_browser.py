@@ -123,3 +123,82 @@ def test_reviewer_gets_403_on_personal_data_pages(live_server, page):
     facts = page.text_content("#facts")
     assert seed["home"] in facts and "hallway" in facts
     assert "@" not in facts
+
+
+# --- the agreement page -------------------------------------------------------------------------------
+
+# (first, second, drawn by the random rule, adjudicator's label) on the invented Fernhill pilot.
+AGREEMENT_CLIPS = [
+    ("confirmed", "confirmed", True, None),
+    ("confirmed", "confirmed", True, None),
+    ("confirmed", "confirmed", True, None),
+    ("false_alarm", "false_alarm", True, None),
+    ("false_alarm", "false_alarm", True, None),
+    ("confirmed", "false_alarm", True, "confirmed"),
+    ("unsure", "confirmed", False, "confirmed"),  # sent on for being unsure, not drawn
+    ("unsure", "false_alarm", False, None),
+]
+
+
+def _seed_agreement(srv):
+    from server.review.models import Verdict
+
+    settings = srv.settings
+    store = srv.app.state.clip_store
+    start = dt.datetime.now(dt.UTC) - dt.timedelta(hours=3)
+    with committed_session(settings) as s:
+        fern = factories.make_trial(s, code="FERN-1", name="Fernhill pilot")
+        other = factories.make_trial(s, code="MOSS-2", name="Mossgate pilot")
+        r1, r2, judge = (factories.make_user(s, role="reviewer")[0] for _ in range(3))
+        for trial, clips in ((fern, AGREEMENT_CLIPS), (other, [("confirmed", "false_alarm", True, None)])):
+            device, _ = factories.make_device(s, trial)
+            for i, (x, y, drawn, settled) in enumerate(clips):
+                at = start + dt.timedelta(minutes=i)
+                a = factories.make_alert(s, store, settings, device, now=at, detected_at=at)
+                a.state = "final" if settled or x == y else "adjudication"
+                s.add(Verdict(alert_id=a.id, reviewer_id=r1.id, round=1, label=x, random_draw=drawn))
+                s.add(Verdict(alert_id=a.id, reviewer_id=r2.id, round=2, label=y))
+                if settled:
+                    s.add(Verdict(alert_id=a.id, reviewer_id=judge.id, round=3, label=settled))
+        lead, password = factories.make_user(s, role="lead")
+        return {"email": lead.email, "password": password}
+
+
+def test_lead_reads_agreement_on_the_random_sample(live_server, page):
+    from sklearn.metrics import cohen_kappa_score
+
+    seed = _seed_agreement(live_server)
+    base = live_server.url
+    browser_sign_in(page, base, seed["email"], seed["password"])
+    page.goto(f"{base}/review/agreement")
+    # All trials: seven drawn pairs (Fernhill's six and Mossgate's one); nine pairs in all.
+    assert page.text_content("#sample-size") == "7"
+    assert "random draw picked" in page.text_content("#why-random")
+
+    # Pick one trial from the list: the page reloads with its figures.
+    with page.expect_navigation():
+        page.select_option("#a-trial", "FERN-1")
+    assert page.url.endswith("trial=FERN-1")
+    drawn = [c for c in AGREEMENT_CLIPS if c[2]]
+    kappa = cohen_kappa_score([c[0] for c in drawn], [c[1] for c in drawn])  # reference: scikit-learn
+    pooled = cohen_kappa_score([c[0] for c in AGREEMENT_CLIPS], [c[1] for c in AGREEMENT_CLIPS])
+    assert page.text_content("#sample-size") == "6"
+    assert page.text_content("#kappa-all") == f"{kappa:.3f}"
+    assert "95% confidence interval" in page.text_content("#kappa-interval")
+    assert page.text_content("#kappa-pooled") == f"{pooled:.3f}"
+    assert pooled < kappa
+
+    # Unsure first verdicts: two, neither drawn; one settled as confirmed, one waiting.
+    assert page.text_content("#unsure-count") == "2"
+    confirmed_row = page.locator("#unsure tr[data-second=confirmed] td")
+    assert confirmed_row.all_text_contents()[0] == "1"  # second said confirmed, settled confirmed
+    false_row = page.locator("#unsure tr[data-second=false_alarm] td").all_text_contents()
+    assert false_row[-2:] == ["1", "1"]  # not settled yet; total 1
+
+    # Fleiss' kappa over the two adjudicated clips (three reviewers each); no gold checks.
+    from statsmodels.stats.inter_rater import fleiss_kappa  # reference: statsmodels
+
+    adjudicated = fleiss_kappa([[2, 1, 0, 0], [2, 0, 1, 0]])  # labels in the page's order
+    assert page.text_content("#fleiss-adjudication") == f"{adjudicated:.3f}"
+    assert page.text_content("#fleiss-gold") == "—"
+    assert page.console_errors == []
