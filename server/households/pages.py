@@ -930,16 +930,22 @@ def staged_delete(
 # --- withdrawal with erasure --------------------------------------------------------------------
 
 
+def _leftovers(plan: erasure.ErasurePlan) -> int:
+    """What an erased home still holds that a repeated erasure would remove (arrived since)."""
+    return plan.clips_to_delete + plan.verdict_notes + plan.timeline_notes
+
+
 @router.get("/homes/{code}/erase")
 def erase_start(
     code: str, request: Request, session: DbSession, user: User = Depends(require("homes.erase"))
 ) -> Response:
     home, t = _home_and_trial(session, code)
+    plan = erasure.plan_erasure(session, home)
     return _page(
         request,
         user,
         "households/erase.html",
-        {"home": home, "trial": t, "step": 1, "errors": {}, "plan": erasure.plan_erasure(session, home)},
+        {"home": home, "trial": t, "step": 1, "errors": {}, "plan": plan, "leftovers": _leftovers(plan)},
     )
 
 
@@ -961,10 +967,14 @@ def erase_review(
         "errors": {},
         "step": 2,
         "note": _s(form, "note"),
+        "leftovers": _leftovers(plan),
     }
     try:
-        if home.erased_at is not None:
-            raise ValidationFailed(f"{home.code} was already erased.", {"confirm_code": "Already erased."})
+        if home.erased_at is not None and not _leftovers(plan):
+            raise ValidationFailed(
+                f"{home.code} was already erased and nothing has arrived since.",
+                {"confirm_code": "Already erased; nothing left to erase."},
+            )
         erasure.check_confirm_code(home, _s(form, "confirm_code"))
     except ValidationFailed as exc:
         ctx.update(step=1, errors=exc.errors)

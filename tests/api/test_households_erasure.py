@@ -445,3 +445,35 @@ def test_erased_audio_stays_erased_when_identical_bytes_arrive_again(
     _, repeat = erase_via_api(c, h1)
     assert (repeat["clips_deleted"], repeat["alerts_kept"]) == (0, 2)
     assert c.get(f"/api/v1/alerts/{b_shared.id}/clip").status_code == 200
+
+
+def test_erase_page_offers_a_repeat_only_when_something_arrived_since(
+    staff_client, session, settings, store, trial
+):
+    c = staff_client("coordinator")
+    _, home, alerts = household_with_clips(session, settings, store, trial)
+    erase_via_api(json_client(staff_client), home)
+    page = c.get(f"/homes/{home.code}/erase")
+    assert page.status_code == 200
+    assert "nothing left to erase" in page.text and 'id="erase-step-1"' not in page.text
+    token = csrf_of(c, f"/homes/{home.code}/erase")
+    r = c.post(f"/homes/{home.code}/erase/review", data={"csrf_token": token, "confirm_code": home.code})
+    assert r.status_code == 422 and "nothing left to erase" in r.text and 'id="erase-step-2"' not in r.text
+
+    # A reviewer note added after the erasure: the page offers the repeat, which clears it.
+    reviewer, _ = factories.make_user(session, role="reviewer")
+    session.add(Verdict(alert_id=alerts[1].id, reviewer_id=reviewer.id, round=1, label="confirmed", note="x"))
+    session.flush()
+    page = c.get(f"/homes/{home.code}/erase")
+    assert "Since then 1 item(s) arrived" in page.text and 'id="erase-step-1"' in page.text
+    r = c.post(f"/homes/{home.code}/erase/review", data={"csrf_token": token, "confirm_code": home.code})
+    assert r.status_code == 200 and 'id="erase-step-2"' in r.text
+    ticket = re.search(r'name="ticket" value="([^"]+)"', r.text)
+    assert ticket
+    r = c.post(
+        f"/homes/{home.code}/erase",
+        data={"csrf_token": token, "ticket": ticket.group(1), "confirm_code": home.code},
+        follow_redirects=False,
+    )
+    assert r.status_code == 303
+    assert _note_count(session, home) == (0, 0)
