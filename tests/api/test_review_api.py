@@ -511,6 +511,13 @@ def test_agreement_overview_figures(staff_client, session, store, settings, tria
     body = lead.get(f"/api/v1/review/overview?trial={trial.code}").json()
     assert body["double_reviewed"] == n and body["backlog"]["count"] == 2
     assert body["kappa"]["estimate"] == pytest.approx(ov.kappa_overall.estimate)
+    # Rows written without a recorded draw count by the data: no first verdict here is unsure, so
+    # all 24 pairs are the random sample and the pooled figure is the same.
+    assert body["sample"]["drawn"] == n and body["pooled"]["double_reviewed"] == n
+    assert body["kappa"]["low"] < body["kappa"]["estimate"] < body["kappa"]["high"]
+    assert body["kappa"]["method"] == "fleiss-cohen-everitt" and body["kappa"]["confidence_level"] == 0.95
+    assert body["unsure_resolution"]["first_unsure"] == 0
+    assert body["fleiss"]["gold"]["clips"] == 0 and body["fleiss"]["gold"]["reason"]
     page = lead.get(f"/review/agreement?trial={trial.code}")
     assert page.status_code == 200
     assert f'id="kappa-all">{ov.kappa_overall.estimate:.3f}<' in page.text
