@@ -114,7 +114,8 @@ async def login(request: Request, session: DbSession, settings: SettingsDep) -> 
 
     def finish() -> tuple[Any, str] | None:
         result = service.finish_sign_in(session, attempt, verified, now=now, policy=policy(settings),
-                                        user_agent=request.headers.get("user-agent"))
+                                        user_agent=request.headers.get("user-agent"),
+                                        limits=session_limits(settings))
         session.commit()
         return result
 

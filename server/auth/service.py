@@ -127,8 +127,13 @@ def begin_sign_in(session: Session, email: str, address: str | None, *, now: dt.
 
 
 def finish_sign_in(session: Session, attempt: SignInAttempt, verified: bool, *, now: dt.datetime,
-                   policy: throttle.Policy, user_agent: str | None = None) -> tuple[StaffSession, str] | None:
-    """Record the outcome: a new session (row, cookie value) for a success, None for a failure."""
+                   policy: throttle.Policy, user_agent: str | None = None,
+                   limits: sessions.Limits | None = None) -> tuple[StaffSession, str] | None:
+    """Record the outcome: a new session (row, cookie value) for a success, None for a failure.
+
+    Also drops aged-out strike counts (on a failure) and long-dead session rows (on a success, when
+    ``limits`` is given), so neither table grows without bound.
+    """
     if attempt.user is None or not verified:
         started = throttle.record_failure(session, attempt.email, attempt.address, now=now, policy=policy)
         detail = {"email": attempt.email, "address": attempt.address,
@@ -138,9 +143,12 @@ def finish_sign_in(session: Session, attempt: SignInAttempt, verified: bool, *, 
             detail["blocked_key"] = started.kind
         audit.record(session, f"client:{attempt.address or 'unknown'}", "auth.sign_in_failed", "user",
                      attempt.user.id if attempt.user is not None else None, detail)
+        throttle.purge(session, now=now, policy=policy)  # aged-out counts (indexed; usually nothing)
         return None
     user = attempt.user
     throttle.record_success(session, attempt.email)
+    if limits is not None:
+        sessions.purge(session, now=now, limits=limits)
     user.last_login_at = now
     row, raw = sessions.start(session, user, now=now, user_agent=user_agent, client_addr=attempt.address)
     audit.record(session, user, "auth.sign_in", "user", user.id, {"address": attempt.address, "session": row.id})

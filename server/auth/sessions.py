@@ -10,7 +10,7 @@ import dataclasses
 import datetime as dt
 import secrets
 
-from sqlalchemy import select, update
+from sqlalchemy import delete, or_, select, update
 from sqlalchemy.orm import Session
 
 from server.auth.models import StaffSession, User
@@ -91,3 +91,12 @@ def list_live(session: Session, user_id: int, *, now: dt.datetime, limits: Limit
                            .where(StaffSession.user_id == user_id, StaffSession.revoked_at.is_(None))
                            .order_by(StaffSession.last_seen_at.desc()))
     return [r for r in rows if now < ends_at(r, limits)]
+
+
+def purge(session: Session, *, now: dt.datetime, limits: Limits, keep_days: int = 30) -> int:
+    """Delete rows of sessions that ended (or lapsed at the latest) more than ``keep_days`` ago."""
+    cutoff = now - dt.timedelta(days=keep_days)
+    lapsed = now - dt.timedelta(seconds=limits.max_age_s) - dt.timedelta(days=keep_days)
+    result = session.execute(delete(StaffSession).where(or_(StaffSession.revoked_at < cutoff,
+                                                            StaffSession.created_at < lapsed)))
+    return int(result.rowcount)  # type: ignore[attr-defined]

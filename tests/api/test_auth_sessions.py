@@ -259,3 +259,22 @@ def test_csrf_token_lives_in_the_session_row(app, session: Session) -> None:  # 
         assert r.status_code == 403 and r.json()["error"]["code"] == "csrf_failed"
         r = c.post("/api/v1/account/tokens", json={"label": "x"}, headers={"x-csrf-token": row.csrf_token})
         assert r.status_code == 201
+
+
+def test_long_dead_session_rows_are_purged_at_the_next_sign_in(app, session: Session) -> None:  # type: ignore[no-untyped-def]
+    clock = _clocked(app)
+    user, _ = factories.make_user(session, role="lead")
+    a = _signed_in(app, user)
+    old_cookie = a.cookies.get(COOKIE_NAME)
+    a.post("/logout", data={"csrf_token": csrf_of(a)})
+    a.__exit__(None, None, None)
+    clock.advance(days=29)
+    b = _signed_in(app, user)
+    b.__exit__(None, None, None)
+    assert _row_of(session, old_cookie).revoked_at == T0  # kept 30 days after it ended
+    clock.advance(days=2)
+    c = _signed_in(app, user)
+    c.__exit__(None, None, None)
+    assert session.scalar(select(StaffSession).where(
+        StaffSession.token_hash == hashlib.sha256(old_cookie.encode()).hexdigest())) is None
+    assert len(session.scalars(select(StaffSession).where(StaffSession.user_id == user.id)).all()) == 2
