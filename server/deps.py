@@ -24,6 +24,7 @@ from server.errors import AppError, CsrfFailed, Forbidden, InvalidToken, NotSign
 from server.roles import CAPABILITIES
 from server.settings import Settings
 from server.tokens import STAFF_PREFIX
+from server.trials import service as trials_service
 
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 
@@ -193,6 +194,7 @@ def require(capability: str) -> Callable[..., User]:
                 "An administrator set your password: choose your own on your account page (/account) first.")
         if user.role not in roles:
             raise Forbidden(f"Your role ({user.role}) does not allow this.")
+        trials_service.limit_session_to_user(session, user)  # trial membership, every later query
         return user
 
     dependency.capability = capability  # type: ignore[attr-defined]

@@ -148,7 +148,8 @@ def timeline_of(session: Session, home: Home) -> list[tuple[HomeStateChange, Use
 
 
 def next_home_code(session: Session) -> str:
-    codes = session.scalars(select(Home.code).where(Home.code.like("H-%")))
+    codes = session.scalars(select(Home.code).where(Home.code.like("H-%"))
+                            .execution_options(trialhouse_all_trials=True))  # unique in every trial
     numbers = [int(c[2:]) for c in codes if CODE_PATTERN.match(c)]
     return f"H-{(max(numbers, default=0) + 1):04d}"
 
@@ -957,12 +958,13 @@ def departures(session: Session, trial: Trial) -> list[tuple[str, dt.datetime, d
     return out
 
 
-def get_trial_or_default(session: Session, code: str | None) -> Trial:
+def get_trial_or_default(session: Session, code: str | None, *, user: Any = None) -> Trial:
+    """The named trial, else the first one (``user``: the first one they may see)."""
     from server.trials import service as trials_service
 
     if code:
-        return trials_service.get_trial(session, code)
-    trials = trials_service.list_trials(session)
+        return trials_service.get_trial(session, code, user=user)
+    trials = trials_service.list_trials(session, user=user)
     if not trials:
         raise NotFound("There is no trial yet; add one with `trialhouse trial add`.", code="unknown_trial")
     return trials[0]

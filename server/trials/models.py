@@ -5,7 +5,7 @@ from __future__ import annotations
 import datetime as dt
 from typing import Any
 
-from sqlalchemy import Float, String
+from sqlalchemy import Float, ForeignKey, String, UniqueConstraint
 from sqlalchemy.orm import Mapped, mapped_column
 
 from server.db import Base, UTCDateTime, utcnow
@@ -53,3 +53,16 @@ class Trial(Base):
 
     def __repr__(self) -> str:
         return f"<Trial {self.code}>"
+
+
+class TrialMembership(Base):
+    """A staff member limited to this trial. A non-admin with any rows sees only those trials; one
+    with none sees every trial (see trials/service.py ``visible_trial_ids``)."""
+
+    __tablename__ = "trial_membership"
+    __table_args__ = (UniqueConstraint("user_id", "trial_id", name="uq_trial_membership_user_trial"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    user_id: Mapped[int] = mapped_column(ForeignKey("user_account.id", ondelete="CASCADE"), index=True)
+    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id", ondelete="CASCADE"), index=True)
+    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
