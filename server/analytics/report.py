@@ -57,8 +57,9 @@ def open_range_text(r: homerate.ReadinessVerdict, open_alerts: int) -> str | Non
     """The range the open alerts leave, from none of them to all of them being false alarms."""
     if r.open_count == 0 and open_alerts == 0:
         return None
+    lead = "Not yet shown: " if r.state == "not_yet_shown" else ""
     return (
-        f"Not yet shown: {open_alerts} alert{'' if open_alerts == 1 else 's'} await review or were marked "
+        f"{lead}{open_alerts} alert{'' if open_alerts == 1 else 's'} await review or were marked "
         f"unsure ({r.open_count} disturbance{'' if r.open_count == 1 else 's'}). "
         f"Counting none of them as false alarms: {_n(r.estimate_none, 3)} per home-month "
         f"(upper bound {_n(r.high_none, 3)}); counting all of them: {_n(r.estimate_all, 3)} "

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from sqlalchemy.orm import Session
 
-from server.analytics import homerate, rates, simulation, weekly
+from server.analytics import homerate, rates, report, simulation, weekly
 from server.devices.models import ListeningSegment
 from server.households import service as households_service
 from tests import factories
@@ -200,7 +200,8 @@ def test_readiness_counts_the_review_backlog_and_judges_over_homes(session, stor
     alert(session, store, settings, homes[5][1][0], base + dt.timedelta(days=4), label="unsure")
     alert(session, store, settings, homes[6][1][0], base + dt.timedelta(days=5), label="unusable")
 
-    f = smoke(build(session))
+    s = build(session)
+    f = smoke(s)
     month = 28 * DAY / HM
     assert f.home_months == pytest.approx(12 * month, rel=1e-9)
     assert f.device_months == pytest.approx(14 * month, rel=1e-9)
@@ -222,6 +223,15 @@ def test_readiness_counts_the_review_backlog_and_judges_over_homes(session, stor
     assert r.state == "not_yet_shown" and r.reason == "more_time_needed"
     assert f.home_rate.homes == 12 and f.home_rate.reason is None and f.home_rate.low < f.home_rate.high
     assert r.rule == homerate.READINESS_RULE
+    # The page gives the range the backlog leaves, and the unusable clip, beside the verdict.
+    text = report.open_range_text(r, f.alerts.pending + f.alerts.unsure)
+    assert text is not None and text.startswith(
+        "Not yet shown: 2 alerts await review or were marked unsure (2 disturbances). Counting none of "
+        f"them as false alarms: {6 / (12 * month):.3f} per home-month"
+    )
+    assert f"counting all of them: {8 / (12 * month):.3f}" in text
+    html = report.standalone_html(s)
+    assert text in html.replace("&#39;", "'") and "Unusable clips: <strong>1</strong>" in html
 
 
 def test_summary_json_csv_and_page_say_which_figures_are_per_device(
