@@ -1,4 +1,4 @@
-"""`trialhouse user list | deactivate | reactivate | access | reset-password` (``user add`` is in
+"""`trialhouse user list | deactivate | reactivate | access | reset-password | trials` (``user add`` is in
 server/cli.py). Changes are audited with the actor ``cli``; one active admin must remain here too."""
 
 from __future__ import annotations
@@ -98,6 +98,16 @@ def cmd_reset_password(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
+def cmd_trials(args: argparse.Namespace, settings: Settings) -> int:
+    codes = [c.strip() for c in args.trials.split(",") if c.strip()]
+    with _open(settings) as s:
+        held = service.set_trials(
+            s, actor="cli", user_id=service.get_user_by_email(s, args.email).id, trial_codes=codes
+        )
+        print(f"user {args.email} works on {', '.join(held)}" if held else f"user {args.email} sees every trial")
+    return 0
+
+
 def register(user: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
     """Add the account sub-commands to ``trialhouse user``."""
     ul = user.add_parser("list", help="list staff accounts")
@@ -129,3 +139,9 @@ def register(user: argparse._SubParsersAction) -> None:  # type: ignore[type-arg
     )
     up.add_argument("--email", required=True)
     up.set_defaults(func=cmd_reset_password)
+    ut = user.add_parser("trials", help="limit an account to some trials (admins always see all)")
+    ut.add_argument("--email", required=True)
+    ut.add_argument(
+        "--trials", required=True, help="comma-separated trial codes, e.g. PILOT-1,PILOT-2; '' for every trial"
+    )
+    ut.set_defaults(func=cmd_trials)

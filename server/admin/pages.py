@@ -27,6 +27,7 @@ DONE = {
     "already-inactive": "The account was already deactivated.",
     "reactivated": "Account reactivated. The person can sign in again with their password.",
     "already-active": "The account was already active.",
+    "trials": "Trials saved. The account sees only the trials ticked (all of them when none is).",
 }
 
 
@@ -76,6 +77,7 @@ def _account_page(
             "temporary_password": temporary_password,
             "created": created,
             "recent": recent,
+            "trial_choices": service.trial_choices(session, account.id),
         },
         status_code=status_code,
         headers=NO_STORE if temporary_password else None,
@@ -158,6 +160,21 @@ def account_access(
             session, actor=user, user_id=user_id, role=role, is_adjudicator=bool(is_adjudicator)
         )
         return "access" if change.changed else "access-same"
+
+    return _after(request, session, user_id, act)
+
+
+@router.post("/admin/staff/{user_id}/trials")
+def account_trials(
+    request: Request,
+    session: DbSession,
+    user_id: int,
+    trial: list[str] = Form([]),
+    user: User = Depends(require("users.manage")),
+) -> Response:
+    def act() -> str:
+        service.set_trials(session, actor=user, user_id=user_id, trial_codes=trial)
+        return "trials"
 
     return _after(request, session, user_id, act)
 

@@ -17,6 +17,7 @@ from server.auth import service as auth_service
 from server.auth.models import Role, User
 from server.errors import Conflict, NotFound, ValidationFailed
 from server.roles import ADMIN, ROLES
+from server.trials import service as trials_service
 
 # No look-alike characters (0/O, 1/l/I), so a password read aloud or copied by hand survives.
 _ALPHABET = "abcdefghjkmnpqrstuvwxyzACDEFGHJKLMNPQRTUVWXY346789"
@@ -198,3 +199,15 @@ def reset_password(session: Session, *, actor: User | str, user_id: int) -> tupl
     # Recorded in the audit trail by set_password as "user.password_set" with must_change true.
     auth_service.set_password(session, user, password, must_change=True, actor=actor)
     return user, password
+
+
+def set_trials(session: Session, *, actor: object, user_id: int, trial_codes: list[str]) -> list[str]:
+    """Limit an account to these trials (none: every trial). Admins see every trial whatever is set."""
+    account = get_user(session, user_id)
+    return trials_service.set_memberships(session, account, trial_codes, actor=actor)
+
+
+def trial_choices(session: Session, user_id: int) -> list[tuple[str, str, bool]]:
+    """(code, name, held) for every trial, for the account page's checkboxes."""
+    held = trials_service.membership_trial_ids(session, user_id)
+    return [(t.code, t.name, t.id in held) for t in trials_service.list_trials(session)]
