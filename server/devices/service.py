@@ -64,7 +64,8 @@ def register_device(session: Session, *, serial: str, trial: Trial, hardware_mod
     serial = serial.strip()
     if not serial or len(serial) > 64:
         raise ValidationFailed("A serial is 1 to 64 characters.", {"serial": "1 to 64 characters."})
-    if session.scalar(select(Device.id).where(Device.serial == serial)) is not None:
+    if session.scalar(select(Device.id).where(Device.serial == serial)
+                      .execution_options(trialhouse_all_trials=True)) is not None:  # unique in every trial
         raise Conflict(f"A device with serial {serial} is already registered.", code="device_exists")
     token = new_token(DEVICE_PREFIX)
     device = Device(serial=serial, trial_id=trial.id, hardware_model=hardware_model or "unknown",
@@ -307,7 +308,7 @@ def _parse_meta(raw: bytes) -> tuple[str, dict[str, object]]:
         raise InvalidMeta("The 'meta' part is not UTF-8 text.") from exc
     try:
         data = json.loads(text, parse_constant=_reject_constant)
-    except ValueError as exc:
+    except (ValueError, RecursionError) as exc:  # RecursionError: nested too deep to parse
         raise InvalidMeta(f"The 'meta' part is not valid JSON: {exc}.") from exc
     if not isinstance(data, dict):
         raise InvalidMeta("The 'meta' part must be a JSON object.")
