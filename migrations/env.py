@@ -16,12 +16,25 @@ def run_migrations_online() -> None:
     if connection is not None:
         _run(connection)
         return
+    # The `alembic` command itself (no connection handed in): the same path as `trialhouse db upgrade`.
     url = config.attributes.get("url") or Settings().resolved_database_url()
     engine = make_engine(url)
-    with engine.connect() as conn:
-        _run(conn)
-        conn.commit()
-    engine.dispose()
+    try:
+        with engine.connect() as conn:
+            sqlite = conn.dialect.name == "sqlite"
+            raw = conn.connection.driver_connection if sqlite else None
+            if raw is not None:
+                raw.execute("PRAGMA foreign_keys=OFF")  # see server.migrate.run
+            try:
+                _run(conn)
+                if sqlite and conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall():
+                    raise RuntimeError("the migration left broken references")
+                conn.commit()
+            finally:
+                if raw is not None:
+                    raw.execute("PRAGMA foreign_keys=ON")
+    finally:
+        engine.dispose()
 
 
 def _run(connection) -> None:  # type: ignore[no-untyped-def]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 
 from alembic import command
@@ -26,10 +27,35 @@ def alembic_config(url: str | None = None) -> Config:
 
 
 def upgrade(engine: Engine) -> None:
+    run(engine, command.upgrade, "head")
+
+
+def run(engine: Engine, step: Callable[[Config, str], None], target: str) -> None:
+    """Run one Alembic command (upgrade or downgrade to `target`) in one transaction.
+
+    SQLite alters a table by rebuilding it (batch mode: copy, drop the old, rename). With foreign
+    keys enforced, dropping a table that other rows reference fails, so a database with data could
+    not be migrated. SQLite's documented procedure: foreign keys off for the migration (the pragma
+    only takes effect outside a transaction), then `PRAGMA foreign_key_check` inside it before the
+    commit, so a migration that broke a reference rolls back whole.
+    """
     cfg = alembic_config()
-    with engine.begin() as conn:
-        cfg.attributes["connection"] = conn
-        command.upgrade(cfg, "head")
+    with engine.connect() as conn:
+        sqlite = conn.dialect.name == "sqlite"
+        raw = conn.connection.driver_connection if sqlite else None
+        if raw is not None:
+            raw.execute("PRAGMA foreign_keys=OFF")
+        try:
+            with conn.begin():
+                cfg.attributes["connection"] = conn
+                step(cfg, target)
+                if sqlite:
+                    broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+                    if broken:
+                        raise RuntimeError(f"the migration left {len(broken)} broken reference(s): {broken[:5]}")
+        finally:
+            if raw is not None:
+                raw.execute("PRAGMA foreign_keys=ON")
 
 
 def head_revision() -> str | None:
