@@ -363,6 +363,22 @@ def browser_sign_in(page, base_url: str, email: str, password: str) -> None:  # 
         page.click("button[type=submit]")
 
 
+def wait_until(page, expression: str, timeout_ms: int = 10000) -> None:  # type: ignore[no-untyped-def]
+    """Poll a JavaScript condition until it holds.
+
+    Playwright's `wait_for_function` evaluates a string predicate with `eval` inside the page, which
+    the pages' Content Security Policy (no 'unsafe-eval') rightly refuses once it has to poll. A
+    function evaluated from the test side is not page script, so the policy stays as shipped.
+    """
+    deadline = time.monotonic() + timeout_ms / 1000
+    while True:
+        if page.evaluate(f"() => Boolean({expression})"):
+            return
+        if time.monotonic() > deadline:
+            raise AssertionError(f"still false after {timeout_ms} ms: {expression}")
+        page.wait_for_timeout(50)
+
+
 @contextlib.contextmanager
 def committed_session(settings: Settings) -> Iterator[Session]:
     engine = make_engine(settings.resolved_database_url())

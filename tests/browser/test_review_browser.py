@@ -9,7 +9,7 @@ from sqlalchemy import select
 
 from server.devices.models import Alert
 from tests import factories
-from tests.conftest import browser_sign_in, committed_session
+from tests.conftest import browser_sign_in, committed_session, wait_until
 
 pytestmark = pytest.mark.browser
 
@@ -59,15 +59,16 @@ def test_reviewer_clears_clips_from_the_keyboard(live_server, page):
     assert page.text_content("[data-f=alert_id]") == f"#{first}"
     assert page.text_content("[data-f=home_code]") == seed["home"]
     # The page asks the queue for the next clip and preloads it.
-    page.wait_for_function("document.querySelectorAll('#x-axis span').length > 0")
+    wait_until(page, "document.querySelectorAll('#x-axis span').length > 0")
 
     page.keyboard.press("Space")
-    page.wait_for_function(
+    wait_until(
+        page,
         "!document.getElementById('player').paused && document.getElementById('player').currentTime > 0",
-        timeout=10000,
+        timeout_ms=10000,
     )
     page.keyboard.press("Space")
-    page.wait_for_function("document.getElementById('player').paused")
+    wait_until(page, "document.getElementById('player').paused")
     page.keyboard.press("ArrowRight")
 
     page.keyboard.press("f")
@@ -84,13 +85,14 @@ def test_reviewer_clears_clips_from_the_keyboard(live_server, page):
     assert f"/review/images/{second}/spectrogram.png" in requested
     page.keyboard.press("Enter")
 
-    page.wait_for_function(f"document.querySelector('[data-f=alert_id]').textContent === '#{second}'")
-    page.wait_for_function(
-        "document.getElementById('spec').complete && document.getElementById('spec').naturalWidth > 0"
+    wait_until(page, f"document.querySelector('[data-f=alert_id]').textContent === '#{second}'")
+    wait_until(
+        page,
+        "document.getElementById('spec').complete && document.getElementById('spec').naturalWidth > 0",
     )
     assert page.url.endswith(f"/review/{second}")
     assert not page.is_checked("input[name=label][value=false_alarm]")  # a clean form for the new clip
-    page.wait_for_function("document.getElementById('desk-msg').textContent.startsWith('Saved')")
+    wait_until(page, "document.getElementById('desk-msg').textContent.startsWith('Saved')")
 
     page.keyboard.press("c")
     page.keyboard.press("Enter")
