@@ -179,6 +179,7 @@ def _configure_sqlite(engine: Engine) -> None:
         else:
             conn.exec_driver_sql("BEGIN")
 
+
 def writer_engine(engine: Engine) -> Engine:
     """The same pool, with write transactions taking SQLite's lock at BEGIN (no-op elsewhere)."""
     return engine.execution_options(sqlite_immediate=True)

@@ -19,6 +19,10 @@ Floats = NDArray[np.float64]
 # Homes needed before the spread between homes can be judged at all.
 MIN_HOMES = 10
 
+# The skewness-corrected quantile may stretch the plain t quantile by at most this factor (chosen
+# by the simulation study in docs/statistics.md: coverage held, no runaway bounds).
+SKEW_STRETCH = 1.5
+
 # Reasons (stable codes; the page shows REASON_TEXT[reason]).
 TOO_FEW_HOMES = "too_few_homes"
 NO_MONITORED_TIME = rates.NO_MONITORED_TIME
@@ -168,8 +172,11 @@ def home_rate_limits(
     m2 = (centred**2).mean(axis=1)
     m3 = (centred**3).mean(axis=1)
     skew = np.divide(m3, m2**1.5, out=np.zeros_like(m2), where=m2 > 0)
-    low = r * np.minimum(np.exp(-c * cv), np.exp(-cv * _hall_inverse(c, skew, g)))
-    high = r * np.maximum(np.exp(c * cv), np.exp(-cv * _hall_inverse(-c, skew, g)))
+    # Hall's inverse runs away once 1 + 3a(q - a/2) turns negative (one home holding half of the
+    # false alarms, an ordinary pilot): the corrected quantile is held within SKEW_STRETCH x c.
+    reach = SKEW_STRETCH * c
+    low = r * np.minimum(np.exp(-c * cv), np.exp(-cv * np.minimum(_hall_inverse(c, skew, g), reach)))
+    high = r * np.maximum(np.exp(c * cv), np.exp(cv * np.minimum(-_hall_inverse(-c, skew, g), reach)))
     # Never narrower than exact Poisson counting over the same time.
     g_low = np.where(total_x > 0, special.gammaincinv(np.maximum(total_x, 1e-300), alpha / 2), 0.0) / total_t
     g_high = special.gammaincinv(total_x + 1, 1 - alpha / 2) / total_t
