@@ -624,8 +624,11 @@ def backlog(received_at: Iterable[datetime], now: datetime) -> Backlog:
 
 
 def backlog_of_ages(ages_s: Iterable[float] | np.ndarray) -> Backlog:
-    """Count, oldest and median of waiting times in seconds (see ``backlog``)."""
-    ages = np.asarray(ages_s, dtype=float)
+    """Count, oldest and median of waiting times in seconds (see ``backlog``).
+
+    An alert received after ``now`` (the server clock stepped back, or a summary for a moment in
+    the past) has waited 0 s, never a negative time."""
+    ages = np.maximum(np.asarray(ages_s, dtype=float), 0.0)
     if ages.size == 0:
         return Backlog(0, math.nan, math.nan, reason="nothing is waiting")
     return Backlog(int(ages.size), float(ages.max()), float(np.median(ages)))

@@ -416,6 +416,13 @@ def test_backlog_count_and_age() -> None:
     assert e.count == 0 and math.isnan(e.oldest_age_s) and e.reason
 
 
+def test_backlog_ages_are_never_negative() -> None:
+    # Received after "now" (clock stepped back): waited 0 s. Ages 0, 0, 3600 -> oldest 3600, median 0.
+    now = T0
+    b = ag.backlog([T0 + dt.timedelta(hours=2), T0 + dt.timedelta(seconds=1), T0 - dt.timedelta(hours=1)], now)
+    assert (b.count, b.oldest_age_s, b.median_age_s) == (3, 3600.0, 0.0)
+
+
 def test_backlog_of_ages_is_the_backlog() -> None:
     now = T0 + dt.timedelta(days=2, microseconds=7)
     received = [T0 + dt.timedelta(hours=h, microseconds=us) for h, us in ((1, 3), (8, 0), (30, 999_999))]
