@@ -101,8 +101,25 @@ def cmd_trial_add(args: argparse.Namespace, settings: Settings) -> int:
         trial = trials_service.create_trial(
             s, code=args.code, name=args.name or args.code, starts_on=starts, ends_on=ends,
             sound_classes=[c.strip() for c in args.sound_classes.split(",") if c.strip()],
-            fa_target_per_home_month=args.target, timezone=args.timezone)
+            fa_target_per_home_month=args.target, timezone=args.timezone,
+            disturbance_window_s=args.disturbance_window)
         print(f"trial {trial.code} added: {', '.join(trial.sound_classes)}")
+    return 0
+
+
+def cmd_trial_set(args: argparse.Namespace, settings: Settings) -> int:
+    from server.trials import service as trials_service
+
+    if args.target is None and args.disturbance_window is None:
+        raise CliError("Give --target and/or --disturbance-window.")
+    with session_scope(open_db(settings)) as s:
+        trial = trials_service.get_trial(s, args.code)
+        changes = trials_service.set_trial_settings(
+            s, trial, fa_target_per_home_month=args.target, disturbance_window_s=args.disturbance_window)
+        if not changes:
+            print(f"trial {trial.code}: nothing changed")
+        for name, (old, new) in changes.items():
+            print(f"trial {trial.code}: {name} {old:g} -> {new:g}")
     return 0
 
 
@@ -221,7 +238,15 @@ def build_parser() -> argparse.ArgumentParser:
     ta.add_argument("--ends-on")
     ta.add_argument("--target", type=float, default=1.0, help="false alarms per home-month (default 1.0)")
     ta.add_argument("--timezone", default="UTC")
+    ta.add_argument("--disturbance-window", type=float, default=60.0, metavar="SECONDS",
+                    help="alerts of one sound from one home this close together are one disturbance (default 60)")
     ta.set_defaults(func=cmd_trial_add)
+    tset = trial.add_parser("set", help="change a trial's target or disturbance window (audited)")
+    tset.add_argument("code")
+    tset.add_argument("--target", type=float, help="false alarms per home-month")
+    tset.add_argument("--disturbance-window", type=float, metavar="SECONDS",
+                      help="alerts of one sound from one home this close together are one disturbance")
+    tset.set_defaults(func=cmd_trial_set)
     trial.add_parser("list", help="list trials").set_defaults(func=cmd_trial_list)
 
     dev = sub.add_parser("device", help="devices").add_subparsers(dest="device_cmd", required=True)

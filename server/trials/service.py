@@ -60,6 +60,32 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
     return trial
 
 
+def set_trial_settings(session: Session, trial: Trial, *, fa_target_per_home_month: float | None = None,
+                       disturbance_window_s: float | None = None, actor: object = "cli") -> dict[str, Any]:
+    """Change a running trial's false-alarm target or disturbance window (audited, old and new).
+
+    Both change what the summary reports for every week, past ones too: the summary is computed
+    from the alerts each time it is read, so no stored figure goes stale."""
+    errors: dict[str, str] = {}
+    if fa_target_per_home_month is not None and not (fa_target_per_home_month > 0):
+        errors["fa_target_per_home_month"] = "The false-alarm target must be a positive rate."
+    if disturbance_window_s is not None and not (0 <= disturbance_window_s <= 3600):
+        errors["disturbance_window_s"] = "The disturbance window must be 0 to 3600 seconds."
+    if errors:
+        raise ValidationFailed(next(iter(errors.values())), errors)
+    changes: dict[str, Any] = {}
+    if fa_target_per_home_month is not None and fa_target_per_home_month != trial.fa_target_per_home_month:
+        changes["fa_target_per_home_month"] = [trial.fa_target_per_home_month, float(fa_target_per_home_month)]
+        trial.fa_target_per_home_month = float(fa_target_per_home_month)
+    if disturbance_window_s is not None and disturbance_window_s != trial.disturbance_window_s:
+        changes["disturbance_window_s"] = [trial.disturbance_window_s, float(disturbance_window_s)]
+        trial.disturbance_window_s = float(disturbance_window_s)
+    if changes:
+        session.flush()
+        audit.record(session, actor, "trial.settings", "trial", trial.id, changes)  # type: ignore[arg-type]
+    return changes
+
+
 def find_trial(session: Session, code: str) -> Trial | None:
     return session.scalar(select(Trial).where(Trial.code == code.strip().upper()))
 
