@@ -146,6 +146,15 @@ def spool_files(store: ClipStore) -> list[str]:
     return sorted(p.name for p in store.tmp.iterdir()) if store.tmp.exists() else []
 
 
+def until_spooling(store: ClipStore, timeout_s: float = 10.0) -> None:
+    """Wait until the server is writing an upload's clip to its spool (the request was
+    authenticated and its body is streaming)."""
+    deadline = time.monotonic() + timeout_s
+    while not spool_files(store):
+        assert time.monotonic() < deadline, "the upload never reached the spool"
+        time.sleep(0.02)
+
+
 def assert_rejected(r: httpx.Response, status: int, code: str, client: Any, session: Session,
                     store: ClipStore, before: dict[str, Any]) -> dict[str, Any]:
     assert r.status_code == status, r.text
@@ -599,7 +608,7 @@ def test_device_hanging_up_mid_upload_is_not_a_server_error(fresh_settings: Sett
         store = srv.app.state.clip_store
         with socket.create_connection(("127.0.0.1", srv.port), timeout=20) as sock:
             sock.sendall(_raw_request_head(srv.port, tok, len(body)) + body[: len(body) // 3])
-            time.sleep(0.3)
+            until_spooling(store)
         deadline = time.time() + 5
         while not any("client disconnected" in r.getMessage() for r in caplog.records) and time.time() < deadline:
             time.sleep(0.05)
@@ -617,7 +626,7 @@ def test_slow_upload_does_not_block_other_devices(fresh_settings: Settings) -> N
     with LiveServer(fresh_settings) as srv:
         with socket.create_connection(("127.0.0.1", srv.port), timeout=30) as sock:
             sock.sendall(_raw_request_head(srv.port, tok, len(body)) + body[: len(body) // 2])
-            time.sleep(0.3)  # the slow device's request has been authenticated and is streaming
+            until_spooling(srv.app.state.clip_store)  # authenticated and streaming
             beat = {"sent_at": now.isoformat(), "listening": True, "firmware": "2.4.1"}
             r = httpx.post(f"{srv.url}/api/v1/heartbeats", json=beat, headers=bearer(tok2), timeout=10)
             assert r.status_code == 200, r.text
