@@ -12,7 +12,6 @@ from server.analytics import report
 from server.analytics.api import WEEK_PATTERN, summary_for
 from server.auth.models import User
 from server.deps import DbSession, require
-from server.errors import NotFound
 from server.trials import service as trials_service
 from server.web.templating import render
 
@@ -20,12 +19,7 @@ router = APIRouter(include_in_schema=False)
 
 
 def _trial_code(session: Any, trial: str | None) -> str:
-    if trial:
-        return trial
-    trials = trials_service.list_trials(session)
-    if not trials:
-        raise NotFound("There is no trial yet; add one with `trialhouse trial add`.", code="unknown_trial")
-    return trials[0].code
+    return trial or trials_service.trial_in_view(session, None).code
 
 
 @router.get("/summary")

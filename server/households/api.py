@@ -18,6 +18,7 @@ from server.errors import AppError, InvalidRequest, error_body
 from server.households import catalogue, erasure, schemas, service, transfer, views
 from server.households.models import Home, Installation, StagedEvent
 from server.roles import allowed
+from server.trials import service as trials_service
 from server.trials.models import Trial
 
 router = APIRouter(prefix="/api/v1", tags=["register"])
@@ -28,7 +29,7 @@ def _now(request: Request):  # type: ignore[no-untyped-def]
 
 
 def _trial(session: Session, code: str | None) -> Trial:
-    return service.get_trial_or_default(session, code)
+    return trials_service.trial_in_view(session, code)
 
 
 def home_out(session: Session, home: Home) -> schemas.HomeOut:

@@ -18,7 +18,8 @@ def _factory(settings: Settings):  # type: ignore[no-untyped-def]
 
 def cmd_home_import(args: argparse.Namespace, settings: Settings) -> int:
     from server.db import session_scope
-    from server.households import service, transfer
+    from server.households import transfer
+    from server.trials import service as trials_service
 
     path = Path(args.file)
     try:
@@ -27,7 +28,7 @@ def cmd_home_import(args: argparse.Namespace, settings: Settings) -> int:
         print(f"trialhouse: cannot read {path}: {exc.strerror}", file=sys.stderr)
         return 2
     with session_scope(_factory(settings)) as s:
-        trial = service.get_trial_or_default(s, args.trial)
+        trial = trials_service.trial_in_view(s, args.trial)
         try:
             report = transfer.import_csv(s, trial, data, actor="cli")
         except transfer.ImportRejected as exc:
@@ -41,10 +42,11 @@ def cmd_home_import(args: argparse.Namespace, settings: Settings) -> int:
 
 def cmd_home_export(args: argparse.Namespace, settings: Settings) -> int:
     from server.db import session_scope
-    from server.households import service, transfer
+    from server.households import transfer
+    from server.trials import service as trials_service
 
     with session_scope(_factory(settings)) as s:
-        trial = service.get_trial_or_default(s, args.trial)
+        trial = trials_service.trial_in_view(s, args.trial)
         text = transfer.export_csv(s, trial, with_personal_data=args.with_personal_data, actor="cli")
     if args.output:
         Path(args.output).write_text(text, encoding="utf-8")
@@ -59,10 +61,11 @@ def cmd_home_export(args: argparse.Namespace, settings: Settings) -> int:
 
 def cmd_quota_show(args: argparse.Namespace, settings: Settings) -> int:
     from server.db import session_scope
-    from server.households import service, views
+    from server.households import views
+    from server.trials import service as trials_service
 
     with session_scope(_factory(settings)) as s:
-        trial = service.get_trial_or_default(s, args.trial)
+        trial = trials_service.trial_in_view(s, args.trial)
         qv = views.quota_view(s, trial)
         r = qv.report
         if args.json:

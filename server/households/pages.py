@@ -153,7 +153,7 @@ def register_page(
     desc: bool = False,
     user: User = Depends(require("homes.view")),
 ) -> Response:
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     specs = catalogue.list_catalogue(session, t)
     error = None
     parsed = None
@@ -212,7 +212,7 @@ def new_home_form(
     trial: str | None = None,
     user: User = Depends(require("homes.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     return _page(
         request,
         user,
@@ -236,7 +236,7 @@ def new_home_submit(
     form: FormData = Depends(form_data),
     user: User = Depends(require("homes.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, _s(form, "trial") or None)
+    t = trials_service.trial_in_view(session, _s(form, "trial") or None)
     specs = catalogue.list_catalogue(session, t)
     values = _attribute_values(form, specs)
     contact = {f: _s(form, f) for f in service.CONTACT_FIELDS}
@@ -291,7 +291,7 @@ def import_form(
     trial: str | None = None,
     user: User = Depends(require("homes.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     return _page(
         request,
         user,
@@ -319,7 +319,7 @@ async def import_submit(
     trial_code = _s(form, "trial") or None
 
     def work() -> Response:
-        t = service.get_trial_or_default(session, trial_code)
+        t = trials_service.trial_in_view(session, trial_code)
         ctx = {
             "trial": t,
             "trials": _trials(session),
@@ -354,7 +354,7 @@ def _csv_response(text: str, filename: str) -> Response:
 def export_page(
     session: DbSession, trial: str | None = None, user: User = Depends(require("homes.view"))
 ) -> Response:
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     return _csv_response(transfer.export_csv(session, t, actor=user), f"register-{t.code}.csv")
 
 
@@ -363,7 +363,7 @@ def export_personal_page(
     session: DbSession, trial: str | None = None, user: User = Depends(require("personal.view"))
 ) -> Response:
     begin_write(session)  # the view writes an audit row
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     text = transfer.export_csv(session, t, with_personal_data=True, actor=user)
     session.commit()
     return _csv_response(text, f"register-{t.code}-personal.csv")
@@ -379,7 +379,7 @@ def attributes_page(
     trial: str | None = None,
     user: User = Depends(require("homes.view")),
 ) -> Response:
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     return _page(
         request,
         user,
@@ -402,7 +402,7 @@ def attributes_submit(
     form: FormData = Depends(form_data),
     user: User = Depends(require("attributes.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, _s(form, "trial") or None)
+    t = trials_service.trial_in_view(session, _s(form, "trial") or None)
     values = {k: _s(form, k) for k in ("key", "label", "kind", "options", "min_value", "max_value")}
     try:
         catalogue.add_attribute(
@@ -1061,7 +1061,7 @@ def quota_page(
     trial: str | None = None,
     user: User = Depends(require("quota.view")),
 ) -> Response:
-    t = service.get_trial_or_default(session, trial)
+    t = trials_service.trial_in_view(session, trial)
     return _page(request, user, "households/quota.html", _quota_ctx(session, t))
 
 
@@ -1072,7 +1072,7 @@ def target_submit(
     form: FormData = Depends(form_data),
     user: User = Depends(require("quota.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, _s(form, "trial") or None)
+    t = trials_service.trial_in_view(session, _s(form, "trial") or None)
     values = {k: _s(form, k) for k in ("attribute_key", "value", "min_count", "max_count", "label")}
     try:
         service.add_target(
@@ -1106,7 +1106,7 @@ def target_delete(
     form: FormData = Depends(form_data),
     user: User = Depends(require("quota.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, _s(form, "trial") or None)
+    t = trials_service.trial_in_view(session, _s(form, "trial") or None)
     service.delete_target(session, t, target_id, actor=user)
     session.commit()
     flash(request, "Quota target removed.")
@@ -1120,7 +1120,7 @@ def states_submit(
     form: FormData = Depends(form_data),
     user: User = Depends(require("quota.manage")),
 ) -> Response:
-    t = service.get_trial_or_default(session, _s(form, "trial") or None)
+    t = trials_service.trial_in_view(session, _s(form, "trial") or None)
     states = [v for v in form.getlist("states") if isinstance(v, str)]
     try:
         service.set_counting_states(session, t, states, actor=user)

@@ -958,17 +958,5 @@ def departures(session: Session, trial: Trial) -> list[tuple[str, dt.datetime, d
     return out
 
 
-def get_trial_or_default(session: Session, code: str | None, *, user: Any = None) -> Trial:
-    """The named trial, else the first one (``user``: the first one they may see)."""
-    from server.trials import service as trials_service
-
-    if code:
-        return trials_service.get_trial(session, code, user=user)
-    trials = trials_service.list_trials(session, user=user)
-    if not trials:
-        raise NotFound("There is no trial yet; add one with `trialhouse trial add`.", code="unknown_trial")
-    return trials[0]
-
-
 def home_count(session: Session, trial: Trial) -> int:
     return session.scalar(select(func.count(Home.id)).where(Home.trial_id == trial.id)) or 0

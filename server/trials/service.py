@@ -98,6 +98,21 @@ def get_trial(session: Session, code: str, *, user: Any = None) -> Trial:
     return trial
 
 
+def trial_in_view(session: Session, code: str | None, *, user: Any = None) -> Trial:
+    """The trial meant: the named one, else the first trial the caller sees (``list_trials`` order).
+
+    The one rule for every page, API call and command that takes an optional trial. Inside a
+    request the session is already limited to the caller's trials; ``user`` gives the same answer
+    outside one. 404 ``unknown_trial`` when the named trial is not visible or there is none yet.
+    """
+    if code:
+        return get_trial(session, code, user=user)
+    trials = list_trials(session, user=user)
+    if not trials:
+        raise NotFound("There is no trial yet; add one with `trialhouse trial add`.", code="unknown_trial")
+    return trials[0]
+
+
 def list_trials(session: Session, *, user: Any = None) -> list[Trial]:
     trials = list(session.scalars(select(Trial).order_by(Trial.starts_on.desc(), Trial.code)))
     if user is not None:

@@ -24,7 +24,6 @@ from server.deps import get_session
 from server.devices.models import Alert, Device
 from server.errors import NotFound
 from server.households.models import Home, Installation, StagedEvent
-from server.households import service as households_service
 from server.roles import CAPABILITIES
 from server.trials import service as trials_service
 from server.trials.models import TrialMembership
@@ -118,7 +117,7 @@ def test_visible_trials_admin_all_unlimited_all_members_exactly(session: Session
     assert trials_service.visible_trial_ids(session, admin) is None  # admins see all, rows or not
     assert trials_service.visible_trial_ids(session, lead) is None
     assert [t.code for t in trials_service.list_trials(session, user=coord)] == [a.code]
-    assert households_service.get_trial_or_default(session, None, user=coord).id == a.id
+    assert trials_service.trial_in_view(session, None, user=coord).id == a.id
     with pytest.raises(NotFound) as exc:
         trials_service.get_trial(session, b.code, user=coord)
     assert exc.value.code == "unknown_trial"
