@@ -17,7 +17,8 @@ from server.auth.models import User
 from server.devices import service as devices_service
 from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, Device
-from server.households.models import Home, Installation
+from server.households.models import Home
+from server.installations.models import Installation
 from server.settings import Settings
 from server.trials import service as trials_service
 from server.trials.models import Trial

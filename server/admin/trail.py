@@ -21,7 +21,7 @@ from server.admin.service import has_control_characters
 from server.auth.models import AuditEvent, User
 from server.errors import ValidationFailed
 from server.households import service as households_service
-from server.households.models import Installation
+from server.installations.models import Installation
 from server.web.csvsafe import safe_cell
 
 PER_PAGE = 50

@@ -43,6 +43,7 @@ from server.errors import AppError
 from server.households import erasure
 from server.households import service as households_service
 from server.households.models import Home
+from server.installations import service as installations_service
 from server.review import service as review_service
 from server.review.queue import routing_key
 from server.settings import Settings
@@ -359,9 +360,9 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
                 if step.state == "paused":
                     for p in plan.placements:
                         if p.home_key == hh.key and p.removed_at is not None and p.removed_at <= step.at:
-                            inst = households_service.current_installation(s, devices[p.serial])
+                            inst = installations_service.current_installation(s, devices[p.serial])
                             if inst is not None and inst.home_id == home.id:
-                                households_service.remove_installation(s, inst, removed_at=p.removed_at,
+                                installations_service.remove_installation(s, inst, removed_at=p.removed_at,
                                                                        actor=coordinator)
     for st in plan.staged:
         households_service.log_staged_event(s, home=homes[st.home_key], sound_class=st.sound_class,

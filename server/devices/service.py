@@ -39,7 +39,8 @@ from server.errors import (
     UnsupportedChannels,
     ValidationFailed,
 )
-from server.households.models import Home, Installation
+from server.households.models import Home
+from server.installations.models import Installation
 from server.settings import Settings
 from server.tokens import DEVICE_PREFIX, new_token, token_digest
 from server.trials.models import Trial
@@ -241,30 +242,6 @@ def listening_seconds(session: Session, device_ids: list[int], since: dt.datetim
     return out
 
 
-# --- attribution ----------------------------------------------------------------------------
-
-def installation_at(session: Session, device_id: int, at: dt.datetime) -> Installation | None:
-    """The installation of the device active at ``at`` (from inclusive, to exclusive)."""
-    return session.scalar(
-        select(Installation)
-        .where(Installation.device_id == device_id, Installation.installed_at <= at,
-               (Installation.removed_at.is_(None)) | (Installation.removed_at > at))
-        .order_by(Installation.installed_at.desc()).limit(1))
-
-
-def reattribute_alerts(session: Session, device_id: int) -> int:
-    """Re-resolve home and installation of every alert of a device; return how many changed."""
-    changed = 0
-    for alert in session.scalars(select(Alert).where(Alert.device_id == device_id)):
-        inst = installation_at(session, device_id, alert.effective_at)
-        new = (inst.id, inst.home_id) if inst else (None, None)
-        if (alert.installation_id, alert.home_id) != new:
-            alert.installation_id, alert.home_id = new
-            changed += 1
-    session.flush()
-    return changed
-
-
 # --- alerts ---------------------------------------------------------------------------------
 
 _UPLOAD_FACTS = select(
@@ -273,7 +250,8 @@ _UPLOAD_FACTS = select(
     select(Trial.sound_classes).where(Trial.id == bindparam("trial_id_v")).scalar_subquery().label("classes"),
     select(Clip.id).where(Clip.sha256 == bindparam("sha_v"), Clip.erased_at.is_(None))
     .scalar_subquery().label("clip_id"))
-# As installation_at, columns only, with the end of the device's last segment started by then.
+# As installations.service.installation_at, columns only, with the end of the device's last segment
+# started by then.
 _PLACED_AT = (select(Installation.id, Installation.home_id, Home.erased_at.label("home_erased_at"))
               .join(Home, Home.id == Installation.home_id)
               .where(Installation.device_id == bindparam("device_id_v"), Installation.installed_at <= bindparam("at_v"),

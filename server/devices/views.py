@@ -16,7 +16,8 @@ from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, Device
 from server.devices.schemas import AlertOut, DeviceOut
 from server.errors import AppError, Forbidden
-from server.households.models import Consent, Home, Installation
+from server.households.models import Consent, Home
+from server.installations.models import Installation
 from server.settings import Settings
 from server.trials.models import Trial
 

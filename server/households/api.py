@@ -16,7 +16,9 @@ from server.deps import ClipStoreDep, DbSession, SettingsDep, require
 from server.devices import service as devices_service
 from server.errors import AppError, InvalidRequest, error_body
 from server.households import catalogue, erasure, schemas, service, transfer, views
-from server.households.models import Home, Installation, StagedEvent
+from server.households.models import Home, StagedEvent
+from server.installations import service as installations_service
+from server.installations.models import Installation
 from server.roles import allowed
 from server.trials import service as trials_service
 from server.trials.models import Trial
@@ -459,7 +461,8 @@ def api_installations(
 ) -> list[schemas.InstallationOut]:
     h = service.get_home(session, home) if home else None
     d = devices_service.get_device(session, device) if device else None
-    return [installation_out(session, i) for i in service.list_installations(session, home=h, device=d)]
+    found = installations_service.list_installations(session, home=h, device=d)
+    return [installation_out(session, i) for i in found]
 
 
 @router.post("/installations", response_model=schemas.InstallationResult, status_code=201)
@@ -490,9 +493,8 @@ def api_remove(
     session: DbSession,
     user: User = Depends(require("installations.manage")),
 ) -> schemas.InstallationOut:
-    inst = service.remove_installation(
-        session, service.get_installation(session, installation_id), removed_at=body.removed_at, actor=user
-    )
+    inst = installations_service.get_installation(session, installation_id)
+    installations_service.remove_installation(session, inst, removed_at=body.removed_at, actor=user)
     session.commit()
     return installation_out(session, inst)
 
@@ -508,9 +510,9 @@ def api_correct(
     session: DbSession,
     user: User = Depends(require("installations.manage")),
 ) -> schemas.InstallationResult:
-    inst = service.get_installation(session, installation_id)
+    inst = installations_service.get_installation(session, installation_id)
     removed = None if body.reopen else (body.removed_at or inst.removed_at)
-    r = service.correct_installation(
+    r = installations_service.correct_installation(
         session,
         inst,
         installed_at=body.installed_at or inst.installed_at,

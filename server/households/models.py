@@ -1,12 +1,12 @@
-"""Homes, their lifecycle, consent, personal data, attributes, quota, installations and staged events."""
+"""Homes, their lifecycle, consent, personal data, attributes, quota and staged events."""
 
 from __future__ import annotations
 
 import datetime as dt
 from typing import Any
 
-from sqlalchemy import JSON, Float, ForeignKey, Index, String, Text, UniqueConstraint
-from sqlalchemy.orm import Mapped, mapped_column, relationship
+from sqlalchemy import JSON, Float, ForeignKey, String, Text, UniqueConstraint
+from sqlalchemy.orm import Mapped, mapped_column
 
 from server.db import Base, UTCDateTime, utcnow
 
@@ -24,9 +24,6 @@ class HomeState:
     all = (candidate, screened, consented, installed, active, paused, withdrawn, declined)
     # States in which a home's installed devices contribute monitored time.
     monitored = (installed, active, paused)
-
-
-ROOMS = ("kitchen", "hallway", "landing", "living_room", "nursery", "bedroom", "other")
 
 
 class Home(Base):
@@ -119,23 +116,6 @@ class QuotaTarget(Base):
     min_count: Mapped[int | None]
     max_count: Mapped[int | None]
     position: Mapped[int] = mapped_column(default=0)
-
-
-class Installation(Base):
-    """A device in a home and room from installed_at until removed_at (open-ended when NULL)."""
-
-    __tablename__ = "installation"
-    __table_args__ = (Index("ix_installation_device_from", "device_id", "installed_at"),)
-
-    id: Mapped[int] = mapped_column(primary_key=True)
-    device_id: Mapped[int] = mapped_column(ForeignKey("device.id"))
-    home_id: Mapped[int] = mapped_column(ForeignKey("home.id"), index=True)
-    room: Mapped[str] = mapped_column(String(20))
-    installed_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
-    removed_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
-    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)
-
-    home: Mapped[Home] = relationship(lazy="joined")
 
 
 class StagedEvent(Base):

@@ -22,7 +22,9 @@ from server.devices import service as devices_service
 from server.devices.models import Device
 from server.errors import AppError, ValidationFailed
 from server.households import catalogue, erasure, lifecycle, service, transfer, views
-from server.households.models import ROOMS, Home, HomeState
+from server.households.models import Home, HomeState
+from server.installations import service as installations_service
+from server.installations.models import ROOMS
 from server.roles import allowed
 from server.trials import service as trials_service
 from server.trials.models import Trial
@@ -681,7 +683,7 @@ def _device_choices(session: Session, trial: Trial) -> list[dict[str, Any]]:
     )
     out = []
     for d in devices:
-        cur = service.current_installation(session, d)
+        cur = installations_service.current_installation(session, d)
         out.append(
             {
                 "serial": d.serial,
@@ -761,7 +763,7 @@ def install_submit(
 
 
 def _installation_ctx(session: Session, home: Home, t: Trial, inst_id: int, **extra: Any) -> dict[str, Any]:
-    inst = service.get_installation(session, inst_id)
+    inst = installations_service.get_installation(session, inst_id)
     if inst.home_id != home.id:
         raise AppError(f"Installation {inst_id} is not in {home.code}.", code="not_found", status=404)
     device = session.get(Device, inst.device_id)
@@ -807,7 +809,7 @@ def removal_submit(
     ctx = _installation_ctx(session, home, t, installation_id, now=_now(request))
     try:
         at = _local_dt(_s(form, "removed_at"), t.timezone, "removed_at")
-        service.remove_installation(session, ctx["inst"], removed_at=at, actor=user)
+        installations_service.remove_installation(session, ctx["inst"], removed_at=at, actor=user)
     except AppError as exc:
         ctx["errors"] = (
             exc.errors if isinstance(exc, ValidationFailed) and exc.errors else {"removed_at": exc.message}
@@ -833,7 +835,7 @@ def correction_submit(
     try:
         start = _local_dt(values["installed_at"], t.timezone, "fix_installed_at")
         end = _local_dt_or_none(values["removed_at"], t.timezone, "fix_removed_at")
-        result = service.correct_installation(
+        result = installations_service.correct_installation(
             session,
             ctx["inst"],
             installed_at=start,

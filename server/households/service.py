@@ -21,23 +21,22 @@ from sqlalchemy.orm import Session
 from server import audit
 from server.auth.models import User
 from server.db import utcnow
-from server.devices import service as devices_service
-from server.devices.models import Device
 from server.errors import Conflict, IllegalTransition, NotFound, ValidationFailed
-from server.households import catalogue, lifecycle, quota, timeline
+from server.households import catalogue, lifecycle, quota
 from server.households.catalogue import seed_default_catalogue  # noqa: F401  (re-exported)
 from server.households.models import (
-    ROOMS,
     AttributeDefinition,
     Consent,
     Home,
     HomeContact,
     HomeState,
     HomeStateChange,
-    Installation,
     QuotaTarget,
     StagedEvent,
 )
+from server.installations import service as installations_service
+from server.installations.models import DeviceRef, Installation
+from server.installations.service import InstallResult, as_utc, when
 from server.trials.models import Trial
 
 Actor = User | str
@@ -53,14 +52,6 @@ def _by_id(actor: Actor | None) -> int | None:
     return actor.id if isinstance(actor, User) else None
 
 
-def _utc(value: dt.datetime, field: str) -> dt.datetime:
-    if value.tzinfo is None:
-        raise ValidationFailed(f"'{field}' needs a time zone.", {field: "Give the time with its time zone."})
-    return value.astimezone(dt.UTC)
-
-
-def _when(value: dt.datetime | None) -> str:
-    return value.strftime("%Y-%m-%d %H:%M UTC") if value else "now"
 
 
 # --- look-ups -----------------------------------------------------------------------------------
@@ -173,7 +164,7 @@ def create_home(
 ) -> Home:
     """A new candidate home with a generated code (or the given one), its first timeline entry."""
     clean = _check_attributes(session, trial, attributes or {})
-    at = _utc(at, "at") if at else utcnow()
+    at = as_utc(at, "at") if at else utcnow()
     if code is not None:
         code = code.strip().upper()
         if not CODE_PATTERN.match(code):
@@ -258,21 +249,6 @@ class TransitionResult:
     closed: tuple[Installation, ...]  # installations closed because the home left the pilot
 
 
-def _has_device_at(session: Session, home: Home, at: dt.datetime) -> bool:
-    return (
-        session.scalar(
-            select(Installation.id)
-            .where(
-                Installation.home_id == home.id,
-                Installation.installed_at <= at,
-                Installation.removed_at.is_(None) | (Installation.removed_at > at),
-            )
-            .limit(1)
-        )
-        is not None
-    )
-
-
 def transition(
     session: Session,
     home: Home,
@@ -289,12 +265,12 @@ def transition(
     as monitored). Leaving the pilot (withdrawn, declined) closes open installations at ``at``.
     Refusals: 409 ``illegal_transition``, ``consent_missing``, ``no_device_installed``.
     """
-    at = _utc(at, "at") if at else utcnow()
+    at = as_utc(at, "at") if at else utcnow()
     if home.erased_at is not None:
         raise IllegalTransition(f"{home.code} was withdrawn and erased; its state is final.")
     if at < home.state_changed_at:
         raise ValidationFailed(
-            f"{home.code} last changed state at {_when(home.state_changed_at)}; a new step cannot be "
+            f"{home.code} last changed state at {when(home.state_changed_at)}; a new step cannot be "
             f"dated before it.",
             {"at": "This time is before the home's last change of state."},
         )
@@ -303,7 +279,7 @@ def transition(
         home.state,
         to_state,
         has_consent=latest_consent(session, home) is not None,
-        has_device=_has_device_at(session, home, at),
+        has_device=installations_service.home_has_device_at(session, home.id, at),
     )
     if refusal is not None:
         raise IllegalTransition(refusal.message, code=refusal.code)
@@ -311,10 +287,10 @@ def transition(
     before = quota_report(session, trial)
     closed: list[Installation] = []
     if to_state in lifecycle.ENDED:
-        for inst in session.scalars(
-            select(Installation).where(Installation.home_id == home.id, Installation.removed_at.is_(None))
-        ):
-            closed.append(remove_installation(session, inst, removed_at=at, actor=actor))
+        for inst in installations_service.open_installations(session, home.id):
+            closed.append(
+                installations_service.remove_installation(session, inst, removed_at=at, actor=actor)
+            )
     change = HomeStateChange(
         home_id=home.id,
         from_state=home.state,
@@ -470,80 +446,14 @@ def has_contact(session: Session, home: Home) -> bool:
     return session.scalar(select(HomeContact.id).where(HomeContact.home_id == home.id)) is not None
 
 
-# --- installations ------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class InstallResult:
-    installation: Installation
-    closed: Installation | None  # the device's previous installation, closed by a move
-    reattributed: int  # alerts whose home or installation changed
-
-
-@dataclass(frozen=True)
-class CorrectionResult:
-    installation: Installation
-    reattributed: int
-
-
-def get_installation(session: Session, installation_id: int) -> Installation:
-    inst = session.get(Installation, installation_id)
-    if inst is None:
-        raise NotFound(f"No installation has id {installation_id}.", code="unknown_installation")
-    return inst
-
-
-def list_installations(
-    session: Session, *, home: Home | None = None, device: Device | None = None
-) -> list[Installation]:
-    q = select(Installation).order_by(Installation.installed_at.desc(), Installation.id.desc())
-    if home is not None:
-        q = q.where(Installation.home_id == home.id)
-    if device is not None:
-        q = q.where(Installation.device_id == device.id)
-    return list(session.scalars(q))
-
-
-def current_installation(session: Session, device: Device) -> Installation | None:
-    return session.scalar(
-        select(Installation).where(Installation.device_id == device.id, Installation.removed_at.is_(None))
-    )
-
-
-def _check_room(room: str) -> str:
-    room = (room or "").strip().lower().replace(" ", "_")
-    if room not in ROOMS:
-        raise ValidationFailed(
-            f"The room is one of: {', '.join(r.replace('_', ' ') for r in ROOMS)}.",
-            {"room": "Pick a room from the list."},
-        )
-    return room
-
-
-def _check_no_overlap(
-    session: Session,
-    device: Device,
-    start: dt.datetime,
-    end: dt.datetime | None,
-    exclude_id: int | None = None,
-) -> None:
-    for other in list_installations(session, device=device):
-        if other.id == exclude_id:
-            continue
-        if timeline.overlaps(start, end, other.installed_at, other.removed_at):
-            until = f"until {_when(other.removed_at)}" if other.removed_at else "with no end yet"
-            raise Conflict(
-                f"Device {device.serial} was in {other.home.code} ({other.room.replace('_', ' ')}) from "
-                f"{_when(other.installed_at)} {until}; a device can be in only one home at a time.",
-                code="installation_overlap",
-            )
+# --- installing a device: the household's side ----------------------------------------------
 
 
 def install_device(
     session: Session,
     *,
     home: Home,
-    device: Device,
+    device: DeviceRef,
     room: str,
     installed_at: dt.datetime,
     actor: Actor = "cli",
@@ -551,18 +461,14 @@ def install_device(
 ) -> InstallResult:
     """Put a device in a home's room from ``installed_at``; ``move`` first closes its open installation.
 
-    A consented home becomes installed. Refusals: 409 ``consent_missing``, ``illegal_transition``,
+    The home must be able to receive it (consent on record, a state that takes devices); a
+    consented home becomes installed. Refusals: 409 ``consent_missing``, ``illegal_transition``,
     ``device_installed_elsewhere``, ``installation_overlap``; 422 for a bad room or time.
     """
-    installed_at = _utc(installed_at, "installed_at")
-    room = _check_room(room)
+    installed_at = as_utc(installed_at, "installed_at")
+    room = installations_service.check_room(room)
     _refuse_if_erased(home, "receive a device")
-    if device.trial_id != home.trial_id:
-        raise Conflict(
-            f"Device {device.serial} belongs to another trial than {home.code}.", code="device_other_trial"
-        )
-    if device.revoked:
-        raise Conflict(f"Device {device.serial} was revoked; it cannot be installed.", code="revoked_device")
+    installations_service.check_pairing(home, device)
     if latest_consent(session, home) is None:
         raise IllegalTransition(
             f"{home.code} has no consent on record; record the household's signed "
@@ -573,40 +479,8 @@ def install_device(
         raise IllegalTransition(
             f"{home.code} is {home.state}; devices go only into consented, installed, active or paused homes."
         )
-    closed = None
-    current = current_installation(session, device)
-    if current is not None:
-        if not move:
-            raise Conflict(
-                f"Device {device.serial} is installed in {current.home.code} "
-                f"({current.room.replace('_', ' ')}) since {_when(current.installed_at)}; "
-                "remove it there first, or move it.",
-                code="device_installed_elsewhere",
-            )
-        if installed_at <= current.installed_at:
-            raise ValidationFailed(
-                f"A move must happen after the device's current installation began "
-                f"({_when(current.installed_at)}).",
-                {"installed_at": "Before the current installation began."},
-            )
-        closed = _close(session, current, installed_at, actor)
-    _check_no_overlap(session, device, installed_at, None)
-    inst = Installation(device_id=device.id, home_id=home.id, room=room, installed_at=installed_at)
-    session.add(inst)
-    session.flush()
-    audit.record(
-        session,
-        actor,
-        "installation.add",
-        "installation",
-        inst.id,
-        {
-            "device": device.serial,
-            "home": home.code,
-            "room": room,
-            "installed_at": installed_at.isoformat(),
-            "moved_from": closed.home.code if closed else None,
-        },
+    inst, closed = installations_service.open_installation(
+        session, home=home, device=device, room=room, installed_at=installed_at, actor=actor, move=move
     )
     if home.state == HomeState.consented:
         transition(
@@ -617,100 +491,16 @@ def install_device(
             at=max(installed_at, home.state_changed_at),
             note=f"Device {device.serial} installed ({room.replace('_', ' ')}).",
         )
-    return InstallResult(inst, closed, devices_service.reattribute_alerts(session, device.id))
-
-
-def _close(session: Session, inst: Installation, removed_at: dt.datetime, actor: Actor) -> Installation:
-    if removed_at <= inst.installed_at:
-        raise ValidationFailed(
-            f"The removal must come after the installation began ({_when(inst.installed_at)}).",
-            {"removed_at": "Before the installation began."},
-        )
-    inst.removed_at = removed_at
-    session.flush()
-    audit.record(
-        session,
-        actor,
-        "installation.remove",
-        "installation",
-        inst.id,
-        {"home": inst.home.code, "removed_at": removed_at.isoformat()},
-    )
-    return inst
-
-
-def remove_installation(
-    session: Session, inst: Installation, *, removed_at: dt.datetime, actor: Actor = "cli"
-) -> Installation:
-    """Close an open installation at ``removed_at``; alerts after it become unassigned."""
-    removed_at = _utc(removed_at, "removed_at")
-    if inst.removed_at is not None:
-        raise Conflict(
-            f"This installation already ended at {_when(inst.removed_at)}; correct its dates instead.",
-            code="installation_closed",
-        )
-    _close(session, inst, removed_at, actor)
-    devices_service.reattribute_alerts(session, inst.device_id)
-    return inst
+    return InstallResult(inst, closed, installations_service.reattribute_alerts(session, device.id))
 
 
 def move_device(
-    session: Session, *, device: Device, to_home: Home, room: str, at: dt.datetime, actor: Actor = "cli"
+    session: Session, *, device: DeviceRef, to_home: Home, room: str, at: dt.datetime, actor: Actor = "cli"
 ) -> InstallResult:
     """Close the device's open installation at ``at`` and open one in ``to_home``."""
     return install_device(
         session, home=to_home, device=device, room=room, installed_at=at, actor=actor, move=True
     )
-
-
-def correct_installation(
-    session: Session,
-    inst: Installation,
-    *,
-    installed_at: dt.datetime,
-    removed_at: dt.datetime | None,
-    room: str,
-    actor: Actor = "cli",
-) -> CorrectionResult:
-    """Fix an installation's dates or room; the device's alerts are re-attributed (audited)."""
-    installed_at = _utc(installed_at, "installed_at")
-    removed_at = _utc(removed_at, "removed_at") if removed_at is not None else None
-    room = _check_room(room)
-    if removed_at is not None and removed_at <= installed_at:
-        raise ValidationFailed(
-            "The removal must come after the installation began.",
-            {"removed_at": "Must be after the installation time."},
-        )
-    device = session.get(Device, inst.device_id)
-    assert device is not None
-    _check_no_overlap(session, device, installed_at, removed_at, exclude_id=inst.id)
-    before = {
-        "installed_at": inst.installed_at.isoformat(),
-        "room": inst.room,
-        "removed_at": inst.removed_at.isoformat() if inst.removed_at else None,
-    }
-    inst.installed_at, inst.removed_at, inst.room = installed_at, removed_at, room
-    session.flush()
-    changed = devices_service.reattribute_alerts(session, device.id)
-    audit.record(
-        session,
-        actor,
-        "installation.correct",
-        "installation",
-        inst.id,
-        {
-            "device": device.serial,
-            "home": inst.home.code,
-            "before": before,
-            "after": {
-                "installed_at": installed_at.isoformat(),
-                "room": room,
-                "removed_at": removed_at.isoformat() if removed_at else None,
-            },
-            "alerts_reattributed": changed,
-        },
-    )
-    return CorrectionResult(inst, changed)
 
 
 # --- staged test events -------------------------------------------------------------------------
@@ -732,7 +522,7 @@ def log_staged_event(
     """Record a test sound played on purpose in a home (analytics matches alerts against it)."""
     trial = trial_of(session, home)
     errors: dict[str, str] = {}
-    started_at, ended_at = _utc(started_at, "started_at"), _utc(ended_at, "ended_at")
+    started_at, ended_at = as_utc(started_at, "started_at"), as_utc(ended_at, "ended_at")
     source = (source or "").strip()
     if sound_class not in trial.sound_classes:
         errors["sound_class"] = f"Pick one of the trial's sound classes: {', '.join(trial.sound_classes)}."
@@ -746,16 +536,7 @@ def log_staged_event(
         errors["level_db"] = "A sound level is between -20 and 160 dB."
     if errors:
         raise ValidationFailed(next(iter(errors.values())), errors)
-    in_place = session.scalar(
-        select(Installation.id)
-        .where(
-            Installation.home_id == home.id,
-            Installation.installed_at < ended_at,
-            Installation.removed_at.is_(None) | (Installation.removed_at > started_at),
-        )
-        .limit(1)
-    )
-    if in_place is None:
+    if not installations_service.home_had_device_during(session, home.id, started_at, ended_at):
         raise ValidationFailed(
             f"No device was installed in {home.code} at that time, so nothing could hear the test.",
             {"started_at": "No device was installed then."},

@@ -21,9 +21,9 @@ from server.households.models import (
     Consent,
     Home,
     HomeStateChange,
-    Installation,
     StagedEvent,
 )
+from server.installations.models import Installation
 from server.trials.models import Trial
 
 WEEKS_SHOWN = 12

@@ -22,7 +22,8 @@ from server.auth.models import User
 from server.db import utcnow
 from server.devices.models import Alert, AlertState, Clip
 from server.errors import Conflict, Forbidden, NotFound
-from server.households.models import Consent, Home, Installation
+from server.households.models import Consent, Home
+from server.installations.models import Installation
 from server.review.models import GoldAnswer, GoldCheck, Verdict
 from server.trials.models import DEFAULT_CAUSES, Trial
 

@@ -180,10 +180,10 @@ def _scope_options(ids: frozenset[int]) -> list[Any]:
     from server.households.models import (
         AttributeDefinition,
         Home,
-        Installation,
         QuotaTarget,
         StagedEvent,
     )
+    from server.installations.models import Installation
     from server.review.models import GoldCheck, Verdict
 
     keep = tuple(sorted(ids))

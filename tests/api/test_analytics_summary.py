@@ -20,6 +20,7 @@ from server.devices import service as devices_service
 from server.devices.models import Alert, FirmwareChange, ListeningSegment
 from server.devices.schemas import HeartbeatIn
 from server.households import service as households_service
+from server.installations import service as installations_service
 from server.trials import service as trials_service
 from tests import factories
 
@@ -236,9 +237,9 @@ def test_corrected_installation_date_applies_to_time_and_alerts(session, store, 
     assert f["rate"]["events"] == 0 and f["alerts"]["outside_monitored_time"] == 1
 
     inst = next(
-        i for i in households_service.list_installations(session, home=home) if i.device_id == second.id
+        i for i in installations_service.list_installations(session, home=home) if i.device_id == second.id
     )
-    households_service.correct_installation(
+    installations_service.correct_installation(
         session, inst, installed_at=at(1), removed_at=None, room="landing"
     )
     f = figures(summary(lead))

@@ -9,7 +9,8 @@ from sqlalchemy import select
 
 from server.auth.models import AuditEvent
 from server.devices.models import Alert, ListeningSegment
-from server.households import service, views
+from server.households import views
+from server.installations import service as installations_service
 from tests import factories
 from tests.conftest import csrf_of
 
@@ -109,7 +110,7 @@ def test_correcting_dates_reattributes_alerts_and_is_audited(staff_client, sessi
     early = factories.make_alert(session, store, settings, device, detected_at=day(8))
     late = factories.make_alert(session, store, settings, device, detected_at=day(12))
     assert (early.home_id, late.home_id) == (None, home.id)
-    inst = service.list_installations(session, home=home)[0]
+    inst = installations_service.list_installations(session, home=home)[0]
     # The device really went in on day 7: the early alert belongs to the home too.
     r = c.patch(f"/api/v1/installations/{inst.id}", json={"installed_at": day(7).isoformat()})
     assert r.status_code == 200, r.text
@@ -138,8 +139,10 @@ def test_listening_hours_follow_the_installation(session, trial):
     ov = views.home_overview(session, home, now=day(5))
     assert sum(w.hours for w in ov.weekly_hours) == 23.0
     assert ov.installations[0].serial == device.serial
-    inst = service.list_installations(session, home=home)[0]
-    service.correct_installation(session, inst, installed_at=day(1, 5), removed_at=None, room="kitchen")
+    inst = installations_service.list_installations(session, home=home)[0]
+    installations_service.correct_installation(
+        session, inst, installed_at=day(1, 5), removed_at=None, room="kitchen"
+    )
     ov = views.home_overview(session, home, now=day(5))
     assert sum(w.hours for w in ov.weekly_hours) == 5.0 + 6.0 + 20.0
 
@@ -186,7 +189,7 @@ def test_removal_before_installation_is_refused(staff_client, session, trial):
     c = json_client(staff_client)
     device, _ = factories.make_device(session, trial)
     home = factories.make_installed_home(session, trial, device, installed_at=day(5))
-    inst = service.list_installations(session, home=home)[0]
+    inst = installations_service.list_installations(session, home=home)[0]
     r = c.post(f"/api/v1/installations/{inst.id}/removal", json={"removed_at": day(4).isoformat()})
     assert r.status_code == 422 and "removed_at" in r.json()["error"]["fields"]
     assert (

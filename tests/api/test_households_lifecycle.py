@@ -8,7 +8,8 @@ from sqlalchemy import select
 
 from server.auth.models import AuditEvent
 from server.households import service
-from server.households.models import HomeStateChange, Installation
+from server.households.models import HomeStateChange
+from server.installations.models import Installation
 from tests import factories
 from tests.conftest import csrf_of
 

@@ -10,6 +10,7 @@ from sqlalchemy import select
 from server.devices.models import ListeningSegment
 from server.households import service
 from server.households.models import StagedEvent
+from server.installations import service as installations_service
 from tests import factories
 from tests.conftest import csrf_of
 
@@ -202,7 +203,7 @@ def test_installation_page_corrects_and_removes(staff_client, session, settings,
     home = factories.make_installed_home(session, trial, device, installed_at=day(5))
     alert = factories.make_alert(session, store, settings, device, detected_at=day(4))
     assert alert.home_id is None
-    inst = service.list_installations(session, home=home)[0]
+    inst = installations_service.list_installations(session, home=home)[0]
     url = f"/homes/{home.code}/installations/{inst.id}"
     token = csrf_of(c, url)
     r = post(
@@ -269,7 +270,7 @@ def test_every_form_carries_the_session_token(staff_client, session, trial):
     c = staff_client("coordinator")
     device, _ = factories.make_device(session, trial)
     home = factories.make_installed_home(session, trial, device, installed_at=day(1))
-    inst = service.list_installations(session, home=home)[0]
+    inst = installations_service.list_installations(session, home=home)[0]
     token = csrf_of(c)
     for url in (
         f"/homes?trial={trial.code}",

@@ -15,7 +15,7 @@ from server import migrate
 from server.db import make_engine
 from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, Clip
-from server.households.models import Installation
+from server.installations.models import Installation
 from tests import factories
 from tests.conftest import committed_session
 

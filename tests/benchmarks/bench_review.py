@@ -41,7 +41,8 @@ from server.auth.passwords import hash_password  # noqa: E402
 from server.db import make_engine, make_session_factory, writer_engine  # noqa: E402
 from server.devices import audio  # noqa: E402
 from server.devices.models import Alert, AlertState, Clip, Device  # noqa: E402
-from server.households.models import Home, Installation  # noqa: E402
+from server.households.models import Home  # noqa: E402
+from server.installations.models import Installation  # noqa: E402
 from server.review import images, queue, service  # noqa: E402
 from server.review.models import GoldCheck, Verdict  # noqa: E402
 from server.trials.models import Trial  # noqa: E402
