@@ -152,33 +152,44 @@ def compare_groups(
     """
     _check_level(confidence_level)
     f = _frame(rows, key, home, events, exposure)
-    sums = f.groupby("group", sort=True).agg(x=("x", "sum"), t=("t", "sum"), homes=("home", "nunique"))
+    # Per home and group sums, each a pandas grouped (compensated) sum over the rows in their order,
+    # as a pivot table would sum them; homes in sorted order, groups by monitored time below.
+    home_at, home_names = pd.factorize(f["home"], sort=True)
+    group_at, group_names = pd.factorize(f["group"], sort=True)
+    n_homes, n_groups = len(home_names), len(group_names)
+    cells = pd.DataFrame({"cell": home_at * n_groups + group_at, "x": f["x"], "t": f["t"]})
+    cells = cells.groupby("cell", sort=True)[["x", "t"]].sum()
+    cell = cells.index.to_numpy(dtype=np.int64)
+    sums = f.groupby("group", sort=True)[["x", "t"]].sum()
+    sums["homes"] = np.bincount(cell % n_groups, minlength=n_groups) if n_groups else np.zeros(0, np.int64)
     sums = sums.sort_values(["t"], ascending=False, kind="mergesort")
     names = [str(g) for g in sums.index]
-    n_homes = int(f["home"].nunique())
     x_g = sums["x"].to_numpy()
     t_g = sums["t"].to_numpy()
     rate = x_g / t_g
     if reference is None and names:
         reference = names[0]
-    nan = np.full(len(names), np.nan)
-    table = pd.DataFrame(
-        {
-            "group": names,
-            "homes": sums["homes"].to_numpy(dtype=np.int64),
-            "false_alarms": x_g.astype(np.int64),
-            "home_months": t_g,
-            "rate": rate,
-            "ratio": nan.copy(),
-            "low": nan.copy(),
-            "high": nan.copy(),
-            "p_value": nan.copy(),
-            "differs": np.zeros(len(names), dtype=bool),
-            "reason": np.full(len(names), None, dtype=object),
-        }
-    )
+    ratio, low, high, p_value = (np.full(len(names), np.nan) for _ in range(4))
+    differs = np.zeros(len(names), dtype=bool)
+    reasons: list[str | None] = [None] * len(names)
 
     def result(statistic: float, q: int, p: float, reason: str | None) -> GroupComparison:
+        table = pd.DataFrame(
+            {
+                "group": names,
+                "homes": sums["homes"].to_numpy(dtype=np.int64),
+                "false_alarms": x_g.astype(np.int64),
+                "home_months": t_g,
+                "rate": rate,
+                "ratio": ratio,
+                "low": low,
+                "high": high,
+                "p_value": p_value,
+                "differs": differs,
+                # Object, not text, so a missing reason stays None.
+                "reason": pd.Series(reasons, dtype=object),
+            }
+        )
         return GroupComparison(
             key=key,
             reference=reference,
@@ -200,32 +211,33 @@ def compare_groups(
     if reference not in names:
         raise ValueError(f"reference group {reference!r} has no monitored time")
     ref = names.index(reference)
-    table.loc[ref, "reason"] = REFERENCE
+    reasons = [REFERENCE if i == ref else None for i in range(len(names))]
     if n_homes < max(min_homes, 2):
-        table.loc[table.index != ref, "reason"] = TOO_FEW_HOMES
+        reasons = [REFERENCE if i == ref else TOO_FEW_HOMES for i in range(len(names))]
         return result(math.nan, 0, math.nan, TOO_FEW_HOMES)
     if x_g.sum() == 0:
-        table.loc[table.index != ref, "reason"] = NO_EVENTS_IN_GROUP
+        reasons = [REFERENCE if i == ref else NO_EVENTS_IN_GROUP for i in range(len(names))]
         return result(math.nan, 0, math.nan, NO_EVENTS_IN_GROUP)
-    # Per home and group sums (zero where a home has no row of the group).
-    xs = f.pivot_table(index="home", columns="group", values="x", aggfunc="sum", fill_value=0.0)
-    ts = f.pivot_table(index="home", columns="group", values="t", aggfunc="sum", fill_value=0.0)
-    xs = xs.reindex(columns=names, fill_value=0.0).to_numpy()
-    ts = ts.reindex(columns=names, fill_value=0.0).to_numpy()
+    # Columns in the order of `names` (zero where a home has no row of the group).
+    column = np.empty(n_groups, dtype=np.int64)
+    column[group_names.get_indexer(sums.index)] = np.arange(n_groups)
+    xs = np.zeros((n_homes, n_groups))
+    ts = np.zeros((n_homes, n_groups))
+    xs[cell // n_groups, column[cell % n_groups]] = cells["x"].to_numpy()
+    ts[cell // n_groups, column[cell % n_groups]] = cells["t"].to_numpy()
     g = n_homes
     df = g - 1
     for i in range(len(names)):
         if i == ref:
             continue
         if x_g[ref] == 0:
-            table.loc[i, "reason"] = NO_EVENTS_IN_GROUP
+            reasons[i] = NO_EVENTS_IN_GROUP
             continue
         in_pair = (ts[:, i] > 0) | (ts[:, ref] > 0)
-        est, low, high, p = _pair_test(
+        ratio[i], low[i], high[i], p_value[i] = _pair_test(
             xs[in_pair, i], ts[in_pair, i], xs[in_pair, ref], ts[in_pair, ref], df, confidence_level
         )
-        table.loc[i, ["ratio", "low", "high", "p_value"]] = [est, low, high, p]
-        table.loc[i, "differs"] = p < 1 - confidence_level
+        differs[i] = p_value[i] < 1 - confidence_level
     others = [i for i in range(len(names)) if i != ref]
     q = len(others)
     if q > df:
@@ -284,26 +296,50 @@ def _pair_test(
     else:
         centre = _BOUND if xa_sum > 0 else -_BOUND
     centre = min(max(centre, -_BOUND), _BOUND)
-    grid = np.unique(np.concatenate([np.arange(-_BOUND, _BOUND + _STEP / 2, _STEP), [0.0, centre]]))
-    stat = _pair_t(xa, ta, xb, tb, grid)
+    grid = np.unique(np.concatenate([_GRID, [0.0, centre]]))
+    # The statistic is computed only at the grid points the answer depends on (those between the
+    # estimate and a ratio of 1, and outwards from the estimate to the first crossing of each
+    # limit), in blocks; each point's value is what the whole grid would give there.
+    stat = np.zeros(len(grid))
+    known = np.zeros(len(grid), dtype=bool)
+
+    def fill(lo: int, hi: int) -> None:
+        todo = np.flatnonzero(~known[lo:hi]) + lo
+        if len(todo):
+            stat[todo] = _pair_t(xa, ta, xb, tb, grid[todo])
+            known[todo] = True
+
     at = int(np.searchsorted(grid, centre))
     zero = int(np.searchsorted(grid, 0.0))
+    fill(min(at, zero), max(at, zero) + 1)
     between = stat[min(at, zero) : max(at, zero) + 1]
     p = float(2 * stats.t.sf(float(np.abs(between).max()), df))
 
     def edge(direction: int) -> float:
         i = at
+        block = _BLOCK
         while 0 <= i + direction < len(grid):
-            j = i + direction
-            if abs(stat[j]) > q:
-                target = math.copysign(q, stat[j])
+            # The next block of points outwards, then the first of them beyond the quantile.
+            stop = i + direction * block
+            lo, hi = (i + 1, min(stop, len(grid) - 1) + 1) if direction > 0 else (max(stop, 0), i)
+            fill(lo, hi)
+            ahead = stat[lo:hi] if direction > 0 else stat[lo:hi][::-1]
+            beyond = np.flatnonzero(np.abs(ahead) > q)
+            if len(beyond) == 0:
+                i = hi - 1 if direction > 0 else lo
+                block *= 2
+                continue
+            j = i + direction * (int(beyond[0]) + 1)
+            i = j - direction
+            target = math.copysign(q, stat[j])
 
-                def f(d: float, target: float = target) -> float:
-                    return float(_pair_t(xa, ta, xb, tb, d)[0]) - target
+            def f(d: float, target: float = target) -> float:
+                return float(_pair_t(xa, ta, xb, tb, d)[0]) - target
 
-                lo, hi = sorted((grid[i], grid[j]))
-                return float(optimize.brentq(f, lo, hi, xtol=1e-10)) if f(lo) * f(hi) < 0 else float(grid[j])
-            i = j
+            lo_d, hi_d = sorted((grid[i], grid[j]))
+            if f(lo_d) * f(hi_d) < 0:
+                return float(optimize.brentq(f, lo_d, hi_d, xtol=1e-10))
+            return float(grid[j])
         return direction * math.inf
 
     low = 0.0 if xa_sum == 0 else math.exp(edge(-1))
@@ -314,6 +350,8 @@ def _pair_test(
 
 _BOUND = 30.0
 _STEP = 0.02
+_GRID = np.arange(-_BOUND, _BOUND + _STEP / 2, _STEP)
+_BLOCK = 32  # grid points evaluated at once when walking out to a limit (doubling each time)
 Floats = np.ndarray
 
 
