@@ -12,9 +12,9 @@ import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any, ClassVar
 
-from sqlalchemy import JSON, DateTime, MetaData, create_engine, event
+from sqlalchemy import JSON, DateTime, MetaData, Table, create_engine, event
 from sqlalchemy.engine import Engine
 from sqlalchemy.orm import DeclarativeBase, Session, sessionmaker
 from sqlalchemy.types import TypeDecorator
@@ -31,6 +31,11 @@ NAMING_CONVENTION = {
 class Base(DeclarativeBase):
     metadata = MetaData(naming_convention=NAMING_CONVENTION)
     type_annotation_map = {dict[str, Any]: JSON, list[str]: JSON, list[dict[str, Any]]: JSON}
+
+    if TYPE_CHECKING:
+        # Every model is declared with __tablename__, so it is mapped to a Table; SQLAlchemy's
+        # stubs allow any FromClause, which insert() and update() do not take.
+        __table__: ClassVar[Table]
 
 
 SQLITE_BUSY_TIMEOUT_S = 30.0
@@ -75,6 +80,7 @@ class _SQLiteConnection(sqlite3.Connection):
 
     _writer_locks: dict[str, threading.Lock] = {}
     _guard = threading.Lock()
+    _held: threading.Lock | None = None  # the writer lock this connection holds, if any
 
     def acquire_writer(self, database: str, timeout_s: float) -> None:
         with self._guard:
@@ -85,7 +91,7 @@ class _SQLiteConnection(sqlite3.Connection):
             self._held = lock
 
     def release_writer(self) -> None:
-        lock, self._held = getattr(self, "_held", None), None
+        lock, self._held = self._held, None
         if lock is not None:
             lock.release()
 
