@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session
 from sqlalchemy.orm.attributes import set_committed_value
 
 from server import audit
+from server.auth.models import User
 from server.db import utcnow
 from server.devices import audio
 from server.devices.clipstore import ClipStore, SpooledUpload
@@ -60,7 +61,7 @@ class ClipOfErasedHome(AppError):
 # --- registration ---------------------------------------------------------------------------
 
 def register_device(session: Session, *, serial: str, trial: Trial, hardware_model: str = "unknown",
-                    actor: object = "cli", heartbeat_interval_s: int = 60) -> tuple[Device, str]:
+                    actor: User | str = "cli", heartbeat_interval_s: int = 60) -> tuple[Device, str]:
     """Create a device and its bearer token. The token is returned once and stored only hashed."""
     serial = serial.strip()
     if not serial or len(serial) > 64:
@@ -73,18 +74,16 @@ def register_device(session: Session, *, serial: str, trial: Trial, hardware_mod
                     token_hash=token_digest(token), heartbeat_interval_s=heartbeat_interval_s)
     session.add(device)
     session.flush()
-    audit.record(session, actor, "device.register", "device", device.id,  # type: ignore[arg-type]
-                 {"serial": serial, "trial": trial.code})
+    audit.record(session, actor, "device.register", "device", device.id, {"serial": serial, "trial": trial.code})
     return device, token
 
 
-def revoke_device(session: Session, serial: str, actor: object = "cli") -> Device:
+def revoke_device(session: Session, serial: str, actor: User | str = "cli") -> Device:
     device = get_device(session, serial)
     if not device.revoked:
         device.revoked = True
         device.revoked_at = utcnow()
-        audit.record(session, actor, "device.revoke", "device", device.id,  # type: ignore[arg-type]
-                     {"serial": serial})
+        audit.record(session, actor, "device.revoke", "device", device.id, {"serial": serial})
     return device
 
 

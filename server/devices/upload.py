@@ -27,6 +27,18 @@ class AlertUpload:
     parts: list[str] = field(default_factory=list)
 
 
+@dataclass
+class _PartState:
+    """Where the parser is: the current part's name, its headers so far, the meta buffer."""
+
+    name: str | None = None
+    buf: bytearray | None = None
+    hname: bytes = b""
+    hval: bytes = b""
+    headers: dict[bytes, bytes] = field(default_factory=dict)
+    ended: bool = False
+
+
 def boundary_of(content_type: str) -> bytes:
     ctype, params = parse_options_header(content_type or "")
     if ctype != b"multipart/form-data":
@@ -43,32 +55,27 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
     """Parse the body; the caller must ``discard()`` the clip spool when done."""
     boundary = boundary_of(content_type)
     result = AlertUpload()
-    state: dict[str, object] = {"name": None, "buf": None, "hname": b"", "hval": b"", "headers": {},
-                                "ended": False}
+    state = _PartState()
     errors: list[Exception] = []
 
     def on_part_begin() -> None:
-        state["headers"] = {}
-        state["name"] = None
+        state.headers = {}
+        state.name = None
 
     def on_header_field(data: bytes, start: int, end: int) -> None:
-        state["hname"] = bytes(state["hname"]) + data[start:end]  # type: ignore[arg-type]
+        state.hname += data[start:end]
 
     def on_header_value(data: bytes, start: int, end: int) -> None:
-        state["hval"] = bytes(state["hval"]) + data[start:end]  # type: ignore[arg-type]
+        state.hval += data[start:end]
 
     def on_header_end() -> None:
-        headers = state["headers"]
-        assert isinstance(headers, dict)
-        headers[bytes(state["hname"]).lower()] = bytes(state["hval"])  # type: ignore[arg-type]
-        state["hname"], state["hval"] = b"", b""
+        state.headers[state.hname.lower()] = state.hval
+        state.hname, state.hval = b"", b""
 
     def on_headers_finished() -> None:
-        headers = state["headers"]
-        assert isinstance(headers, dict)
-        disp, params = parse_options_header(headers.get(b"content-disposition", b""))
+        disp, params = parse_options_header(state.headers.get(b"content-disposition", b""))
         name = params.get(b"name", b"").decode("utf-8", "replace")
-        state["name"] = name
+        state.name = name
         result.parts.append(name)
         if name == "clip":
             if result.clip is not None:
@@ -79,13 +86,13 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
             if result.meta is not None:
                 errors.append(InvalidRequest("The form has more than one 'meta' part; send one."))
                 return
-            state["buf"] = bytearray()
+            state.buf = bytearray()
 
     def on_part_data(data: bytes, start: int, end: int) -> None:
         if errors:
             return
         chunk = data[start:end]
-        name = state["name"]
+        name = state.name
         if name == "clip" and result.clip is not None:
             if result.clip.size + len(chunk) > max_clip_bytes:
                 errors.append(ClipTooLarge(
@@ -94,8 +101,8 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
                 return
             result.clip.write(chunk)
         elif name == "meta":
-            buf = state["buf"]
-            assert isinstance(buf, bytearray)
+            buf = state.buf
+            assert buf is not None  # set when the meta part's headers ended
             if len(buf) + len(chunk) > META_LIMIT:
                 errors.append(InvalidRequest(f"The 'meta' part is larger than {META_LIMIT // 1024} KiB."))
                 return
@@ -106,12 +113,12 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
                 errors.append(InvalidRequest("The form carries too much besides 'meta' and 'clip'."))
 
     def on_part_end() -> None:
-        if state["name"] == "meta" and isinstance(state["buf"], bytearray) and result.meta is None:
-            result.meta = bytes(state["buf"])
-            state["buf"] = None
+        if state.name == "meta" and state.buf is not None and result.meta is None:
+            result.meta = bytes(state.buf)
+            state.buf = None
 
     def on_end() -> None:
-        state["ended"] = True
+        state.ended = True
 
     parser = MultipartParser(boundary, {
         "on_end": on_end,
@@ -140,7 +147,7 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
         if result.clip:
             result.clip.discard()
         raise errors[0]
-    if not state["ended"] and result.parts:
+    if not state.ended and result.parts:
         # The parser accepts a body cut off before its closing delimiter (RFC 2046 section 5.1.1);
         # a part that never ended may be incomplete, so none of it is used.
         if result.clip:
