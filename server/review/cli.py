@@ -63,7 +63,10 @@ def cmd_review_overview(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
-def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def register(
+    sub: argparse._SubParsersAction[argparse.ArgumentParser],
+    storage: argparse._SubParsersAction[argparse.ArgumentParser],
+) -> None:
     """Add this domain's commands: ``sub`` is the top level, ``storage`` the `storage` group."""
     review = sub.add_parser("review", help="clip review").add_subparsers(dest="review_cmd", required=True)
     ro = review.add_parser("overview", help="backlog, reviewer agreement and reviewer quality")

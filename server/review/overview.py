@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import datetime as dt
 import math
+from collections.abc import Hashable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -274,6 +275,18 @@ class ReviewOverview:
     notes: tuple[str, ...] = field(default_factory=tuple)
 
 
+def _reviewer_id(key: Hashable) -> int:
+    """A reviewer id as the agreement maths gives it back: a frame key, an int or a numpy integer."""
+    if not isinstance(key, int | np.integer):
+        raise TypeError(f"Reviewer id {key!r} is not an integer.")
+    return int(key)
+
+
+def _reviewer_name(names: dict[int, str], key: Hashable) -> str:
+    rid = _reviewer_id(key)
+    return names.get(rid, str(rid))
+
+
 def review_overview(
     session: Session,
     trial_id: int | None = None,
@@ -343,8 +356,8 @@ def review_overview(
     )
     pairs = tuple(
         ReviewerPairKappa(
-            names.get(p.reviewer_a, str(p.reviewer_a)),
-            names.get(p.reviewer_b, str(p.reviewer_b)),
+            _reviewer_name(names, p.reviewer_a),
+            _reviewer_name(names, p.reviewer_b),
             p.shared,
             p.kappa,
             p.agreement,
@@ -374,11 +387,9 @@ def review_overview(
         recent = recent[recent["decided_at"] >= pd.Timestamp(since)]
     tp = agreement.throughput(recent, idle_gap_s=idle_gap_s)
     counts = vf.groupby("reviewer_id").size().to_dict() if not vf.empty else {}
-    reviewer_ids = sorted(set(counts) | set(gold) | {k for k in tp if k is not None})
+    reviewer_ids = sorted(_reviewer_id(k) for k in set(counts) | set(gold) | {k for k in tp if k is not None})
     reviewers = tuple(
-        ReviewerQuality(
-            int(rid), names.get(rid, str(rid)), int(counts.get(rid, 0)), gold.get(rid), tp.get(rid)
-        )
+        ReviewerQuality(rid, names.get(rid, str(rid)), int(counts.get(rid, 0)), gold.get(rid), tp.get(rid))
         for rid in reviewer_ids
     )
     notes = []

@@ -280,22 +280,20 @@ def gold_create(
     expected_cause: str = Form(""),
     user: User = Depends(require("review.gold")),
 ) -> Response:
-    form = {
-        "alert_id": alert_id.strip(),
-        "expected_label": expected_label,
-        "expected_cause": expected_cause.strip() or None,
-    }
+    alert_id = alert_id.strip()
+    cause = expected_cause.strip() or None
+    form = {"alert_id": alert_id, "expected_label": expected_label, "expected_cause": cause}
     try:
-        if not form["alert_id"].isdigit():
+        if not alert_id.isdigit():
             raise ValidationFailed(
                 "Give the alert's number.", {"alert_id": "Give the alert's number."}, field="alert_id"
             )
         service.mark_gold(
             session,
             user=user,
-            alert_id=int(form["alert_id"]),
-            expected_label=form["expected_label"],
-            expected_cause=form["expected_cause"],
+            alert_id=int(alert_id),
+            expected_label=expected_label,
+            expected_cause=cause,
         )
     except ValidationFailed as exc:
         session.rollback()

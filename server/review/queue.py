@@ -13,9 +13,23 @@ import hmac
 import zoneinfo
 from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
-from sqlalchemy import ColumnElement, Select, and_, bindparam, exists, func, or_, select, update
+from sqlalchemy import (
+    BindParameter,
+    ColumnElement,
+    CursorResult,
+    Result,
+    Select,
+    Update,
+    and_,
+    bindparam,
+    exists,
+    func,
+    or_,
+    select,
+    update,
+)
 from sqlalchemy.orm import Session, aliased, lazyload
 
 from server.auth.models import User
@@ -239,8 +253,8 @@ def _not_reviewed_by(reviewer_id: int) -> ColumnElement[bool]:
 
 
 @functools.cache
-def _progress_stmt() -> Select[tuple[int, int]]:
-    rid = bindparam("q_rid")
+def _progress_stmt() -> Select[int, int]:
+    rid: BindParameter[int] = bindparam("q_rid")
     verdicts = select(func.count()).select_from(Verdict).where(Verdict.reviewer_id == rid)
     golds = select(func.count()).select_from(GoldAnswer).where(GoldAnswer.reviewer_id == rid)
     return select(verdicts.scalar_subquery(), golds.scalar_subquery())
@@ -252,8 +266,8 @@ def _progress(session: Session, reviewer_id: int) -> int:
 
 
 @functools.cache
-def _gold_page_stmt() -> Select[tuple[int, int]]:
-    rid = bindparam("q_rid")
+def _gold_page_stmt() -> Select[int, int]:
+    rid: BindParameter[int] = bindparam("q_rid")
     return (
         select(GoldCheck.id, GoldCheck.alert_id)
         .where(
@@ -267,7 +281,7 @@ def _gold_page_stmt() -> Select[tuple[int, int]]:
 
 
 @functools.cache
-def _gold_alerts_stmt(admin: bool, by_trial: bool, by_sound: bool) -> Select[tuple[int]]:
+def _gold_alerts_stmt(admin: bool, by_trial: bool, by_sound: bool) -> Select[int]:
     q = select(Alert.id).where(
         Alert.id.in_(bindparam("q_ids", expanding=True)),
         Alert.state == AlertState.final,
@@ -316,7 +330,7 @@ def _gold_candidates(
 
 
 @functools.cache
-def _held_stmt() -> Select[tuple[Alert]]:
+def _held_stmt() -> Select[Alert]:
     return (
         select(Alert)
         .where(
@@ -357,7 +371,9 @@ def _free_bound() -> ColumnElement[bool]:
 
 
 @functools.cache
-def _candidates_stmt(state: str, admin: bool, by_trial: bool, by_sound: bool, limit: int) -> Select[Any]:
+def _candidates_stmt(
+    state: str, admin: bool, by_trial: bool, by_sound: bool, limit: int
+) -> Select[dt.datetime, int]:
     """The oldest free alerts in ``state``: an ordered walk of the (state, received_at) index."""
     q = select(Alert.received_at, Alert.id).where(
         Alert.state == state, _free_bound(), _clip_present(), _listening_allowed()
@@ -374,7 +390,7 @@ def _candidates_stmt(state: str, admin: bool, by_trial: bool, by_sound: bool, li
 
 
 @functools.cache
-def _take_stmt() -> Any:
+def _take_stmt() -> Update:
     return (
         update(Alert)
         .where(Alert.id == bindparam("q_aid"), Alert.state.in_(REVIEW_STATES), _free_bound())
@@ -384,13 +400,19 @@ def _take_stmt() -> Any:
 
 
 @functools.cache
-def _load_stmt() -> Select[tuple[Alert]]:
+def _load_stmt() -> Select[Alert]:
     return (
         select(Alert)
         .where(Alert.id == bindparam("q_aid"))
         .options(lazyload(Alert.device))
         .execution_options(populate_existing=True)
     )
+
+
+def _rowcount(result: Result[Any]) -> int:
+    """Rows an UPDATE matched. Session.execute is typed as returning a plain Result, but for an
+    UPDATE it is a CursorResult, the class that has the count."""
+    return cast(CursorResult[Any], result).rowcount
 
 
 def _claim_new(
@@ -417,7 +439,7 @@ def _claim_new(
             return None
         for _received, alert_id in sorted(candidates):
             res = session.execute(_take_stmt(), {**params, "q_aid": alert_id, "q_expires": expires})
-            if res.rowcount == 1:  # type: ignore[attr-defined]
+            if _rowcount(res) == 1:
                 return session.scalars(_load_stmt(), {"q_aid": alert_id}).one()
             exclude.add(alert_id)
     return None
@@ -483,7 +505,7 @@ def release_claims(session: Session, *, reviewer: User) -> int:
         .values(claimed_by_id=None, claim_expires_at=None)
         .execution_options(synchronize_session="fetch")
     )
-    return int(res.rowcount or 0)  # type: ignore[attr-defined]
+    return int(_rowcount(res) or 0)
 
 
 def gold_for(session: Session, alert_id: int) -> GoldCheck | None:
