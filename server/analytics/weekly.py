@@ -691,7 +691,7 @@ class _Context:
             disturbance_rate=dist_rate,
             home_rate=home_level,
             overdispersion=disp,
-            homes_note=_homes_note(home_level, disp),
+            homes_note=_homes_note(home_level, disp, dist_rate),
             homes=pareto,
             concentration=shares.pareto_concentration(ranked, confidence_level=level),
             exposure_concentration=shares.exposure_concentration(
@@ -813,11 +813,20 @@ def _with_codes(detection: staged.Detection, codes: pd.Series) -> staged.Detecti
     return dataclasses.replace(detection, missed=missed)
 
 
-def _homes_note(home_level: homerate.HomeRate, disp: rates.Overdispersion) -> str | None:
-    """One line on why the home-level and exact intervals differ (or agree)."""
+def _homes_note(
+    home_level: homerate.HomeRate, disp: rates.Overdispersion, exact: rates.RateEstimate
+) -> str | None:
+    """One line on why the home-level and exact intervals differ (or agree), true to the figures shown."""
     if home_level.reason is not None or disp.reason is not None:
         return None
-    if disp.p_value < 0.05 and disp.ratio > 1.5:
+    homes_differ = disp.p_value < 0.05 and disp.ratio > 1.5
+    if not homes_differ and home_level.high > 1.25 * exact.high:
+        return (
+            f"Homes look alike so far (overdispersion {disp.ratio:.1f}), but {home_level.events} false alarms "
+            f"over {home_level.homes} homes cannot show that they are: a few homes could hold most of them, so "
+            "the home-level interval reaches higher than the exact Poisson interval."
+        )
+    if homes_differ:
         return (
             f"Homes are not alike (overdispersion {disp.ratio:.1f}, chi-square p = {disp.p_value:.2g}): "
             "the home-level interval allows for that and is wider than the exact Poisson interval, "

@@ -85,3 +85,23 @@ def test_demo_homes_count_each_monitored_hour_once(seeded: seed.SeedResult, db: 
     assert smoke.home_months == pytest.approx(sum(expected.values()), rel=1e-6)
     assert smoke.device_months == pytest.approx(sum(device_s.values()) / rates.HOME_MONTH_S, rel=1e-6)
     assert smoke.device_months > smoke.home_months * 1.05
+
+
+def test_the_note_on_homes_matches_the_intervals_it_explains(seeded: seed.SeedResult, db: Session) -> None:
+    # The note under each home-level interval says whether it is close to the exact one; it must
+    # agree with the two intervals printed beside it (a sparse week once said "close" beside an
+    # upper end twice the exact one).
+    now = seeded.plan.end + dt.timedelta(hours=1)
+    summary = weekly.build_summary(db, trial_code=scenario.TRIAL_CODE, now=now)
+    notes = 0
+    for c in summary.classes:
+        for f in (c.week, c.to_date):
+            if f.homes_note is None:
+                continue
+            notes += 1
+            wide = f.home_rate.high > 1.25 * f.disturbance_rate.high
+            assert ("are close" in f.homes_note) == (not wide and "not alike" not in f.homes_note), (
+                f.sound_class, f.scope, f.homes_note, f.home_rate.high, f.disturbance_rate.high)
+            if "reaches higher" in f.homes_note:
+                assert wide and f"{f.home_rate.events} false alarms over {f.home_rate.homes} homes" in f.homes_note
+    assert notes >= 2
