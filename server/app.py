@@ -116,13 +116,23 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     from server.devices import api as devices_api
     from server.devices import pages as devices_pages
     from server.households import api as households_api
+    from server.households import home_pages as households_home_pages
+    from server.households import installation_api as households_installation_api
+    from server.households import installation_pages as households_installation_pages
     from server.households import pages as households_pages
+    from server.quota import api as quota_api
+    from server.quota import pages as quota_pages
     from server.review import api as review_api
     from server.review import pages as review_pages
+    from server.staged import api as staged_api
+    from server.staged import pages as staged_pages
     from server.web import pages as web_pages
 
     app.include_router(health.router)
-    for module in (auth_pages, auth_api, web_pages, devices_api, devices_pages, households_api, households_pages,
+    # The register's list pages (/homes/new, /homes/import, ...) come before /homes/{code}.
+    for module in (auth_pages, auth_api, web_pages, devices_api, devices_pages, households_api,
+                   households_pages, households_home_pages, households_installation_api,
+                   households_installation_pages, staged_api, staged_pages, quota_api, quota_pages,
                    review_api, review_pages, analytics_api, analytics_pages, admin_api, admin_pages):
         app.include_router(module.router)
     document_error_responses(app)

@@ -284,9 +284,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     from server.analytics import cli as analytics_cli
     from server.households import cli as households_cli
+    from server.quota import cli as quota_cli
     from server.review import cli as review_cli
 
-    for module in (households_cli, review_cli, analytics_cli):
+    for module in (households_cli, quota_cli, review_cli, analytics_cli):
         module.register(sub, st_sub)
     try:
         from server.demo import cli as demo_cli

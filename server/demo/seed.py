@@ -44,9 +44,11 @@ from server.households import erasure
 from server.households import service as households_service
 from server.households.models import Home
 from server.installations import service as installations_service
+from server.quota import service as quota_service
 from server.review import service as review_service
 from server.review.queue import routing_key
 from server.settings import Settings
+from server.staged import service as staged_service
 from server.trials import service as trials_service
 from server.trials.models import Trial
 
@@ -321,7 +323,7 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
             key, value = DWELLING_ATTRIBUTE, line.trait.split(":", 1)[1]
         elif line.trait is not None:
             key, value = TRAIT_ATTRIBUTES[line.trait], True
-        households_service.add_target(s, trial, attribute_key=key, value=value, min_count=line.min_count,
+        quota_service.add_target(s, trial, attribute_key=key, value=value, min_count=line.min_count,
                                       max_count=line.max_count, label=line.label, actor=coordinator)
 
     tokens: dict[str, str] = {}
@@ -365,7 +367,7 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
                                 installations_service.remove_installation(s, inst, removed_at=p.removed_at,
                                                                        actor=coordinator)
     for st in plan.staged:
-        households_service.log_staged_event(s, home=homes[st.home_key], sound_class=st.sound_class,
+        staged_service.log_staged_event(s, home=homes[st.home_key], sound_class=st.sound_class,
                                             started_at=st.started_at, ended_at=st.ended_at, source=st.source,
                                             level_db=st.level_db, actor=coordinator)
     return _Register(users, {k: h.code for k, h in homes.items()}, tokens)

@@ -1,24 +1,21 @@
-"""Register API v1: homes, lifecycle, consent, contact (personal data), installations, staged
-events, attributes, quota, import/export and erasure. Thin routes over households.service.
+"""Register API v1: homes, lifecycle, consent, contact (personal data), attributes, import/export
+and erasure. Thin routes over households.service; installations are in installation_api.
 """
 
 from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, Depends, Query, Request
+from fastapi import APIRouter, Depends, Request
 from fastapi.responses import JSONResponse, Response
 from sqlalchemy.orm import Session
 
 from server.auth.models import User
 from server.db import begin_write
 from server.deps import ClipStoreDep, DbSession, SettingsDep, require
-from server.devices import service as devices_service
 from server.errors import AppError, InvalidRequest, error_body
 from server.households import catalogue, erasure, schemas, service, transfer, views
-from server.households.models import Home, StagedEvent
-from server.installations import service as installations_service
-from server.installations.models import Installation
+from server.households.models import Home
 from server.roles import allowed
 from server.trials import service as trials_service
 from server.trials.models import Trial
@@ -47,41 +44,6 @@ def home_out(session: Session, home: Home) -> schemas.HomeOut:
         consented=row.consented,
         erased=row.erased,
     )
-
-
-def installation_out(session: Session, inst: Installation) -> schemas.InstallationOut:
-    from server.devices.models import Device
-
-    device = session.get(Device, inst.device_id)
-    assert device is not None
-    return schemas.InstallationOut(
-        id=inst.id,
-        device=device.serial,
-        home=inst.home.code,
-        room=inst.room,
-        installed_at=inst.installed_at,
-        removed_at=inst.removed_at,
-        last_seen_at=device.last_seen_at,
-    )
-
-
-def staged_out(session: Session, ev: StagedEvent) -> schemas.StagedEventOut:
-    home = session.get(Home, ev.home_id)
-    trial = session.get(Trial, ev.trial_id)
-    assert home is not None and trial is not None
-    return schemas.StagedEventOut(
-        id=ev.id,
-        trial=trial.code,
-        home=home.code,
-        sound_class=ev.sound_class,
-        started_at=ev.started_at,
-        ended_at=ev.ended_at,
-        source=ev.source,
-        level_db=ev.level_db,
-    )
-
-
-# --- homes --------------------------------------------------------------------------------------
 
 
 @router.get("/homes", response_model=list[schemas.HomeOut])
@@ -449,126 +411,7 @@ def api_erase(
     )
 
 
-# --- installations ------------------------------------------------------------------------------
-
-
-@router.get("/installations", response_model=list[schemas.InstallationOut])
-def api_installations(
-    session: DbSession,
-    home: str | None = None,
-    device: str | None = None,
-    user: User = Depends(require("homes.view")),
-) -> list[schemas.InstallationOut]:
-    h = service.get_home(session, home) if home else None
-    d = devices_service.get_device(session, device) if device else None
-    found = installations_service.list_installations(session, home=h, device=d)
-    return [installation_out(session, i) for i in found]
-
-
-@router.post("/installations", response_model=schemas.InstallationResult, status_code=201)
-def api_install(
-    body: schemas.InstallationIn, session: DbSession, user: User = Depends(require("installations.manage"))
-) -> schemas.InstallationResult:
-    r = service.install_device(
-        session,
-        home=service.get_home(session, body.home),
-        device=devices_service.get_device(session, body.device),
-        room=body.room,
-        installed_at=body.installed_at,
-        actor=user,
-        move=body.move,
-    )
-    session.commit()
-    return schemas.InstallationResult(
-        installation=installation_out(session, r.installation),
-        closed=installation_out(session, r.closed) if r.closed else None,
-        alerts_reattributed=r.reattributed,
-    )
-
-
-@router.post("/installations/{installation_id}/removal", response_model=schemas.InstallationOut)
-def api_remove(
-    installation_id: int,
-    body: schemas.RemovalIn,
-    session: DbSession,
-    user: User = Depends(require("installations.manage")),
-) -> schemas.InstallationOut:
-    inst = installations_service.get_installation(session, installation_id)
-    installations_service.remove_installation(session, inst, removed_at=body.removed_at, actor=user)
-    session.commit()
-    return installation_out(session, inst)
-
-
-@router.patch(
-    "/installations/{installation_id}",
-    response_model=schemas.InstallationResult,
-    summary="Correct an installation's dates or room; alerts are re-attributed (audited)",
-)
-def api_correct(
-    installation_id: int,
-    body: schemas.InstallationPatch,
-    session: DbSession,
-    user: User = Depends(require("installations.manage")),
-) -> schemas.InstallationResult:
-    inst = installations_service.get_installation(session, installation_id)
-    removed = None if body.reopen else (body.removed_at or inst.removed_at)
-    r = installations_service.correct_installation(
-        session,
-        inst,
-        installed_at=body.installed_at or inst.installed_at,
-        removed_at=removed,
-        room=body.room or inst.room,
-        actor=user,
-    )
-    session.commit()
-    return schemas.InstallationResult(
-        installation=installation_out(session, r.installation), alerts_reattributed=r.reattributed
-    )
-
-
-# --- staged events ------------------------------------------------------------------------------
-
-
-@router.get("/staged-events", response_model=list[schemas.StagedEventOut])
-def api_staged_events(
-    session: DbSession,
-    trial: str | None = None,
-    home: str | None = None,
-    user: User = Depends(require("homes.view")),
-) -> list[schemas.StagedEventOut]:
-    h = service.get_home(session, home) if home else None
-    t = _trial(session, trial) if (trial or h is None) else None
-    return [staged_out(session, e) for e in service.list_staged_events(session, trial=t, home=h)]
-
-
-@router.post("/staged-events", response_model=schemas.StagedEventOut, status_code=201)
-def api_log_staged(
-    body: schemas.StagedEventIn, session: DbSession, user: User = Depends(require("staged.manage"))
-) -> schemas.StagedEventOut:
-    ev = service.log_staged_event(
-        session,
-        home=service.get_home(session, body.home),
-        sound_class=body.sound_class,
-        started_at=body.started_at,
-        ended_at=body.ended_at,
-        source=body.source,
-        level_db=body.level_db,
-        actor=user,
-    )
-    session.commit()
-    return staged_out(session, ev)
-
-
-@router.delete("/staged-events/{event_id}", status_code=204, response_class=Response)
-def api_delete_staged(
-    event_id: int, session: DbSession, user: User = Depends(require("staged.manage"))
-) -> Response:
-    service.delete_staged_event(session, service.get_staged_event(session, event_id), actor=user)
-    session.commit()
-    return Response(status_code=204)
-
-
-# --- catalogue and quota ------------------------------------------------------------------------
+# --- the attribute catalogue --------------------------------------------------------------------
 
 
 def _attr_out(d: Any) -> schemas.AttributeOut:
@@ -606,92 +449,3 @@ def api_add_attribute(
     )
     session.commit()
     return _attr_out(d)
-
-
-def quota_out(view: views.QuotaView) -> schemas.QuotaOut:
-    r = view.report
-    labels = {s.target.id: s.target.label for s in r.targets}
-    warnings = [
-        f"'{labels[tid]}' is below its minimum after "
-        + ", ".join(f"{d.code} left on {d.at:%Y-%m-%d}" for d in ds)
-        + "."
-        for tid, ds in view.departures.items()
-    ]
-    return schemas.QuotaOut(
-        trial=view.trial.code,
-        counting_states=list(r.counting_states),
-        counted=r.counted,
-        by_state=dict(r.by_state),
-        targets=[
-            schemas.TargetOut(
-                id=s.target.id,
-                label=s.target.label,
-                attribute_key=s.target.attribute_key,
-                value=s.target.value,
-                min_count=s.target.min_count,
-                max_count=s.target.max_count,
-                count=s.count,
-                status=s.status,
-                shortfall=s.shortfall,
-                excess=s.excess,
-                homes=list(s.homes),
-            )
-            for s in r.targets
-        ],
-        suggestions=[
-            schemas.SuggestionOut(code=s.code, state=s.state, helps=view.suggestion_labels(s))
-            for s in r.suggestions
-        ],
-        remaining_after={labels[k]: v for k, v in r.remaining_after.items()},
-        rule=view.rule,
-        warnings=warnings,
-    )
-
-
-@router.get("/quota", response_model=schemas.QuotaOut)
-def api_quota(
-    session: DbSession, trial: str | None = None, user: User = Depends(require("quota.view"))
-) -> schemas.QuotaOut:
-    return quota_out(views.quota_view(session, _trial(session, trial)))
-
-
-@router.post("/quota/targets", response_model=schemas.QuotaOut, status_code=201)
-def api_add_target(
-    body: schemas.TargetIn, session: DbSession, user: User = Depends(require("quota.manage"))
-) -> schemas.QuotaOut:
-    t = _trial(session, body.trial)
-    service.add_target(
-        session,
-        t,
-        attribute_key=body.attribute_key,
-        value=body.value,
-        min_count=body.min_count,
-        max_count=body.max_count,
-        label=body.label,
-        actor=user,
-    )
-    session.commit()
-    return quota_out(views.quota_view(session, t))
-
-
-@router.delete("/quota/targets/{target_id}", response_model=schemas.QuotaOut)
-def api_delete_target(
-    target_id: int,
-    session: DbSession,
-    trial: str | None = Query(None),
-    user: User = Depends(require("quota.manage")),
-) -> schemas.QuotaOut:
-    t = _trial(session, trial)
-    service.delete_target(session, t, target_id, actor=user)
-    session.commit()
-    return quota_out(views.quota_view(session, t))
-
-
-@router.put("/quota/states", response_model=schemas.QuotaOut)
-def api_quota_states(
-    body: schemas.QuotaStatesIn, session: DbSession, user: User = Depends(require("quota.manage"))
-) -> schemas.QuotaOut:
-    t = _trial(session, body.trial)
-    service.set_counting_states(session, t, body.states, actor=user)
-    session.commit()
-    return quota_out(views.quota_view(session, t))

@@ -1,4 +1,4 @@
-"""CLI commands of the households domain: home import/export, quota show, storage purge."""
+"""CLI commands of the households domain: home import/export, storage purge."""
 
 from __future__ import annotations
 
@@ -56,57 +56,6 @@ def cmd_home_export(args: argparse.Namespace, settings: Settings) -> int:
         )
     else:
         sys.stdout.write(text)
-    return 0
-
-
-def cmd_quota_show(args: argparse.Namespace, settings: Settings) -> int:
-    from server.db import session_scope
-    from server.households import views
-    from server.trials import service as trials_service
-
-    with session_scope(_factory(settings)) as s:
-        trial = trials_service.trial_in_view(s, args.trial)
-        qv = views.quota_view(s, trial)
-        r = qv.report
-        if args.json:
-            from server.households.api import quota_out
-
-            print(json.dumps(quota_out(qv).model_dump(mode="json")))
-            return 0
-        print(f"quota of {trial.code}: {r.counted} home(s) counted (states: {', '.join(r.counting_states)})")
-        for st in r.targets:
-            t = st.target
-            bounds = (
-                f"{t.min_count}..{t.max_count}"
-                if t.min_count is not None and t.max_count is not None
-                else f">= {t.min_count}"
-                if t.min_count is not None
-                else f"<= {t.max_count}"
-            )
-            extra = (
-                f"short by {st.shortfall}"
-                if st.status == "short"
-                else f"{st.excess} over"
-                if st.status == "over"
-                else "met"
-            )
-            print(
-                f"  {t.label}: {st.count} ({bounds}) {extra}"
-                + (f" [{', '.join(st.homes)}]" if st.homes else "")
-            )
-        print("by state: " + ", ".join(f"{k} {v}" for k, v in sorted(r.by_state.items())))
-        if r.suggestions:
-            print(
-                "recruit next: "
-                + "; ".join(f"{sg.code} ({', '.join(qv.suggestion_labels(sg))})" for sg in r.suggestions)
-            )
-            print(f"  ({qv.rule})")
-        for tid, gone in qv.departures.items():
-            label = next(s.target.label for s in r.targets if s.target.id == tid)
-            print(
-                f"warning: '{label}' is below its minimum after "
-                + ", ".join(f"{d.code} left on {d.at:%Y-%m-%d}" for d in gone)
-            )
     return 0
 
 
@@ -187,12 +136,6 @@ def register(sub: argparse._SubParsersAction, storage: argparse._SubParsersActio
     )
     he.add_argument("-o", "--output", help="write to this file instead of standard output")
     he.set_defaults(func=cmd_home_export)
-
-    q = sub.add_parser("quota", help="recruitment quota").add_subparsers(dest="quota_cmd", required=True)
-    qs = q.add_parser("show", help="targets, counts, shortfalls and who to recruit next")
-    qs.add_argument("--trial")
-    qs.add_argument("--json", action="store_true")
-    qs.set_defaults(func=cmd_quota_show)
 
     sp = storage.add_parser(
         "purge",

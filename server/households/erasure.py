@@ -26,8 +26,9 @@ from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, Clip
 from server.errors import AppError, ValidationFailed
 from server.households import service
-from server.households.models import Consent, Home, HomeContact, HomeState, HomeStateChange, StagedEvent
+from server.households.models import Consent, Home, HomeContact, HomeState, HomeStateChange
 from server.review.models import Verdict
+from server.staged.models import StagedEvent
 from server.trials.models import Trial
 
 log = logging.getLogger(__name__)

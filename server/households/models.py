@@ -1,11 +1,11 @@
-"""Homes, their lifecycle, consent, personal data, attributes, quota and staged events."""
+"""Homes, their lifecycle, consent, personal data and attributes (the catalogue)."""
 
 from __future__ import annotations
 
 import datetime as dt
 from typing import Any
 
-from sqlalchemy import JSON, Float, ForeignKey, String, Text, UniqueConstraint
+from sqlalchemy import ForeignKey, String, Text, UniqueConstraint
 from sqlalchemy.orm import Mapped, mapped_column
 
 from server.db import Base, UTCDateTime, utcnow
@@ -100,36 +100,3 @@ class AttributeDefinition(Base):
     min_value: Mapped[int | None]
     max_value: Mapped[int | None]
     position: Mapped[int] = mapped_column(default=0)
-
-
-class QuotaTarget(Base):
-    """At least / at most N homes with attribute = value; attribute_key NULL means the total."""
-
-    __tablename__ = "quota_target"
-
-    id: Mapped[int] = mapped_column(primary_key=True)
-    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id", ondelete="CASCADE"), index=True)
-    label: Mapped[str] = mapped_column(String(200))
-    attribute_key: Mapped[str | None] = mapped_column(String(60))
-    # JSON-encoded value to match (true, "flat", 2); NULL with a key means "any truthy value".
-    value: Mapped[Any] = mapped_column(JSON, nullable=True)
-    min_count: Mapped[int | None]
-    max_count: Mapped[int | None]
-    position: Mapped[int] = mapped_column(default=0)
-
-
-class StagedEvent(Base):
-    """A test sound played on purpose in a home, to measure detection."""
-
-    __tablename__ = "staged_event"
-
-    id: Mapped[int] = mapped_column(primary_key=True)
-    trial_id: Mapped[int] = mapped_column(ForeignKey("trial.id"), index=True)
-    home_id: Mapped[int] = mapped_column(ForeignKey("home.id"), index=True)
-    sound_class: Mapped[str] = mapped_column(String(64))
-    started_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
-    ended_at: Mapped[dt.datetime] = mapped_column(UTCDateTime)
-    source: Mapped[str] = mapped_column(Text, default="")
-    level_db: Mapped[float | None] = mapped_column(Float)
-    created_by_id: Mapped[int | None] = mapped_column(ForeignKey("user_account.id", ondelete="SET NULL"))
-    created_at: Mapped[dt.datetime] = mapped_column(UTCDateTime, default=utcnow)

@@ -132,26 +132,6 @@ class InstallationResult(BaseModel):
     alerts_reattributed: int
 
 
-class StagedEventIn(Strict):
-    home: str
-    sound_class: str
-    started_at: JsonDateTime
-    ended_at: JsonDateTime
-    source: str
-    level_db: float | None = None
-
-
-class StagedEventOut(BaseModel):
-    id: int
-    trial: str
-    home: str
-    sound_class: str
-    started_at: dt.datetime
-    ended_at: dt.datetime
-    source: str
-    level_db: float | None
-
-
 class AttributeIn(Strict):
     trial: str | None = None
     key: str
@@ -169,52 +149,6 @@ class AttributeOut(BaseModel):
     options: list[str]
     min_value: int | None
     max_value: int | None
-
-
-class TargetIn(Strict):
-    trial: str | None = None
-    attribute_key: str | None = None
-    value: Any = None
-    min_count: int | None = None
-    max_count: int | None = None
-    label: str = ""
-
-
-class TargetOut(BaseModel):
-    id: int
-    label: str
-    attribute_key: str | None
-    value: Any
-    min_count: int | None
-    max_count: int | None
-    count: int
-    status: str
-    shortfall: int
-    excess: int
-    homes: list[str]
-
-
-class SuggestionOut(BaseModel):
-    code: str
-    state: str
-    helps: list[str]
-
-
-class QuotaOut(BaseModel):
-    trial: str
-    counting_states: list[str]
-    counted: int
-    by_state: dict[str, int]
-    targets: list[TargetOut]
-    suggestions: list[SuggestionOut]
-    remaining_after: dict[str, int]
-    rule: str
-    warnings: list[str]
-
-
-class QuotaStatesIn(Strict):
-    trial: str | None = None
-    states: list[str]
 
 
 class ErasurePlanOut(BaseModel):

@@ -10,11 +10,11 @@ from __future__ import annotations
 import datetime as dt
 import re
 import zoneinfo
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import delete, func, select
+from sqlalchemy import func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
@@ -22,21 +22,20 @@ from server import audit
 from server.auth.models import User
 from server.db import utcnow
 from server.errors import Conflict, IllegalTransition, NotFound, ValidationFailed
-from server.households import catalogue, lifecycle, quota
+from server.households import catalogue, lifecycle
 from server.households.catalogue import seed_default_catalogue  # noqa: F401  (re-exported)
 from server.households.models import (
-    AttributeDefinition,
     Consent,
     Home,
     HomeContact,
     HomeState,
     HomeStateChange,
-    QuotaTarget,
-    StagedEvent,
 )
 from server.installations import service as installations_service
 from server.installations.models import DeviceRef, Installation
 from server.installations.service import InstallResult, as_utc, when
+from server.quota import rules as quota
+from server.quota import service as quota_service
 from server.trials.models import Trial
 
 Actor = User | str
@@ -284,7 +283,7 @@ def transition(
     if refusal is not None:
         raise IllegalTransition(refusal.message, code=refusal.code)
     trial = trial_of(session, home)
-    before = quota_report(session, trial)
+    before = quota_service.quota_report(session, trial)
     closed: list[Installation] = []
     if to_state in lifecycle.ENDED:
         for inst in installations_service.open_installations(session, home.id):
@@ -304,7 +303,7 @@ def transition(
     home.state = to_state
     home.state_changed_at = at
     session.flush()
-    after = quota_report(session, trial)
+    after = quota_service.quota_report(session, trial)
     warnings = tuple(
         f"Quota target '{s.target.label}' now has {s.count} home{'s' if s.count != 1 else ''}, "
         f"below its minimum of {s.target.min_count}."
@@ -501,242 +500,6 @@ def move_device(
     return install_device(
         session, home=to_home, device=device, room=room, installed_at=at, actor=actor, move=True
     )
-
-
-# --- staged test events -------------------------------------------------------------------------
-
-MAX_STAGED = dt.timedelta(hours=6)
-
-
-def log_staged_event(
-    session: Session,
-    *,
-    home: Home,
-    sound_class: str,
-    started_at: dt.datetime,
-    ended_at: dt.datetime,
-    source: str,
-    level_db: float | None = None,
-    actor: Actor = "cli",
-) -> StagedEvent:
-    """Record a test sound played on purpose in a home (analytics matches alerts against it)."""
-    trial = trial_of(session, home)
-    errors: dict[str, str] = {}
-    started_at, ended_at = as_utc(started_at, "started_at"), as_utc(ended_at, "ended_at")
-    source = (source or "").strip()
-    if sound_class not in trial.sound_classes:
-        errors["sound_class"] = f"Pick one of the trial's sound classes: {', '.join(trial.sound_classes)}."
-    if ended_at <= started_at:
-        errors["ended_at"] = "The end must come after the start."
-    elif ended_at - started_at > MAX_STAGED:
-        errors["ended_at"] = "A staged event lasts at most 6 hours; log longer tests as several events."
-    if not source or len(source) > 500:
-        errors["source"] = "Say what was played and where (1 to 500 characters)."
-    if level_db is not None and not -20.0 <= float(level_db) <= 160.0:
-        errors["level_db"] = "A sound level is between -20 and 160 dB."
-    if errors:
-        raise ValidationFailed(next(iter(errors.values())), errors)
-    if not installations_service.home_had_device_during(session, home.id, started_at, ended_at):
-        raise ValidationFailed(
-            f"No device was installed in {home.code} at that time, so nothing could hear the test.",
-            {"started_at": "No device was installed then."},
-        )
-    event = StagedEvent(
-        trial_id=trial.id,
-        home_id=home.id,
-        sound_class=sound_class,
-        started_at=started_at,
-        ended_at=ended_at,
-        source=source,
-        level_db=float(level_db) if level_db is not None else None,
-        created_by_id=_by_id(actor),
-    )
-    session.add(event)
-    session.flush()
-    return event
-
-
-def list_staged_events(
-    session: Session, *, trial: Trial | None = None, home: Home | None = None
-) -> list[StagedEvent]:
-    q = select(StagedEvent).order_by(StagedEvent.started_at.desc(), StagedEvent.id.desc())
-    if trial is not None:
-        q = q.where(StagedEvent.trial_id == trial.id)
-    if home is not None:
-        q = q.where(StagedEvent.home_id == home.id)
-    return list(session.scalars(q))
-
-
-def get_staged_event(session: Session, event_id: int) -> StagedEvent:
-    event = session.get(StagedEvent, event_id)
-    if event is None:
-        raise NotFound(f"No staged event has id {event_id}.", code="unknown_staged_event")
-    return event
-
-
-def delete_staged_event(session: Session, event: StagedEvent, *, actor: Actor = "cli") -> None:
-    audit.record(
-        session,
-        actor,
-        "staged_event.delete",
-        "staged_event",
-        event.id,
-        {
-            "home_id": event.home_id,
-            "sound_class": event.sound_class,
-            "started_at": event.started_at.isoformat(),
-        },
-    )
-    session.delete(event)
-    session.flush()
-
-
-# --- quota --------------------------------------------------------------------------------------
-
-
-def list_targets(session: Session, trial: Trial) -> list[QuotaTarget]:
-    return list(
-        session.scalars(
-            select(QuotaTarget)
-            .where(QuotaTarget.trial_id == trial.id)
-            .order_by(QuotaTarget.position, QuotaTarget.id)
-        )
-    )
-
-
-def _target_label(defn: AttributeDefinition | None, value: Any) -> str:
-    if defn is None:
-        return "All homes"
-    if value is None:
-        return f"{defn.label}: any answer"
-    return f"{defn.label}: {catalogue.format_value(value)}"
-
-
-def add_target(
-    session: Session,
-    trial: Trial,
-    *,
-    attribute_key: str | None,
-    value: Any = None,
-    min_count: int | None = None,
-    max_count: int | None = None,
-    label: str = "",
-    actor: Actor = "cli",
-) -> QuotaTarget:
-    """A quota target: at least ``min_count`` / at most ``max_count`` homes with attribute = value."""
-    errors: dict[str, str] = {}
-    defn = None
-    parsed = None
-    if attribute_key:
-        defn = session.scalar(
-            select(AttributeDefinition).where(
-                AttributeDefinition.trial_id == trial.id, AttributeDefinition.key == attribute_key
-            )
-        )
-        if defn is None:
-            errors["attribute_key"] = f"'{attribute_key}' is not an attribute of trial {trial.code}."
-        else:
-            try:
-                parsed = catalogue.parse_value(defn, value)
-            except ValueError as exc:
-                errors["value"] = str(exc)
-    for name, n in (("min_count", min_count), ("max_count", max_count)):
-        if n is not None and not 0 <= n <= 100000:
-            errors[name] = "A count is a whole number from 0."
-    if min_count is None and max_count is None:
-        errors["min_count"] = "Give a minimum, a maximum or both."
-    elif min_count is not None and max_count is not None and min_count > max_count:
-        errors["max_count"] = "The maximum cannot be below the minimum."
-    label = (label or "").strip()
-    if len(label) > 200:
-        errors["label"] = "At most 200 characters."
-    if errors:
-        raise ValidationFailed(next(iter(errors.values())), errors)
-    pos = (
-        session.scalar(select(func.max(QuotaTarget.position)).where(QuotaTarget.trial_id == trial.id)) or 0
-    ) + 1
-    target = QuotaTarget(
-        trial_id=trial.id,
-        label=label or _target_label(defn, parsed),
-        attribute_key=attribute_key or None,
-        value=parsed,
-        min_count=min_count,
-        max_count=max_count,
-        position=pos,
-    )
-    session.add(target)
-    session.flush()
-    audit.record(
-        session,
-        actor,
-        "quota.target_add",
-        "quota_target",
-        target.id,
-        {"trial": trial.code, "label": target.label, "min": min_count, "max": max_count},
-    )
-    return target
-
-
-def delete_target(session: Session, trial: Trial, target_id: int, *, actor: Actor = "cli") -> None:
-    target = session.get(QuotaTarget, target_id)
-    if target is None or target.trial_id != trial.id:
-        raise NotFound(f"Trial {trial.code} has no quota target {target_id}.", code="unknown_target")
-    audit.record(session, actor, "quota.target_delete", "quota_target", target.id, {"label": target.label})
-    session.execute(delete(QuotaTarget).where(QuotaTarget.id == target_id))
-    session.flush()
-
-
-def set_counting_states(
-    session: Session, trial: Trial, states: Iterable[str], *, actor: Actor = "cli"
-) -> list[str]:
-    chosen = [s for s in HomeState.all if s in set(states)]
-    bad = set(states) - set(HomeState.all)
-    if bad or not chosen:
-        raise ValidationFailed(
-            "Pick at least one home state that counts toward the quota.",
-            {"states": "Pick at least one state."},
-        )
-    trial.quota_states = chosen
-    session.flush()
-    audit.record(session, actor, "quota.states", "trial", trial.id, {"states": chosen})
-    return chosen
-
-
-def home_facts(session: Session, trial: Trial) -> list[quota.HomeFacts]:
-    rows = session.execute(select(Home.code, Home.state, Home.attributes).where(Home.trial_id == trial.id))
-    return [quota.HomeFacts(c, s, a or {}) for c, s, a in rows]
-
-
-def quota_targets(session: Session, trial: Trial) -> list[quota.Target]:
-    return [
-        quota.Target(t.id, t.label, t.attribute_key, t.value, t.min_count, t.max_count)
-        for t in list_targets(session, trial)
-    ]
-
-
-def quota_report(session: Session, trial: Trial) -> quota.QuotaReport:
-    return quota.evaluate(quota_targets(session, trial), home_facts(session, trial), trial.quota_states)
-
-
-def departures(session: Session, trial: Trial) -> list[tuple[str, dt.datetime, dict[str, Any]]]:
-    """Homes that left the counted states by withdrawal or pause and are still out: (code, at, attributes)."""
-    counting = set(trial.quota_states)
-    rows = session.execute(
-        select(Home.code, HomeStateChange.at, Home.attributes, HomeStateChange.from_state, Home.state)
-        .join(Home, Home.id == HomeStateChange.home_id)
-        .where(
-            Home.trial_id == trial.id, HomeStateChange.to_state.in_([HomeState.withdrawn, HomeState.paused])
-        )
-        .order_by(HomeStateChange.at.desc())
-    )
-    out = []
-    seen = set()
-    for code, at, attrs, from_state, now_state in rows:
-        if code in seen or from_state not in counting or now_state in counting:
-            continue
-        seen.add(code)
-        out.append((code, at, attrs or {}))
-    return out
 
 
 def home_count(session: Session, trial: Trial) -> int:

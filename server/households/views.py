@@ -14,16 +14,17 @@ from sqlalchemy.orm import Session
 from server.auth.models import User
 from server.db import utcnow
 from server.devices.models import Alert, Device, ListeningSegment
-from server.households import catalogue, quota, service
+from server.households import catalogue, service
 from server.households import timeline as intervals
 from server.households.models import (
     AttributeDefinition,
     Consent,
     Home,
     HomeStateChange,
-    StagedEvent,
 )
 from server.installations.models import Installation
+from server.staged import service as staged_service
+from server.staged.models import StagedEvent
 from server.trials.models import Trial
 
 WEEKS_SHOWN = 12
@@ -173,7 +174,7 @@ def home_overview(session: Session, home: Home, *, now: dt.datetime | None = Non
         installations=installs,
         alerts_by_class=alerts_by_class(session, home),
         weekly_hours=weekly_listening(session, home, trial.timezone, now, installs),
-        staged=service.list_staged_events(session, home=home),
+        staged=staged_service.list_staged_events(session, home=home),
         has_contact=service.has_contact(session, home),
         next_states=() if home.erased_at else lifecycle.NEXT.get(home.state, ()),
     )
@@ -216,37 +217,6 @@ def register_rows(session: Session, homes: list[Home]) -> list[RegisterRow]:
         )
         for h in homes
     ]
-
-
-@dataclass(frozen=True)
-class Departure:
-    code: str
-    at: dt.datetime
-
-
-@dataclass(frozen=True)
-class QuotaView:
-    trial: Trial
-    report: quota.QuotaReport
-    catalogue: list[AttributeDefinition]
-    # Per short target: the homes matching it that left the counted states by withdrawal or pause.
-    departures: dict[int, list[Departure]]
-    rule: str = quota.COVER_RULE
-
-    def suggestion_labels(self, s: quota.Suggestion) -> list[str]:
-        labels = {t.target.id: t.target.label for t in self.report.targets}
-        return [labels[i] for i in s.helps]
-
-
-def quota_view(session: Session, trial: Trial) -> QuotaView:
-    report = service.quota_report(session, trial)
-    gone = service.departures(session, trial)
-    warn: dict[int, list[Departure]] = {}
-    for s in report.short:
-        hits = [Departure(code, at) for code, at, attrs in gone if quota.matches(s.target, attrs)]
-        if hits:
-            warn[s.target.id] = hits
-    return QuotaView(trial, report, catalogue.list_catalogue(session, trial), warn)
 
 
 def last_change(session: Session, home: Home) -> HomeStateChange | None:

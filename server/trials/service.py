@@ -177,14 +177,11 @@ def session_scope_ids(session: Session) -> frozenset[int] | None:
 
 def _scope_options(ids: frozenset[int]) -> list[Any]:
     from server.devices.models import Alert, Device
-    from server.households.models import (
-        AttributeDefinition,
-        Home,
-        QuotaTarget,
-        StagedEvent,
-    )
+    from server.households.models import AttributeDefinition, Home
     from server.installations.models import Installation
+    from server.quota.models import QuotaTarget
     from server.review.models import GoldCheck, Verdict
+    from server.staged.models import StagedEvent
 
     keep = tuple(sorted(ids))
     opts: list[Any] = [with_loader_criteria(Trial, Trial.id.in_(keep), include_aliases=True)]

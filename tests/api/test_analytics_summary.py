@@ -21,6 +21,7 @@ from server.devices.models import Alert, FirmwareChange, ListeningSegment
 from server.devices.schemas import HeartbeatIn
 from server.households import service as households_service
 from server.installations import service as installations_service
+from server.staged import service as staged_service
 from server.trials import service as trials_service
 from tests import factories
 
@@ -335,7 +336,7 @@ def test_staged_events_matched_at_the_window_edges(session, store, settings, lar
         listen(session, d, W0, W1)
     t0 = at(2, 10)
     t1 = t0 + dt.timedelta(seconds=60)
-    households_service.log_staged_event(
+    staged_service.log_staged_event(
         session,
         home=home,
         sound_class="smoke_alarm",
@@ -344,7 +345,7 @@ def test_staged_events_matched_at_the_window_edges(session, store, settings, lar
         source="test button on the hallway alarm, 3 m from the device",
     )
     later = t0 + dt.timedelta(hours=5)
-    households_service.log_staged_event(
+    staged_service.log_staged_event(
         session,
         home=home,
         sound_class="smoke_alarm",
@@ -352,7 +353,7 @@ def test_staged_events_matched_at_the_window_edges(session, store, settings, lar
         ended_at=later + dt.timedelta(seconds=60),
         source="recorded alarm, kitchen",
     )
-    households_service.log_staged_event(
+    staged_service.log_staged_event(
         session,
         home=home,
         sound_class="glass_break",

@@ -23,9 +23,10 @@ from server.db import make_engine, make_session_factory
 from server.demo import scenario, seed
 from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, Clip, Device, ListeningSegment
-from server.households.models import Home, HomeContact, HomeStateChange, StagedEvent
+from server.households.models import Home, HomeContact, HomeStateChange
 from server.installations.models import Installation
 from server.review.models import Verdict
+from server.staged.models import StagedEvent
 from server.trials.models import Trial
 from tests.conftest import sign_in
 

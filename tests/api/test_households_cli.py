@@ -10,7 +10,7 @@ from sqlalchemy import select
 
 from server import cli
 from server.auth.models import AuditEvent
-from server.households import service
+from server.quota import service as quota_service
 from server.settings import Settings
 from server.trials import service as trials_service
 from tests.conftest import committed_session
@@ -51,7 +51,7 @@ def test_cli_register_commands(data_dir, capsys):
     settings = Settings()
     with committed_session(settings) as s:
         trial = trials_service.get_trial(s, "PILOT-1")
-        service.add_target(s, trial, attribute_key="dog", value="yes", min_count=2)
+        quota_service.add_target(s, trial, attribute_key="dog", value="yes", min_count=2)
         assert s.scalar(select(AuditEvent).where(AuditEvent.action == "personal.export")) is not None
     assert cli.main(["quota", "show", "--trial", "PILOT-1"]) == 0
     out = capsys.readouterr().out

@@ -9,8 +9,9 @@ from sqlalchemy import select
 
 from server.devices.models import ListeningSegment
 from server.households import service
-from server.households.models import StagedEvent
 from server.installations import service as installations_service
+from server.quota import service as quota_service
+from server.staged.models import StagedEvent
 from tests import factories
 from tests.conftest import csrf_of
 
@@ -91,7 +92,7 @@ def test_edit_form(staff_client, session, trial):
 def test_home_page_walk_through_forms(staff_client, session, settings, store, trial):
     c = staff_client("coordinator")
     device, _ = factories.make_device(session, trial)
-    service.add_target(session, trial, attribute_key="dog", value=True, min_count=1)
+    quota_service.add_target(session, trial, attribute_key="dog", value=True, min_count=1)
     home = factories.make_registered_home(
         session, trial, state="screened", attributes={"dog": True}, at=day(0)
     )

@@ -11,6 +11,8 @@ from sqlalchemy import select
 
 from server.auth.models import AuditEvent
 from server.households import service
+from server.quota import service as quota_service
+from server.staged import service as staged_service
 from tests import factories
 from tests.conftest import csrf_of
 
@@ -41,7 +43,7 @@ def scenario(session, settings, store, trial):  # type: ignore[no-untyped-def]
     service.transition(session, home, "paused", at=now - dt.timedelta(days=5), note="Quentin is in hospital")
     service.transition(session, home, "active", at=now - dt.timedelta(days=4))
     alert = factories.make_alert(session, store, settings, device, detected_at=now - dt.timedelta(days=3))
-    service.log_staged_event(
+    staged_service.log_staged_event(
         session,
         home=home,
         sound_class="smoke_alarm",
@@ -49,7 +51,7 @@ def scenario(session, settings, store, trial):  # type: ignore[no-untyped-def]
         ended_at=now - dt.timedelta(days=2) + dt.timedelta(minutes=1),
         source="test alarm on the landing",
     )
-    service.add_target(session, trial, attribute_key="dog", value="yes", min_count=1)
+    quota_service.add_target(session, trial, attribute_key="dog", value="yes", min_count=1)
     session.flush()
     return {"home": home, "device": device, "alert": alert, "trial": trial}
 
@@ -143,12 +145,18 @@ def _routes():  # type: ignore[no-untyped-def]
     from server.devices import api as a4
     from server.devices import pages as a5
     from server.households import api as a6
+    from server.households import home_pages as a11
+    from server.households import installation_api as a16
+    from server.households import installation_pages as a12
     from server.households import pages as a7
+    from server.quota import api as a13
+    from server.quota import pages as a14
     from server.review import api as a8
     from server.review import pages as a9
+    from server.staged import api as a15
     from server.web import pages as a10
 
-    for module in (a1, a2, a3, a4, a5, a6, a7, a8, a9, a10):
+    for module in (a1, a2, a3, a4, a5, a6, a7, a8, a9, a10, a11, a12, a13, a14, a15, a16):
         for route in module.router.routes:
             methods = getattr(route, "methods", set()) or set()
             if "GET" in methods:

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import re
 
-from server.households import service
+from server.quota import service as quota_service
 from tests import factories
 from tests.conftest import csrf_of
 
@@ -134,7 +134,7 @@ def test_quota_page_shows_bars_and_page_forms_work(staff_client, session, trial)
     assert r.status_code == 303
     factories.make_registered_home(session, trial, state="consented", attributes={"cat": True})
     page = c.get(f"/quota?trial={trial.code}").text
-    (tid,) = [t.id for t in service.list_targets(session, trial)]
+    (tid,) = [t.id for t in quota_service.list_targets(session, trial)]
     block = re.search(
         rf'<div class="target" id="target-{tid}" data-count="(\d+)" data-status="(\w+)">(.*?)</form>',
         page,

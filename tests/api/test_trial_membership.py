@@ -23,8 +23,9 @@ from server.auth.models import AuditEvent
 from server.deps import get_session
 from server.devices.models import Alert, Device
 from server.errors import NotFound
-from server.households.models import Home, StagedEvent
+from server.households.models import Home
 from server.installations.models import Installation
+from server.staged.models import StagedEvent
 from server.roles import CAPABILITIES
 from server.trials import service as trials_service
 from server.trials.models import TrialMembership

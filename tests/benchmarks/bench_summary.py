@@ -43,8 +43,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from server import migrate  # noqa: E402
 from server.db import make_engine, make_session_factory, seconds_between  # noqa: E402
 from server.devices.models import Alert, Clip, Device, ListeningSegment  # noqa: E402
-from server.households.models import Home, HomeStateChange, StagedEvent  # noqa: E402
+from server.households.models import Home, HomeStateChange  # noqa: E402
 from server.installations.models import Installation  # noqa: E402
+from server.staged.models import StagedEvent  # noqa: E402
 from server.trials.models import Trial  # noqa: E402
 
 UTC = dt.UTC

@@ -7,6 +7,7 @@ import re
 import pytest
 
 from server.households import service
+from server.quota import service as quota_service
 from server.trials import service as trials_service
 from tests import factories
 from tests.conftest import browser_sign_in, committed_session
@@ -18,7 +19,7 @@ def test_coordinator_recruits_a_home_to_a_quota_target(live_server, page):
     with committed_session(live_server.settings) as s:
         trial = trials_service.list_trials(s)[0]
         user, password = factories.make_user(s, role="coordinator")
-        target = service.add_target(s, trial, attribute_key="dog", value="yes", min_count=2)
+        target = quota_service.add_target(s, trial, attribute_key="dog", value="yes", min_count=2)
         factories.make_registered_home(s, trial, state="consented", attributes={"dog": True})
         tid, email = target.id, user.email
     base = live_server.url

@@ -10,8 +10,8 @@ import pytest
 
 from server.devices.clipstore import ClipStore
 from server.devices.models import ListeningSegment
-from server.households import service as households_service
 from server.settings import Settings
+from server.staged import service as staged_service
 from tests import factories
 from tests.conftest import LiveServer, browser_sign_in, committed_session
 
@@ -67,7 +67,7 @@ def server(tmp_path: Path) -> Iterator[tuple[LiveServer, str, str]]:
                     ("dog", "unrelated") if k % 2 else ("speech", "resembles")
                 )
             start = W0 + dt.timedelta(days=2, hours=10 + n)
-            households_service.log_staged_event(
+            staged_service.log_staged_event(
                 s,
                 home=home,
                 sound_class="smoke_alarm",

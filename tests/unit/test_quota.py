@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from server.households import quota
-from server.households.quota import HomeFacts, Target
+from server.quota import rules as quota
+from server.quota.rules import HomeFacts, Target
 
 DOG = Target(1, "Dog: yes", "dog", True, 2, None)
 FLAT = Target(2, "Flats", "dwelling_type", "flat", 1, 2)
