@@ -58,7 +58,7 @@ def quota_page(
     user: User = Depends(require("quota.view")),
 ) -> Response:
     t = trials_service.trial_in_view(session, trial)
-    return forms.page(request, user, "households/quota.html", _quota_ctx(session, t))
+    return forms.page(request, user, "quota/quota.html", _quota_ctx(session, t))
 
 
 @router.post("/quota/targets")
@@ -85,7 +85,7 @@ def target_submit(
         return forms.page(
             request,
             user,
-            "households/quota.html",
+            "quota/quota.html",
             _quota_ctx(session, t, errors=exc.errors, values=values),
             status_code=422,
         )
@@ -124,7 +124,7 @@ def states_submit(
         return forms.page(
             request,
             user,
-            "households/quota.html",
+            "quota/quota.html",
             _quota_ctx(session, t, state_errors=exc.errors),
             status_code=422,
         )
