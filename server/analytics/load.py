@@ -63,7 +63,9 @@ from sqlalchemy.sql.elements import ColumnElement
 from server.analytics import exposure, trend
 from server.db import UTCDateTime, sql_greatest, sql_least
 from server.devices.models import Alert, AlertState, Device, FirmwareChange, ListeningSegment
-from server.households.models import Home, HomeState, HomeStateChange, Installation, StagedEvent
+from server.households.models import Home, HomeState, HomeStateChange
+from server.installations.models import Installation
+from server.staged.models import StagedEvent
 from server.trials.models import Trial
 
 log = logging.getLogger(__name__)
@@ -800,16 +802,16 @@ def _fetch(session: Session, stmt: sa.Select[Any], columns: list[str]) -> pd.Dat
     kinds = [_KINDS.get(name, "object") for name in columns]
     if conn.dialect.name == "postgresql":
         rows = stmt.subquery("rows")
-        cast = {"int": sa.BigInteger, "float": sa.Float(53)}
-        picks = []
+        sql_types: dict[str, sa.types.TypeEngine[Any]] = {"int": sa.BigInteger(), "float": sa.Float(53)}
+        picks: list[sa.ColumnElement[Any]] = []
         for col, kind in zip(rows.c, kinds, strict=True):
             if kind == "object":
                 picks.append(sa.func.array_agg(col))
             else:
-                value = sa.cast(col, cast[kind])
+                expr: sa.ColumnElement[Any] = sa.cast(col, sql_types[kind])
                 if kind == "float":
-                    value = sa.func.coalesce(value, sa.literal(float("nan"), sa.Float(53)))
-                picks.append(sa.func.array_send(sa.func.array_agg(value)))
+                    expr = sa.func.coalesce(expr, sa.literal(float("nan"), sa.Float(53)))
+                picks.append(sa.func.array_send(sa.func.array_agg(expr)))
         compiled = sa.select(*picks).compile(
             dialect=conn.dialect, compile_kwargs={"render_postcompile": True}
         )

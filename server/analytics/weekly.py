@@ -31,6 +31,8 @@ from server.analytics import (
     whatif,
 )
 from server.errors import ValidationFailed
+from server.quota import service as quota_service
+from server.review import overview
 from server.trials import service as trials_service
 from server.trials.models import Trial
 
@@ -326,6 +328,8 @@ def build_summary(
 
 
 _COUNTED_KEYS = ["window_id", "period", "sound_class", "outcome", "cause", "resemblance"]
+_FALSE_ALARM = OUTCOMES.index("false_alarm")
+_OPEN = [OUTCOMES.index(o) for o in disturbances.OPEN]
 
 
 def _codes(frame: pd.DataFrame, other: pd.DataFrame, key: str) -> tuple[np.ndarray, np.ndarray, Any]:
@@ -505,6 +509,18 @@ class _Context:
         dist = disturbances.summarise(kept, window_s=self.window_s)
         self.disturbances = dist.assign(home_code=dist["home_id"].map(codes))
         self._d_rows = dict(self.disturbances.groupby("sound_class", sort=False).indices)
+        # Each disturbance's outcome (its position in OUTCOMES), period, alerts and home (position
+        # in each scope's homes), worked out once for every class and scope.
+        self._d_outcome = pd.Index(OUTCOMES).get_indexer(self.disturbances["outcome"])
+        self._d_week = (self.disturbances["period"] == "week").to_numpy(dtype=bool)
+        self._d_alerts = self.disturbances["alerts"].to_numpy(dtype=np.int64)
+        home_ids = pd.Index(self.disturbances["home_id"])
+        self._d_home = {
+            scope: self._homes[scope].keys.get_indexer(codes.to_numpy())[codes.index.get_indexer(home_ids)]
+            if len(codes)
+            else np.full(len(home_ids), -1, dtype=np.intp)
+            for scope in SCOPES
+        }
         self._outside = {
             scope: self._scoped(data.not_counted, scope).groupby("sound_class")["alerts"].sum().to_dict()
             for scope in SCOPES
@@ -593,19 +609,19 @@ class _Context:
 
     def _disturbances(self, sound_class: str, scope: str) -> tuple[np.ndarray, np.ndarray, DisturbanceTally]:
         """Per home (in `_homes` order): false-alarm and open disturbances; and their tally."""
-        d = self.disturbances.iloc[self._d_rows.get(sound_class, np.zeros(0, dtype=np.intp))]
+        rows = self._d_rows.get(sound_class, np.zeros(0, dtype=np.intp))
         if scope == "week":
-            d = d[d["period"] == "week"]
+            rows = rows[self._d_week[rows]]
         keys = self._homes[scope].keys
-        at = keys.get_indexer(d["home_code"])
-        outcome = d["outcome"].to_numpy(dtype=object)
-        fa = np.bincount(at[(outcome == "false_alarm") & (at >= 0)], minlength=len(keys)).astype(np.int64)
-        is_open = np.isin(outcome, disturbances.OPEN) & (at >= 0)
+        at = self._d_home[scope][rows]
+        outcome = self._d_outcome[rows]
+        fa = np.bincount(at[(outcome == _FALSE_ALARM) & (at >= 0)], minlength=len(keys)).astype(np.int64)
+        is_open = np.isin(outcome, _OPEN) & (at >= 0)
         opened = np.bincount(at[is_open], minlength=len(keys)).astype(np.int64)
-        counts = pd.Series(outcome).value_counts()
+        counts = np.bincount(outcome[outcome >= 0], minlength=len(OUTCOMES))
         tally = DisturbanceTally(
-            **{o: int(counts.get(o, 0)) for o in OUTCOMES},
-            alerts=int(d["alerts"].sum()),
+            **{o: int(n) for o, n in zip(OUTCOMES, counts, strict=True)},
+            alerts=int(self._d_alerts[rows].sum()),
             window_s=self.window_s,
         )
         return fa, opened, tally
@@ -750,8 +766,8 @@ class _Context:
             self._trend_home_months = pd.DataFrame(
                 {"week_index": hm.index.to_numpy(dtype=np.int64), "home_months": hm.to_numpy()}
             )
-        dist = self.disturbances
-        dist = dist[(dist["sound_class"] == sound_class) & (dist["outcome"] == "false_alarm")]
+        rows = self._d_rows.get(sound_class, np.zeros(0, dtype=np.intp))
+        dist = self.disturbances.iloc[rows[self._d_outcome[rows] == _FALSE_ALARM]]
         # The rate week by week is on false-alarm disturbances, as readiness is; alerts beside.
         weeks = pd.concat(
             [
@@ -878,11 +894,6 @@ def _operations(
 
 
 def _review(session: Session, trial: Trial, now: dt.datetime, notes: list[str]) -> ReviewFigures | None:
-    try:
-        from server.review import overview
-    except ImportError:  # the review module is optional at import time only
-        notes.append("Review figures are unavailable: the review module is not installed.")
-        return None
     brief = overview.agreement_brief(session, trial.id, now=now)
     return ReviewFigures(
         backlog=brief.backlog.count,
@@ -897,12 +908,7 @@ def _review(session: Session, trial: Trial, now: dt.datetime, notes: list[str]) 
 
 
 def _quota(session: Session, trial: Trial, notes: list[str]) -> tuple[QuotaLine, ...] | None:
-    try:
-        from server.households import service as households_service
-    except ImportError:
-        notes.append("Quota status is unavailable: the household register is not installed.")
-        return None
-    report = households_service.quota_report(session, trial)
+    report = quota_service.quota_report(session, trial)
     return tuple(
         QuotaLine(
             label=s.target.label,
