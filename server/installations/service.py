@@ -356,6 +356,6 @@ def reattribute_alerts(session: Session, device_id: int) -> int:
         # Alerts already loaded in this session must not keep their old place.
         moved = {c["alert_id_v"] for c in changes}
         for obj in list(session.identity_map.values()):
-            if getattr(obj, "__tablename__", None) == "alert" and obj.id in moved:
+            if getattr(obj, "__tablename__", None) == "alert" and getattr(obj, "id", None) in moved:
                 session.expire(obj, ["installation_id", "home_id"])
     return len(changes)

@@ -129,6 +129,21 @@ def test_correcting_dates_reattributes_alerts_and_is_audited(staff_client, sessi
     assert homes == {early.id: home.id, late.id: None}
 
 
+def test_removal_moves_alerts_already_loaded_in_the_session(session, settings, store, trial):
+    # Attribution writes alert rows by table; an Alert object the caller holds must not keep its
+    # old home (no refresh here on purpose).
+    device, _ = factories.make_device(session, trial)
+    home = factories.make_installed_home(session, trial, device, installed_at=day(10))
+    kept = factories.make_alert(session, store, settings, device, detected_at=day(10, 12))
+    late = factories.make_alert(session, store, settings, device, detected_at=day(12))
+    assert (kept.home_id, late.home_id) == (home.id, home.id)
+    inst = installations_service.list_installations(session, home=home)[0]
+    installations_service.remove_installation(session, inst, removed_at=day(11))
+    assert (late.home_id, late.installation_id) == (None, None)
+    assert (kept.home_id, kept.installation_id) == (home.id, inst.id)
+    assert installations_service.reattribute_alerts(session, device.id) == 0  # already in place
+
+
 def test_listening_hours_follow_the_installation(session, trial):
     device, _ = factories.make_device(session, trial)
     home = factories.make_installed_home(session, trial, device, installed_at=day(3, 12))
