@@ -1,5 +1,5 @@
-"""The household register: homes, lifecycle transitions, consent, personal data, attributes,
-installations, staged test events and the trial's quota.
+"""The household register: homes, lifecycle transitions, consent, personal data, attributes, and
+the home's side of installing a device (the installation itself is server.installations).
 
 One function per action, serving the pages, the JSON API and the CLI alike. Services take a
 Session and plain values, flush and never commit.
