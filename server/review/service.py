@@ -350,7 +350,9 @@ def list_adjudications(
     if trial_id is not None:
         q = q.where(Alert.trial_id == trial_id)
     if not is_admin(adjudicator):
-        q = q.where(Alert.private_flag.is_(False))
+        # Never her own clips: a reviewer who gave one of the verdicts may not settle them.
+        own = select(Verdict.alert_id).where(Verdict.reviewer_id == adjudicator.id)
+        q = q.where(Alert.private_flag.is_(False), Alert.id.not_in(own))
     alerts = list(session.scalars(q.limit(limit)))
     views = _verdict_views(session, [a.id for a in alerts])
     return [
@@ -370,6 +372,10 @@ def get_adjudication(session: Session, *, adjudicator: User, alert_id: int) -> A
         )
     if alert.private_flag and not is_admin(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
+    if not is_admin(adjudicator) and session.scalar(
+        select(Verdict.id).where(Verdict.alert_id == alert.id, Verdict.reviewer_id == adjudicator.id).limit(1)
+    ) is not None:
+        raise SameReviewer("You gave one of the verdicts on this clip; another adjudicator must settle it.")
     return AdjudicationCase(
         queue_item(session, alert), tuple(_verdict_views(session, [alert.id])[alert.id]), alert.private_flag
     )
