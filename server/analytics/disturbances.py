@@ -37,16 +37,25 @@ def group(home_id: ArrayLike, sound_class: ArrayLike, t: ArrayLike, *, window_s:
     -------
     One int per alert, in the input's order; numbers rise with (home, class, first alert time).
     """
+    return _grouped(home_id, sound_class, t, window_s=window_s)[0]
+
+
+def _grouped(
+    home_id: ArrayLike, sound_class: ArrayLike, t: ArrayLike, *, window_s: float
+) -> tuple[NDArray[np.int64], NDArray[np.intp], NDArray[np.bool_]]:
+    """`group`'s numbers, with the order it walked the alerts in (home, class, time; ties by row)
+    and which alert of that order begins each disturbance."""
     if window_s < 0:
         raise ValueError("the disturbance window cannot be negative")
     h = pd.factorize(np.asarray(home_id), sort=True)[0]
-    c = pd.factorize(np.asarray(sound_class, dtype=object), sort=True)[0]
+    c, classes = pd.factorize(np.asarray(sound_class, dtype=object), sort=True)
     times = np.asarray(t, dtype=np.float64)
     n = len(times)
     out = np.zeros(n, dtype=np.int64)
     if n == 0:
-        return out
-    order = np.lexsort((times, c, h))
+        return out, np.zeros(0, dtype=np.intp), np.zeros(0, dtype=bool)
+    # One key for (home, class): the same order as sorting by home, then class, then time.
+    order = np.lexsort((times, h.astype(np.int64) * max(len(classes), 1) + c))
     hs, cs, ts = h[order], c[order], times[order]
     same = np.r_[False, (hs[1:] == hs[:-1]) & (cs[1:] == cs[:-1])]
     close = same & (np.r_[np.inf, np.diff(ts)] <= window_s)
@@ -62,7 +71,7 @@ def group(home_id: ArrayLike, sound_class: ArrayLike, t: ArrayLike, *, window_s:
                 starts[j] = True
                 anchor = ts[j]
     out[order] = np.cumsum(starts) - 1
-    return out
+    return out, order, starts
 
 
 def summarise(alerts: pd.DataFrame, *, window_s: float) -> pd.DataFrame:
@@ -80,18 +89,17 @@ def summarise(alerts: pd.DataFrame, *, window_s: float) -> pd.DataFrame:
     """
     if alerts.empty:
         return alerts.iloc[:0].assign(alerts=pd.Series(dtype=np.int64))
-    number = group(alerts["home_id"], alerts["sound_class"], alerts["t"], window_s=window_s)
-    outcomes = alerts["outcome"].to_numpy(dtype=object)
-    bad = sorted(set(outcomes.tolist()) - set(PRECEDENCE))
-    if bad:
+    number, order, starts = _grouped(alerts["home_id"], alerts["sound_class"], alerts["t"], window_s=window_s)
+    rank = pd.Index(PRECEDENCE).get_indexer(alerts["outcome"]).astype(np.int64)
+    if (rank < 0).any():
+        bad = sorted(set(alerts["outcome"].to_numpy(dtype=object)[rank < 0].tolist()))
         raise ValueError(f"unknown alert outcomes: {bad}")
-    rank = pd.Index(PRECEDENCE).get_indexer(outcomes).astype(np.int64)
-    best = np.full(int(number.max()) + 1, len(PRECEDENCE), dtype=np.int64)
-    np.minimum.at(best, number, rank)
-    counts = np.bincount(number)
-    # The first alert of each disturbance: its earliest time (ties: the first row).
-    order = np.lexsort((alerts["t"].to_numpy(dtype=np.float64), number))
-    first_rows = order[np.r_[True, number[order][1:] != number[order][:-1]]]
+    # In `_grouped`'s order each disturbance is one run of alerts, earliest first (ties: the first
+    # row), so its first alert opens the run and its outcome is the run's best rank.
+    first = np.flatnonzero(starts)
+    best = np.minimum.reduceat(rank[order], first)
+    counts = np.diff(np.r_[first, len(order)])
+    first_rows = order[first]
     out = alerts.iloc[first_rows].reset_index(drop=True)
     out["alerts"] = counts
     out["outcome"] = np.asarray(PRECEDENCE, dtype=object)[best]

@@ -514,13 +514,11 @@ class _Context:
         self._d_outcome = pd.Index(OUTCOMES).get_indexer(self.disturbances["outcome"])
         self._d_week = (self.disturbances["period"] == "week").to_numpy(dtype=bool)
         self._d_alerts = self.disturbances["alerts"].to_numpy(dtype=np.int64)
-        home_ids = pd.Index(self.disturbances["home_id"])
-        self._d_home = {
-            scope: self._homes[scope].keys.get_indexer(codes.to_numpy())[codes.index.get_indexer(home_ids)]
-            if len(codes)
-            else np.full(len(home_ids), -1, dtype=np.intp)
-            for scope in SCOPES
-        }
+        of_home = codes.index.get_indexer(pd.Index(self.disturbances["home_id"]))
+        self._d_home = {}
+        for scope in SCOPES:
+            at = self._homes[scope].keys.get_indexer(codes.to_numpy())
+            self._d_home[scope] = np.where(of_home >= 0, at[of_home] if len(at) else -1, -1)
         self._outside = {
             scope: self._scoped(data.not_counted, scope).groupby("sound_class")["alerts"].sum().to_dict()
             for scope in SCOPES
