@@ -69,7 +69,7 @@ async def check_password(request: Request, password_hash: str, password: str) ->
     if scope.cancelled_caught:
         raise PasswordBusy()
     try:
-        return await anyio.to_thread.run_sync(verify_password, password_hash, password)
+        return await service.run_password_work(verify_password, password_hash, password)
     finally:
         limiter.release()
 
