@@ -10,40 +10,13 @@ import logging
 import sys
 from collections.abc import Sequence
 
-from sqlalchemy import select
-from sqlalchemy.orm import Session, sessionmaker
-
 from server import migrate
-from server.db import make_engine, make_session_factory, session_scope
+from server.cli_base import CliError, open_db
+from server.db import make_engine, session_scope
 from server.errors import AppError
 from server.settings import Settings
 
 log = logging.getLogger("trialhouse")
-
-
-class CliError(Exception):
-    pass
-
-
-def open_db(settings: Settings, *, auto_migrate: bool | None = None) -> sessionmaker[Session]:
-    """Session factory for the configured database. The default SQLite file migrates itself."""
-    settings.data_dir.mkdir(parents=True, exist_ok=True)
-    engine = make_engine(settings.resolved_database_url())
-    if auto_migrate is None:
-        auto_migrate = settings.is_default_sqlite
-    if auto_migrate:
-        migrate.upgrade(engine)
-    else:
-        try:
-            migrate.check_schema(engine)
-        except migrate.SchemaOutOfDate as exc:
-            raise CliError(str(exc)) from exc
-    factory = make_session_factory(engine)
-    with session_scope(factory) as s:
-        from server.trials import service as trials_service
-
-        trials_service.ensure_default_trial(s, settings.default_trial_code, settings.default_sound_classes)
-    return factory
 
 
 def _print_json(obj: object) -> None:

@@ -7,14 +7,13 @@ import argparse
 import json
 
 from server.admin import service
+from server.cli_base import open_db
 from server.db import session_scope
 from server.roles import ROLES
 from server.settings import Settings
 
 
 def _open(settings: Settings):  # type: ignore[no-untyped-def]
-    from server.cli import open_db
-
     return session_scope(open_db(settings))
 
 

@@ -6,13 +6,13 @@ import argparse
 import json
 from pathlib import Path
 
+from server.cli_base import open_db
 from server.db import utcnow
 from server.settings import Settings
 
 
 def cmd_report_weekly(args: argparse.Namespace, settings: Settings) -> int:
     from server.analytics import report, weekly
-    from server.cli import open_db
 
     factory = open_db(settings)
     with factory() as session:

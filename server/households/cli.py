@@ -7,12 +7,11 @@ import json
 import sys
 from pathlib import Path
 
+from server.cli_base import open_db
 from server.settings import Settings
 
 
 def _factory(settings: Settings):  # type: ignore[no-untyped-def]
-    from server.cli import open_db
-
     return open_db(settings)
 
 

@@ -5,12 +5,11 @@ from __future__ import annotations
 import argparse
 import json
 
+from server.cli_base import open_db
 from server.settings import Settings
 
 
 def _factory(settings: Settings):  # type: ignore[no-untyped-def]
-    from server.cli import open_db
-
     return open_db(settings)
 
 

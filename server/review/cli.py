@@ -6,6 +6,7 @@ import argparse
 import json
 import math
 
+from server.cli_base import open_db
 from server.settings import Settings
 
 
@@ -14,7 +15,6 @@ def _fmt(x: float | None, digits: int = 3) -> str:
 
 
 def cmd_review_overview(args: argparse.Namespace, settings: Settings) -> int:
-    from server.cli import open_db
     from server.db import session_scope
     from server.review import overview
     from server.trials import service as trials_service

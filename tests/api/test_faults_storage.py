@@ -20,7 +20,7 @@ import pytest
 from sqlalchemy import event, text
 
 from server.auth import service as auth_service
-from server.cli import open_db
+from server.cli_base import open_db
 from server.devices.clipstore import ClipStore
 from server.settings import Settings
 from server.trials import service as trials_service

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from server import cli
+from server import cli, cli_base
 from server.devices.clipstore import ClipStore
 from server.devices.models import AlertState
 from server.review.models import Verdict
@@ -24,7 +24,7 @@ def test_review_overview_command(
     monkeypatch.delenv("TRIALHOUSE_DATABASE_URL", raising=False)
     monkeypatch.setenv("TRIALHOUSE_SECRET_KEY", "cli-test-secret-" + "k" * 32)
     settings = Settings()
-    cli.open_db(settings)
+    cli_base.open_db(settings)
     store = ClipStore(settings.clip_dir)
     store.ensure()
     now = dt.datetime.now(dt.UTC)

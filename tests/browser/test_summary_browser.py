@@ -26,7 +26,7 @@ NOW = W0 + dt.timedelta(days=9)
 def server(tmp_path: Path) -> Iterator[tuple[LiveServer, str, str]]:
     """A live server over a committed pilot of four homes in the invented village of Wrenfold."""
     settings = Settings(data_dir=tmp_path / "srv", secret_key="summary-browser-" + "s" * 32)
-    from server.cli import open_db
+    from server.cli_base import open_db
 
     open_db(settings)
     store = ClipStore(settings.clip_dir)
