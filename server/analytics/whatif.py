@@ -117,13 +117,26 @@ def at_thresholds(
             raise ValueError("fa_homes and home_months_by_home go together")
         hm = np.asarray(home_months_by_home, dtype=np.float64)
         where = np.asarray(fa_homes, dtype=np.intp)[order]
-        upper = np.empty(len(t))
-        for i, threshold in enumerate(t):
-            kept = s >= threshold
-            per_home = np.bincount(where[kept], weights=w[kept], minlength=len(hm))
-            hr = homerate.home_rate(per_home, hm, confidence_level=confidence_level, min_homes=min_homes)
-            upper[i] = hr.high
-            too_few[i] = hr.reason is not None
+        if where.size and where.max() >= len(hm):
+            raise ValueError("fa_homes must be positions in home_months_by_home")
+        # `homerate.home_rate` at every threshold at once: the same homes (those with monitored
+        # time) throughout, one row of per-home counts per threshold.
+        monitored = hm > 0
+        if monitored.sum() < max(min_homes, 2) or len(t) == 0:
+            upper = np.full(len(t), np.nan)
+            too_few[:] = True
+        else:
+            per_home = np.stack(
+                [
+                    np.bincount(where[s >= threshold], weights=w[s >= threshold], minlength=len(hm))
+                    for threshold in t
+                ]
+            )
+            upper = homerate.home_rate_limits(
+                per_home[:, monitored],
+                np.broadcast_to(hm[monitored], (len(t), int(monitored.sum()))),
+                confidence_level=confidence_level,
+            )[2]
     meets = upper <= target
     state = np.where(
         too_few,
