@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import re
 
 import pytest
 from sqlalchemy import select
@@ -92,11 +93,17 @@ def test_reviewer_clears_clips_from_the_keyboard(live_server, page):
     )
     assert page.url.endswith(f"/review/{second}")
     assert not page.is_checked("input[name=label][value=false_alarm]")  # a clean form for the new clip
+    # The next clip's time reads as the first one's did, in the trial's zone, not as a raw ISO string.
+    shown = page.text_content("[data-f=local]")
+    assert re.fullmatch(r"[A-Z][a-z]{2} \d{2} [A-Z][a-z]{2} \d{4}, \d{2}:\d{2}:\d{2}", shown), shown
+    assert page.text_content("[data-f=timezone]") == "Europe/Berlin"
     wait_until(page, "document.getElementById('desk-msg').textContent.startsWith('Saved')")
 
     page.keyboard.press("c")
     page.keyboard.press("Enter")
     page.wait_for_selector("#desk-empty:not([hidden])")
+    assert not page.is_visible("#desk")  # the last clip leaves the screen
+    assert page.text_content("h1") == "Listening desk"
     assert page.console_errors == []
 
     with committed_session(live_server.settings) as s:
