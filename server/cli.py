@@ -10,11 +10,22 @@ import logging
 import sys
 from collections.abc import Sequence
 
-from server import migrate
+from server import migrate, simulate
+from server.admin import cli as admin_cli
+from server.analytics import cli as analytics_cli
+from server.app import create_app
+from server.auth import service as auth_service
 from server.cli_base import CliError, open_db
 from server.db import make_engine, session_scope
+from server.demo import cli as demo_cli
+from server.devices import service as devices_service
+from server.devices import storage, views
 from server.errors import AppError
+from server.households import cli as households_cli
+from server.quota import cli as quota_cli
+from server.review import cli as review_cli
 from server.settings import Settings
+from server.trials import service as trials_service
 
 log = logging.getLogger("trialhouse")
 
@@ -27,8 +38,6 @@ def _print_json(obj: object) -> None:
 
 def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
     import uvicorn
-
-    from server.app import create_app
 
     open_db(settings)
     app = create_app(settings)
@@ -47,8 +56,6 @@ def cmd_db_upgrade(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_user_add(args: argparse.Namespace, settings: Settings) -> int:
-    from server.auth import service as auth_service
-
     if sys.stdin.isatty():
         password = getpass.getpass("Password: ")
     else:
@@ -62,8 +69,6 @@ def cmd_user_add(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_trial_add(args: argparse.Namespace, settings: Settings) -> int:
-    from server.trials import service as trials_service
-
     factory = open_db(settings)
     with session_scope(factory) as s:
         try:
@@ -81,8 +86,6 @@ def cmd_trial_add(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_trial_set(args: argparse.Namespace, settings: Settings) -> int:
-    from server.trials import service as trials_service
-
     if args.target is None and args.disturbance_window is None:
         raise CliError("Give --target and/or --disturbance-window.")
     with session_scope(open_db(settings)) as s:
@@ -97,8 +100,6 @@ def cmd_trial_set(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_trial_list(args: argparse.Namespace, settings: Settings) -> int:
-    from server.trials import service as trials_service
-
     with session_scope(open_db(settings)) as s:
         for t in trials_service.list_trials(s):
             print(f"{t.code}\t{t.name}\t{t.starts_on}\t{','.join(t.sound_classes)}")
@@ -106,9 +107,6 @@ def cmd_trial_list(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_device_add(args: argparse.Namespace, settings: Settings) -> int:
-    from server.devices import service as devices_service
-    from server.trials import service as trials_service
-
     with session_scope(open_db(settings)) as s:
         trial = (trials_service.get_trial(s, args.trial) if args.trial
                  else trials_service.ensure_default_trial(s, settings.default_trial_code,
@@ -125,8 +123,6 @@ def cmd_device_add(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_device_list(args: argparse.Namespace, settings: Settings) -> int:
-    from server.devices import views
-
     with session_scope(open_db(settings)) as s:
         rows = views.device_rows(s, settings)
         if args.json:
@@ -139,8 +135,6 @@ def cmd_device_list(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_device_revoke(args: argparse.Namespace, settings: Settings) -> int:
-    from server.devices import service as devices_service
-
     with session_scope(open_db(settings)) as s:
         d = devices_service.revoke_device(s, args.serial)
         print(f"device {d.serial} revoked")
@@ -148,9 +142,6 @@ def cmd_device_revoke(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_alert_list(args: argparse.Namespace, settings: Settings) -> int:
-    from server.devices import service as devices_service
-    from server.devices import views
-
     with session_scope(open_db(settings)) as s:
         rows = views.alert_rows(s, devices_service.list_alerts(s, limit=args.limit))
         if args.json:
@@ -163,15 +154,11 @@ def cmd_alert_list(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_storage_check(args: argparse.Namespace, settings: Settings) -> int:
-    from server.devices import storage
-
     with session_scope(open_db(settings)) as s:
         return storage.run_check(s, settings, as_json=args.json, fix=args.repair)
 
 
 def cmd_simulate(args: argparse.Namespace, settings: Settings) -> int:
-    from server import simulate
-
     return simulate.main_from_args(args)
 
 
@@ -198,8 +185,6 @@ def build_parser() -> argparse.ArgumentParser:
     ua.add_argument("--name")
     ua.add_argument("--adjudicator", action="store_true", help="may settle disagreeing verdicts")
     ua.set_defaults(func=cmd_user_add)
-    from server.admin import cli as admin_cli
-
     admin_cli.register(user)
 
     trial = sub.add_parser("trial", help="trials").add_subparsers(dest="trial_cmd", required=True)
@@ -250,24 +235,11 @@ def build_parser() -> argparse.ArgumentParser:
     sc.add_argument("--repair", action="store_true", help="list, then remove orphan files and stale upload spools")
     sc.set_defaults(func=cmd_storage_check)
 
-    from server import simulate
-
     simulate.add_arguments(sub.add_parser("simulate", help="act as a device over the HTTP API"))
     sub.choices["simulate"].set_defaults(func=cmd_simulate)
 
-    from server.analytics import cli as analytics_cli
-    from server.households import cli as households_cli
-    from server.quota import cli as quota_cli
-    from server.review import cli as review_cli
-
-    for module in (households_cli, quota_cli, review_cli, analytics_cli):
+    for module in (households_cli, quota_cli, review_cli, analytics_cli, demo_cli):
         module.register(sub, st_sub)
-    try:
-        from server.demo import cli as demo_cli
-
-        demo_cli.register(sub, st_sub)
-    except ImportError:
-        pass
     return p
 
 

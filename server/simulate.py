@@ -19,6 +19,8 @@ from typing import Any
 import httpx
 import numpy as np
 
+from server import sounds
+
 log = logging.getLogger(__name__)
 
 CLASS_SOUND = {"smoke_alarm": "smoke_alarm_t3", "baby_cry": "baby_cry", "glass_break": "glass_break"}
@@ -76,8 +78,6 @@ class DeviceSimulator:
 
 def synth_clip(kind: str, rng: np.random.Generator, *, rate_hz: int = 16000,
                duration_s: float = 10.0) -> tuple[bytes, float]:
-    from server import sounds
-
     return sounds.make_clip(kind, rate_hz=rate_hz, duration_s=duration_s, rng=rng)
 
 

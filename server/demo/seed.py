@@ -30,7 +30,8 @@ import numpy as np
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from server import migrate
+from server import migrate, sounds
+from server.app import create_app
 from server.auth import service as auth_service
 from server.auth.models import User
 from server.db import make_engine, make_session_factory, session_scope
@@ -40,7 +41,7 @@ from server.devices import service as devices_service
 from server.devices.clipstore import ClipStore
 from server.devices.models import Alert, AlertState, Device
 from server.errors import AppError
-from server.households import erasure
+from server.households import catalogue, erasure
 from server.households import service as households_service
 from server.households.models import Home
 from server.installations import service as installations_service
@@ -48,6 +49,7 @@ from server.quota import service as quota_service
 from server.review import service as review_service
 from server.review.queue import routing_key
 from server.settings import Settings
+from server.simulate import DeviceSimulator
 from server.staged import service as staged_service
 from server.trials import service as trials_service
 from server.trials.models import Trial
@@ -167,8 +169,6 @@ def sign_ins_from_marker(data: dict[str, Any]) -> tuple[SignIn, ...]:
 
 
 def _make_clip(job: tuple[str, int]) -> tuple[bytes, float]:
-    from server import sounds
-
     kind, clip_seed = job
     rng = np.random.default_rng(clip_seed)
     clip, start_s = sounds.make_clip(kind, rng=rng)
@@ -290,8 +290,6 @@ class _Register:
 
 
 def _attributes(session: Session, trial: Trial, hh: Household) -> dict[str, Any]:
-    from server.households import catalogue
-
     known = {d.key: d for d in catalogue.list_catalogue(session, trial)}
     values: dict[str, Any] = {}
     for trait, key in TRAIT_ATTRIBUTES.items():
@@ -379,9 +377,6 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
                     clip_workers: int) -> tuple[dict[str, int], int]:
     """Every heartbeat and alert of the plan, in server-time order, over HTTP to the real app."""
     from fastapi.testclient import TestClient
-
-    from server.app import create_app
-    from server.simulate import DeviceSimulator
 
     offsets = {d.serial: dt.timedelta(seconds=d.clock_offset_s) for d in plan.devices}
     events: list[tuple[dt.datetime, int, str, int]] = []

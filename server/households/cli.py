@@ -8,7 +8,11 @@ import sys
 from pathlib import Path
 
 from server.cli_base import open_db
+from server.db import session_scope
+from server.devices.clipstore import ClipStore
+from server.households import erasure, transfer
 from server.settings import Settings
+from server.trials import service as trials_service
 
 
 def _factory(settings: Settings):  # type: ignore[no-untyped-def]
@@ -16,10 +20,6 @@ def _factory(settings: Settings):  # type: ignore[no-untyped-def]
 
 
 def cmd_home_import(args: argparse.Namespace, settings: Settings) -> int:
-    from server.db import session_scope
-    from server.households import transfer
-    from server.trials import service as trials_service
-
     path = Path(args.file)
     try:
         data = path.read_bytes()
@@ -40,10 +40,6 @@ def cmd_home_import(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_home_export(args: argparse.Namespace, settings: Settings) -> int:
-    from server.db import session_scope
-    from server.households import transfer
-    from server.trials import service as trials_service
-
     with session_scope(_factory(settings)) as s:
         trial = trials_service.trial_in_view(s, args.trial)
         text = transfer.export_csv(s, trial, with_personal_data=args.with_personal_data, actor="cli")
@@ -59,10 +55,6 @@ def cmd_home_export(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def cmd_storage_purge(args: argparse.Namespace, settings: Settings) -> int:
-    from server.db import session_scope
-    from server.devices.clipstore import ClipStore
-    from server.households import erasure
-
     with session_scope(_factory(settings)) as s:
         report = erasure.purge_clips(
             s, ClipStore(settings.clip_dir), apply=args.apply, actor="cli", cache_dir=settings.cache_dir

@@ -6,7 +6,11 @@ import argparse
 import json
 
 from server.cli_base import open_db
+from server.db import session_scope
+from server.quota import service as quota_service
+from server.quota.api import quota_out
 from server.settings import Settings
+from server.trials import service as trials_service
 
 
 def _factory(settings: Settings):  # type: ignore[no-untyped-def]
@@ -14,17 +18,11 @@ def _factory(settings: Settings):  # type: ignore[no-untyped-def]
 
 
 def cmd_quota_show(args: argparse.Namespace, settings: Settings) -> int:
-    from server.db import session_scope
-    from server.quota import service as quota_service
-    from server.trials import service as trials_service
-
     with session_scope(_factory(settings)) as s:
         trial = trials_service.trial_in_view(s, args.trial)
         qv = quota_service.quota_view(s, trial)
         r = qv.report
         if args.json:
-            from server.quota.api import quota_out
-
             print(json.dumps(quota_out(qv).model_dump(mode="json")))
             return 0
         print(f"quota of {trial.code}: {r.counted} home(s) counted (states: {', '.join(r.counting_states)})")

@@ -7,7 +7,10 @@ import json
 import math
 
 from server.cli_base import open_db
+from server.db import session_scope
+from server.review import overview
 from server.settings import Settings
+from server.trials import service as trials_service
 
 
 def _fmt(x: float | None, digits: int = 3) -> str:
@@ -15,10 +18,6 @@ def _fmt(x: float | None, digits: int = 3) -> str:
 
 
 def cmd_review_overview(args: argparse.Namespace, settings: Settings) -> int:
-    from server.db import session_scope
-    from server.review import overview
-    from server.trials import service as trials_service
-
     with session_scope(open_db(settings)) as s:
         trial_id = trials_service.get_trial(s, args.trial).id if args.trial else None
         ov = overview.review_overview(s, trial_id)
