@@ -65,7 +65,8 @@ def api_table_csv(
     if name not in tables:
         raise NotFound(f"The summary has no table called {name!r}.", code="unknown_table")
     # Firmware strings come from devices and attribute values from coordinators: escape text cells.
-    body = safe_frame(tables[name]).to_csv(index=False)
+    # CRLF line ends (RFC 4180) make the writer quote any cell holding a CR, which would split a row.
+    body = safe_frame(tables[name]).to_csv(index=False, lineterminator="\r\n")
     filename = f"{summary.trial_code}-{summary.week.label}-{name}.csv"
     return Response(
         body,

@@ -268,4 +268,5 @@ def export_csv(
             session, actor, "personal.export", "trial", trial.id, {"trial": trial.code, "homes": len(rows)}
         )
     # Every text cell is escaped: attribute values and contact details come from people.
-    return safe_frame(pd.DataFrame(rows, columns=cols)).to_csv(index=False)
+    # CRLF line ends (RFC 4180) make the writer quote any cell holding a CR, which would split a row.
+    return safe_frame(pd.DataFrame(rows, columns=cols)).to_csv(index=False, lineterminator="\r\n")

@@ -49,17 +49,11 @@ NOW = W1 + dt.timedelta(days=2, hours=9)
 # 16-20 characters (rooms, phone numbers).
 HOSTILE = ['=HYPERLINK("http://x.invalid","y")', "+SUM(1,2)", "-2+3*cmd", "@SUM(A1:A2)", "\tHIDDEN=1"]
 SHORT = ["=1+2", "+A1", "-1+1", "@A1", "\tlanding"]
-# A carriage return: escaped with the apostrophe, but a CSV writer whose line end is a bare "\n"
-# (pandas' to_csv default) leaves the cell unquoted, and a reader starts a new row at the CR, so the
-# text after it opens a row of its own, unescaped.
+# A carriage return: escaped with the apostrophe, and the cell must also be quoted, or a reader
+# starts a new row at the CR and the text after it opens a row of its own, unescaped (pandas'
+# to_csv with its default bare "\n" line end left such cells unquoted; the exports write CRLF).
 CR_HOSTILE = ["\r=1+1", "\r+SUM(1,2)", "\r@SUM(A1)", "\r-2+3", "\r=HYPERLINK(1)"]
 CR_SHORT = ["\r=2", "\r+A1", "\r@A1", "\r-1+1", "\r=3"]
-CR_BUG = (
-    "pandas to_csv (summary tables in server/analytics/api.py, register exports in "
-    "server/households/transfer.py) writes a bare CR unquoted, so '\\r=1+1' escaped as \"'\\r=1+1\" "
-    "still splits into a new row starting '=1+1'; the audit trail (csv.writer, CRLF line ends) is "
-    "safe. Fix: to_csv(..., lineterminator='\\r\\n') quotes any cell holding CR or LF."
-)
 
 # The CSV routes this test downloads. A route answering text/csv that is not here fails the test.
 COVERED = {
@@ -227,11 +221,7 @@ def role_for(caps: list[str]) -> str:
     "pilot",
     [
         pytest.param((HOSTILE, SHORT), id="formula-starts"),
-        pytest.param(
-            (CR_HOSTILE, CR_SHORT),
-            id="carriage-return",
-            marks=pytest.mark.xfail(strict=True, raises=AssertionError, reason=CR_BUG),
-        ),
+        pytest.param((CR_HOSTILE, CR_SHORT), id="carriage-return"),
     ],
     indirect=True,
 )
