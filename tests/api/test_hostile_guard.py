@@ -135,7 +135,7 @@ def _upload_until_answered(port: int, path: str, total: int) -> tuple[int, int]:
 
 
 def test_sixty_megabyte_anonymous_post_costs_no_memory(fresh_settings: Settings) -> None:
-    from server.cli import open_db
+    from server.cli_base import open_db
 
     open_db(fresh_settings)
     with LiveServer(fresh_settings) as srv:
@@ -236,7 +236,7 @@ def test_policy_hashes_every_static_inline_script_of_the_templates() -> None:
 
 def test_sqlite_file_and_its_log_are_private(tmp_path: Path) -> None:
     s = Settings(data_dir=tmp_path / "fresh", secret_key="p" * 40)
-    from server.cli import open_db
+    from server.cli_base import open_db
 
     open_db(s)
     with committed_session(s) as db:
