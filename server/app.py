@@ -12,10 +12,31 @@ from fastapi import FastAPI
 from starlette.middleware.sessions import SessionMiddleware
 
 from server import errors, health, migrate
+from server.admin import api as admin_api
+from server.admin import pages as admin_pages
+from server.analytics import api as analytics_api
+from server.analytics import pages as analytics_pages
+from server.auth import api as auth_api
+from server.auth import pages as auth_pages
 from server.auth import web as auth_web
 from server.db import make_engine, make_session_factory, utcnow, writer_engine
+from server.devices import api as devices_api
+from server.devices import pages as devices_pages
 from server.devices.clipstore import ClipStore
+from server.households import api as households_api
+from server.households import home_pages as households_home_pages
+from server.households import installation_api as households_installation_api
+from server.households import installation_pages as households_installation_pages
+from server.households import pages as households_pages
+from server.households.transfer import MAX_IMPORT_BYTES
+from server.quota import api as quota_api
+from server.quota import pages as quota_pages
+from server.review import api as review_api
+from server.review import pages as review_pages
 from server.settings import Settings
+from server.staged import api as staged_api
+from server.staged import pages as staged_pages
+from server.web import pages as web_pages
 from server.web.guards import RequestGuard, document_error_responses
 from server.web.templating import TEMPLATES_DIR, make_templates
 
@@ -97,8 +118,6 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
                        same_site="lax", https_only=settings.secure_cookies)
     app.add_middleware(auth_web.StaleSessionCookie, settings=settings)
 
-    from server.households.transfer import MAX_IMPORT_BYTES
-
     # Outermost: turns away credential-less staff calls and oversized bodies before anything reads them.
     import_limit = MAX_IMPORT_BYTES + 256 * 1024  # the file plus its multipart framing
     app.add_middleware(RequestGuard, routes_of=app, max_body_bytes=settings.max_body_bytes,
@@ -106,27 +125,6 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
                                     ("POST", "/api/v1/homes/import"): import_limit,
                                     ("POST", "/homes/import"): import_limit},
                        session_cookie="trialhouse_session", template_dir=TEMPLATES_DIR)
-
-    from server.admin import api as admin_api
-    from server.admin import pages as admin_pages
-    from server.analytics import api as analytics_api
-    from server.analytics import pages as analytics_pages
-    from server.auth import api as auth_api
-    from server.auth import pages as auth_pages
-    from server.devices import api as devices_api
-    from server.devices import pages as devices_pages
-    from server.households import api as households_api
-    from server.households import home_pages as households_home_pages
-    from server.households import installation_api as households_installation_api
-    from server.households import installation_pages as households_installation_pages
-    from server.households import pages as households_pages
-    from server.quota import api as quota_api
-    from server.quota import pages as quota_pages
-    from server.review import api as review_api
-    from server.review import pages as review_pages
-    from server.staged import api as staged_api
-    from server.staged import pages as staged_pages
-    from server.web import pages as web_pages
 
     app.include_router(health.router)
     # The register's list pages (/homes/new, /homes/import, ...) come before /homes/{code}.

@@ -25,7 +25,7 @@ from server.devices.schemas import (
     HeartbeatIn,
     HeartbeatOut,
 )
-from server.devices.upload import read_alert_upload
+from server.devices.upload import boundary_of, read_alert_upload
 from server.errors import ClipTooLarge, InvalidRequest, MissingToken, ValidationFailed
 from server.trials import service as trials_service
 
@@ -108,8 +108,6 @@ async def post_heartbeat(request: Request, device: CurrentDevice, session: DbSes
                         400: {}, 401: {}, 403: {}, 409: {}, 413: {}, 415: {}, 422: {}})
 async def post_alert(request: Request, device: CurrentDevice, session: DbSession, settings: SettingsDep,
                      store: ClipStoreDep) -> JSONResponse:
-    from server.devices.upload import boundary_of
-
     boundary_of(request.headers.get("content-type", ""))  # 415 before reading anything
     length = request.headers.get("content-length")
     if length and length.isdigit() and int(length) > settings.max_clip_bytes + 512 * 1024:

@@ -13,7 +13,7 @@ from server.auth.models import User
 from server.db import utcnow
 from server.devices import service
 from server.devices.clipstore import ClipStore
-from server.devices.models import Alert, Device
+from server.devices.models import Alert, Device, ListeningSegment
 from server.devices.schemas import AlertOut, DeviceOut
 from server.errors import AppError, Forbidden
 from server.households.models import Consent, Home
@@ -92,8 +92,6 @@ def clip_file_for(session: Session, store: ClipStore, user: User, alert_id: int)
 
 
 def recent_segments(session: Session, device_id: int, limit: int = 30) -> list[dict[str, Any]]:
-    from server.devices.models import ListeningSegment
-
     rows = session.scalars(select(ListeningSegment).where(ListeningSegment.device_id == device_id)
                            .order_by(ListeningSegment.started_at.desc()).limit(limit))
     return [{"started_at": s.started_at, "ended_at": s.ended_at, "open": s.is_open,

@@ -27,6 +27,7 @@ from server.devices.models import Alert, Clip
 from server.errors import AppError, ValidationFailed
 from server.households import service
 from server.households.models import Consent, Home, HomeContact, HomeState, HomeStateChange
+from server.review import image_cache
 from server.review.models import Verdict
 from server.staged.models import StagedEvent
 from server.trials.models import Trial
@@ -193,8 +194,6 @@ class ErasureResult:
 def _forget_images(cache_dir: Path | None, sha256: str) -> None:
     if cache_dir is None:
         return
-    from server.review import image_cache
-
     image_cache.forget(cache_dir, sha256)
 
 

@@ -14,7 +14,7 @@ from sqlalchemy.orm import Session
 from server.auth.models import User
 from server.db import utcnow
 from server.devices.models import Alert, Device, ListeningSegment
-from server.households import catalogue, service
+from server.households import catalogue, lifecycle, service
 from server.households import timeline as intervals
 from server.households.models import (
     AttributeDefinition,
@@ -146,8 +146,6 @@ def weekly_listening(
 
 
 def home_overview(session: Session, home: Home, *, now: dt.datetime | None = None) -> HomeOverview:
-    from server.households import lifecycle
-
     now = now or utcnow()
     trial = service.trial_of(session, home)
     specs = catalogue.list_catalogue(session, trial)

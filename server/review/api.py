@@ -9,6 +9,7 @@ from fastapi.responses import JSONResponse
 
 from server.auth.models import User
 from server.deps import DbSession, SettingsDep, require
+from server.devices.models import Alert
 from server.errors import NotFound
 from server.review import image_cache, overview, queue, service
 from server.review.schemas import (
@@ -158,8 +159,6 @@ def api_adjudicate(
         note=body.note,
     )
     session.commit()
-    from server.devices.models import Alert
-
     alert = session.get(Alert, alert_id)
     assert alert is not None
     return FinalOut(

@@ -12,7 +12,14 @@ from sqlalchemy import event, select
 from sqlalchemy.orm import ORMExecuteState, Session, with_loader_criteria
 
 from server import audit
+from server.devices.models import Alert, Device
 from server.errors import Conflict, NotFound, ValidationFailed
+from server.households.catalogue import seed_default_catalogue
+from server.households.models import AttributeDefinition, Home
+from server.installations.models import Installation
+from server.quota.models import QuotaTarget
+from server.review.models import GoldCheck, Verdict
+from server.staged.models import StagedEvent
 from server.trials.models import Trial, TrialMembership
 
 _CODE = re.compile(r"^[A-Z0-9][A-Z0-9_-]{1,39}$")
@@ -52,8 +59,6 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
     session.add(trial)
     session.flush()
     # Every trial starts with the default household attribute catalogue.
-    from server.households.catalogue import seed_default_catalogue
-
     seed_default_catalogue(session, trial)
     audit.record(session, actor if not isinstance(actor, str) else actor, "trial.create", "trial",
                  trial.id, {"code": code})  # type: ignore[arg-type]
@@ -176,13 +181,6 @@ def session_scope_ids(session: Session) -> frozenset[int] | None:
 
 
 def _scope_options(ids: frozenset[int]) -> list[Any]:
-    from server.devices.models import Alert, Device
-    from server.households.models import AttributeDefinition, Home
-    from server.installations.models import Installation
-    from server.quota.models import QuotaTarget
-    from server.review.models import GoldCheck, Verdict
-    from server.staged.models import StagedEvent
-
     keep = tuple(sorted(ids))
     opts: list[Any] = [with_loader_criteria(Trial, Trial.id.in_(keep), include_aliases=True)]
     for model in (Home, Device, Alert, StagedEvent, AttributeDefinition, QuotaTarget):

@@ -12,6 +12,7 @@ from fastapi import Request
 from fastapi.templating import Jinja2Templates
 from starlette.responses import Response
 
+from server.deps import csrf_token
 from server.roles import CAPABILITIES
 
 TEMPLATES_DIR = Path(__file__).resolve().parent.parent.parent / "templates"
@@ -87,8 +88,6 @@ def make_templates() -> Jinja2Templates:
 
 def render(request: Request, name: str, context: dict[str, Any] | None = None, status_code: int = 200,
            headers: dict[str, str] | None = None) -> Response:
-    from server.deps import csrf_token
-
     user = getattr(request.state, "user", None)
     ctx: dict[str, Any] = {
         "user": user,
