@@ -16,7 +16,7 @@ import uuid
 from dataclasses import dataclass
 from typing import Any
 
-import httpx
+import httpx2
 import numpy as np
 
 from server import sounds
@@ -34,9 +34,9 @@ class SendResult:
 
 
 class DeviceSimulator:
-    def __init__(self, base_url: str, token: str, *, client: httpx.Client | None = None,
+    def __init__(self, base_url: str, token: str, *, client: httpx2.Client | None = None,
                  timeout_s: float = 10.0, retries: int = 3, firmware: str = "sim-1.0") -> None:
-        self.client = client or httpx.Client(base_url=base_url, timeout=timeout_s)
+        self.client = client or httpx2.Client(base_url=base_url, timeout=timeout_s)
         self.headers = {"Authorization": f"Bearer {token}"}
         self.retries = retries
         self.firmware = firmware
@@ -46,7 +46,7 @@ class DeviceSimulator:
         for attempt in range(1, self.retries + 2):
             try:
                 r = self.client.post(path, headers=self.headers, **kw)
-            except (httpx.TimeoutException, httpx.TransportError) as exc:
+            except (httpx2.TimeoutException, httpx2.TransportError) as exc:
                 last = exc
                 time.sleep(min(2.0, 0.2 * 2 ** attempt))
                 continue

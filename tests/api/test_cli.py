@@ -12,7 +12,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 import pytest
 from alembic import command
 from fastapi.testclient import TestClient
@@ -275,13 +275,13 @@ def test_server_refuses_to_start_on_an_older_schema(tmp_path: Path) -> None:
 
 # --- the simulator ----------------------------------------------------------------------------
 
-class FlakyTransport(httpx.BaseTransport):
+class FlakyTransport(httpx2.BaseTransport):
     """Times out once on the first alert upload: before it reaches the server, or after it was stored."""
 
-    def __init__(self, inner: httpx.BaseTransport, *, after_delivery: bool) -> None:
+    def __init__(self, inner: httpx2.BaseTransport, *, after_delivery: bool) -> None:
         self.inner, self.after_delivery, self.failed, self.delivered = inner, after_delivery, False, 0
 
-    def handle_request(self, request: httpx.Request) -> httpx.Response:
+    def handle_request(self, request: httpx2.Request) -> httpx2.Response:
         if request.url.path == "/api/v1/alerts":
             self.delivered += 1
             if not self.failed:
@@ -289,7 +289,7 @@ class FlakyTransport(httpx.BaseTransport):
                 if self.after_delivery:
                     response = self.inner.handle_request(request)
                     response.read()  # the server stored it; the answer is lost on the way back
-                raise httpx.ReadTimeout("simulated timeout", request=request)
+                raise httpx2.ReadTimeout("simulated timeout", request=request)
         return self.inner.handle_request(request)
 
 
@@ -346,13 +346,13 @@ def test_simulator_retries_a_timeout_with_the_same_event_id(after_delivery: bool
 def test_simulator_gives_up_after_its_retries(sim_app, monkeypatch: pytest.MonkeyPatch) -> None:  # type: ignore[no-untyped-def]
     _, token = sim_app
 
-    def always_timeout(request: httpx.Request) -> httpx.Response:
-        raise httpx.ConnectTimeout("no route", request=request)
+    def always_timeout(request: httpx2.Request) -> httpx2.Response:
+        raise httpx2.ConnectTimeout("no route", request=request)
 
     slept = _sleeps(monkeypatch)
     sim = simulate.DeviceSimulator("http://sim.invalid", token, retries=2,
-                                   client=httpx.Client(base_url="http://sim.invalid",
-                                                       transport=httpx.MockTransport(always_timeout)))
+                                   client=httpx2.Client(base_url="http://sim.invalid",
+                                                       transport=httpx2.MockTransport(always_timeout)))
     with pytest.raises(RuntimeError, match="no answer after 3 attempts"):
         sim.heartbeat()
     assert len(slept) == 3

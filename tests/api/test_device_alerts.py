@@ -24,7 +24,7 @@ import uuid
 from pathlib import Path
 from typing import Any
 
-import httpx
+import httpx2
 import numpy as np
 import pytest
 import soundfile as sf
@@ -82,7 +82,7 @@ def bearer(token: str, scheme: str = "Bearer") -> dict[str, str]:
 
 
 def post_alert(client: Any, token: str | None, m: dict[str, Any] | bytes, clip: bytes, *,
-               scheme: str = "Bearer", **kw: Any) -> httpx.Response:
+               scheme: str = "Bearer", **kw: Any) -> httpx2.Response:
     headers = {"Content-Type": MULTIPART}
     if token is not None:
         headers.update(bearer(token, scheme))
@@ -155,7 +155,7 @@ def until_spooling(store: ClipStore, timeout_s: float = 10.0) -> None:
         time.sleep(0.02)
 
 
-def assert_rejected(r: httpx.Response, status: int, code: str, client: Any, session: Session,
+def assert_rejected(r: httpx2.Response, status: int, code: str, client: Any, session: Session,
                     store: ClipStore, before: dict[str, Any]) -> dict[str, Any]:
     assert r.status_code == status, r.text
     assert r.headers["content-type"].startswith("application/json")
@@ -597,7 +597,7 @@ def test_oversized_upload_is_answered_before_the_client_has_sent_it_all(chunked:
             time.sleep(0.05)
         assert spool_files(store) == []  # the spool was discarded
         assert list(store.iter_keys()) == []
-        assert httpx.get(f"{srv.url}/api/v1/health", timeout=10).status_code == 200
+        assert httpx2.get(f"{srv.url}/api/v1/health", timeout=10).status_code == 200
 
 
 def test_device_hanging_up_mid_upload_is_not_a_server_error(fresh_settings: Settings,
@@ -615,7 +615,7 @@ def test_device_hanging_up_mid_upload_is_not_a_server_error(fresh_settings: Sett
         assert any("client disconnected" in r.getMessage() for r in caplog.records)
         assert not [r for r in caplog.records if r.levelno >= logging.ERROR], caplog.text
         assert spool_files(store) == [] and list(store.iter_keys()) == []
-        assert httpx.get(f"{srv.url}/api/v1/health", timeout=10).status_code == 200
+        assert httpx2.get(f"{srv.url}/api/v1/health", timeout=10).status_code == 200
 
 
 def test_slow_upload_does_not_block_other_devices(fresh_settings: Settings) -> None:
@@ -628,9 +628,9 @@ def test_slow_upload_does_not_block_other_devices(fresh_settings: Settings) -> N
             sock.sendall(_raw_request_head(srv.port, tok, len(body)) + body[: len(body) // 2])
             until_spooling(srv.app.state.clip_store)  # authenticated and streaming
             beat = {"sent_at": now.isoformat(), "listening": True, "firmware": "2.4.1"}
-            r = httpx.post(f"{srv.url}/api/v1/heartbeats", json=beat, headers=bearer(tok2), timeout=10)
+            r = httpx2.post(f"{srv.url}/api/v1/heartbeats", json=beat, headers=bearer(tok2), timeout=10)
             assert r.status_code == 200, r.text
-            r2 = httpx.post(f"{srv.url}/api/v1/alerts", content=alert_body(
+            r2 = httpx2.post(f"{srv.url}/api/v1/alerts", content=alert_body(
                 meta(detected_at=now.isoformat()), sine(seed=54)),
                 headers={"Content-Type": MULTIPART, **bearer(tok2)}, timeout=10)
             assert r2.status_code == 201, r2.text
@@ -747,7 +747,7 @@ def test_rejected_upload_reserves_nothing(first_fault: str, clocked, client, tok
     assert again.json() == {"alert_id": ok.json()["alert_id"], "duplicate": True}
 
 
-def _post_many(url: str, token: str, body: bytes, n: int) -> list[httpx.Response]:
+def _post_many(url: str, token: str, body: bytes, n: int) -> list[httpx2.Response]:
     return _post_all(url, token, [body] * n)
 
 
@@ -784,13 +784,13 @@ def test_device_work_queues_behind_its_slots_and_every_upload_lands(fresh_settin
         assert s.scalar(select(func.count(Alert.id)).where(Alert.event_id.like("slot-%"))) == n
 
 
-def _post_all(url: str, token: str, bodies: list[bytes]) -> list[httpx.Response]:
+def _post_all(url: str, token: str, bodies: list[bytes]) -> list[httpx2.Response]:
     """One upload per body, sent at once (released together by a barrier)."""
     barrier = threading.Barrier(len(bodies))
-    results: list[httpx.Response | BaseException | None] = [None] * len(bodies)
+    results: list[httpx2.Response | BaseException | None] = [None] * len(bodies)
 
     def send(i: int) -> None:
-        with httpx.Client(base_url=url, timeout=30) as c:
+        with httpx2.Client(base_url=url, timeout=30) as c:
             barrier.wait()
             try:
                 results[i] = c.post("/api/v1/alerts", content=bodies[i],
@@ -804,7 +804,7 @@ def _post_all(url: str, token: str, bodies: list[bytes]) -> list[httpx.Response]
     for t in threads:
         t.join(60)
     for res in results:
-        if not isinstance(res, httpx.Response):
+        if not isinstance(res, httpx2.Response):
             raise AssertionError(f"a concurrent upload failed: {res!r}")
     return results  # type: ignore[return-value]
 

@@ -14,7 +14,7 @@ import re
 import threading
 import uuid
 
-import httpx
+import httpx2
 from sqlalchemy import func, select
 
 from server.auth.models import AuditEvent
@@ -33,7 +33,7 @@ VIEW_PATHS = ("/homes/{code}/contact", "/api/v1/homes/{code}/contact",
               "/homes/export-personal.csv?trial={trial}", "/api/v1/homes/export-personal.csv?trial={trial}")
 
 
-def _sign_in(c: httpx.Client, email: str, password: str) -> None:
+def _sign_in(c: httpx2.Client, email: str, password: str) -> None:
     page = c.get("/login")
     m = re.search(r'name="csrf_token" value="([^"]+)"', page.text)
     assert m, "login page carries a CSRF token"
@@ -64,7 +64,7 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
     lock = threading.Lock()
 
     def upload(d: int) -> None:
-        with httpx.Client(base_url=srv.url, timeout=60) as c:
+        with httpx2.Client(base_url=srv.url, timeout=60) as c:
             bodies = [alert_body({"event_id": uuid.uuid4().hex, "sound_class": "smoke_alarm", "score": 0.8,
                                   "detected_at": (now - dt.timedelta(seconds=d * 100 + k)).isoformat(),
                                   "clip_offset_s": 0.25, "firmware": "3.1.0"},
@@ -76,13 +76,13 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
                     r = c.post("/api/v1/alerts", content=body,
                                headers={"Content-Type": MULTIPART, **bearer(tokens[d])})
                     out: int | str = r.status_code if r.status_code == 201 else f"{r.status_code} {r.text[:200]}"
-                except httpx.HTTPError as exc:
+                except httpx2.HTTPError as exc:
                     out = repr(exc)
                 with lock:
                     uploads.append(out)
 
     def view(v: int) -> None:
-        with httpx.Client(base_url=srv.url, timeout=60) as c:
+        with httpx2.Client(base_url=srv.url, timeout=60) as c:
             _sign_in(c, *creds[v])
             start.wait()
             for k in range(VIEWS_PER_VIEWER):
@@ -92,7 +92,7 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
                     r = c.get(path)
                     ok = r.status_code == 200 and (b"Household" in r.content)
                     out: int | str = 200 if ok else f"{r.status_code} {r.text[:200]}"
-                except httpx.HTTPError as exc:
+                except httpx2.HTTPError as exc:
                     out = repr(exc)
                 with lock:
                     views.append((path, out))
@@ -105,7 +105,7 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
         for t in threads:
             t.join(240)
         assert not any(t.is_alive() for t in threads), "a worker did not finish"
-        health = httpx.get(f"{srv.url}/api/v1/health", timeout=10)
+        health = httpx2.get(f"{srv.url}/api/v1/health", timeout=10)
     assert health.status_code == 200
 
     assert len(uploads) == N_DEVICES * UPLOADS_PER_DEVICE

@@ -3,7 +3,7 @@ creates, lists and revokes a personal API token (keyboard only for the revoke)."
 
 from __future__ import annotations
 
-import httpx
+import httpx2
 import pytest
 
 from tests import factories
@@ -40,7 +40,7 @@ def test_sign_out_kills_the_copied_cookie(live_server, page, browser):  # type: 
         # ...until the owner signs out: then the copy is worth nothing, in a browser or a script.
         thief.goto(f"{base}/account")
         assert "/login" in thief.url and email not in thief.inner_text("main")
-        r = httpx.get(f"{base}/api/v1/account/tokens", cookies={COOKIE: saved[0]["value"]})
+        r = httpx2.get(f"{base}/api/v1/account/tokens", cookies={COOKIE: saved[0]["value"]})
         assert r.status_code == 401 and r.json()["error"]["code"] == "not_signed_in"
     finally:
         other.close()
@@ -63,7 +63,7 @@ def test_account_page_creates_lists_and_revokes_a_token(live_server, page):  # t
     row = page.locator("#token-list tr", has_text="weekly pull")
     assert "live" in row.inner_text() and "never" in row.inner_text()
 
-    r = httpx.get(f"{base}/api/v1/account/tokens", headers={"Authorization": f"Bearer {token}"})
+    r = httpx2.get(f"{base}/api/v1/account/tokens", headers={"Authorization": f"Bearer {token}"})
     assert r.status_code == 200 and r.json()["tokens"][0]["label"] == "weekly pull"
     page.goto(f"{base}/account")
     assert token not in page.content()  # shown once
@@ -76,6 +76,6 @@ def test_account_page_creates_lists_and_revokes_a_token(live_server, page):  # t
         page.keyboard.press("Enter")
     assert "Token revoked" in page.inner_text("main")
     assert "revoked" in page.locator("#token-list tr", has_text="weekly pull").inner_text()
-    r = httpx.get(f"{base}/api/v1/account/tokens", headers={"Authorization": f"Bearer {token}"})
+    r = httpx2.get(f"{base}/api/v1/account/tokens", headers={"Authorization": f"Bearer {token}"})
     assert r.status_code == 401 and r.json()["error"]["code"] == "invalid_token"
     assert not page.console_errors
