@@ -172,7 +172,7 @@ def finish_sign_in(session: Session, attempt: SignInAttempt, verified: bool, *, 
     """
     if attempt.user is None or not verified:
         started = throttle.record_failure(session, attempt.email, attempt.address, now=now, policy=policy)
-        detail = {"email": attempt.email, "address": attempt.address,
+        detail: dict[str, str | int | None] = {"email": attempt.email, "address": attempt.address,
                   "reason": "wrong_password" if attempt.user is not None else "unknown_or_inactive"}
         if started is not None:
             detail["blocked_s"] = started.retry_after_s
