@@ -24,6 +24,7 @@ from server.errors import AppError
 from server.households import cli as households_cli
 from server.quota import cli as quota_cli
 from server.review import cli as review_cli
+from server.roles import ROLES
 from server.settings import Settings
 from server.trials import service as trials_service
 
@@ -181,7 +182,7 @@ def build_parser() -> argparse.ArgumentParser:
     user = sub.add_parser("user", help="staff accounts").add_subparsers(dest="user_cmd", required=True)
     ua = user.add_parser("add", help="add a staff account (password read from standard input)")
     ua.add_argument("--email", required=True)
-    ua.add_argument("--role", required=True, choices=["admin", "coordinator", "reviewer", "lead"])
+    ua.add_argument("--role", required=True, choices=list(ROLES))
     ua.add_argument("--name")
     ua.add_argument("--adjudicator", action="store_true", help="may settle disagreeing verdicts")
     ua.set_defaults(func=cmd_user_add)

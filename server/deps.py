@@ -21,7 +21,7 @@ from server.auth import sessions
 from server.auth.models import User
 from server.devices.clipstore import ClipStore
 from server.errors import AppError, CsrfFailed, Forbidden, InvalidToken, NotSignedIn
-from server.roles import CAPABILITIES
+from server.roles import CAPABILITIES, allowed
 from server.settings import Settings
 from server.tokens import STAFF_PREFIX
 from server.trials import service as trials_service
@@ -178,7 +178,6 @@ def require(capability: str) -> Callable[..., User]:
     """
     if capability not in CAPABILITIES:
         raise KeyError(f"unknown capability {capability!r}")
-    roles = CAPABILITIES[capability]
 
     def dependency(request: Request, session: DbSession, sent: str | None = Depends(sent_csrf)) -> User:
         user = _load_staff(request, session)
@@ -192,7 +191,7 @@ def require(capability: str) -> Callable[..., User]:
         if user.must_change_password and capability != "staff.self":
             raise PasswordChangeRequired(
                 "An administrator set your password: choose your own on your account page (/account) first.")
-        if user.role not in roles:
+        if not allowed(user.role, capability):
             raise Forbidden(f"Your role ({user.role}) does not allow this.")
         trials_service.limit_session_to_user(session, user)  # trial membership, every later query
         return user

@@ -13,7 +13,7 @@ from server.admin import service, trail
 from server.auth.models import User
 from server.deps import DbSession, require
 from server.errors import AppError, ValidationFailed
-from server.roles import ROLES
+from server.roles import REVIEWER, ROLES
 from server.web.templating import render
 
 router = APIRouter(include_in_schema=False)
@@ -46,7 +46,7 @@ def _staff_page(
             "users": service.list_users(session),
             "roles": ROLES,
             "errors": errors or {},
-            "form": form or {"email": "", "name": "", "role": "reviewer", "is_adjudicator": False},
+            "form": form or {"email": "", "name": "", "role": REVIEWER, "is_adjudicator": False},
         },
         status_code=status_code,
     )

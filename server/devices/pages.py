@@ -8,6 +8,7 @@ from starlette.responses import Response
 from server.auth.models import User
 from server.deps import DbSession, SettingsDep, require
 from server.devices import service, views
+from server.roles import allowed
 from server.web.templating import render
 
 router = APIRouter(include_in_schema=False)
@@ -30,7 +31,7 @@ def device_page(serial: str, request: Request, session: DbSession, settings: Set
     installs = views.device_installations(session, device.id)
     return render(request, "devices/detail.html", {"device": row, "alerts": alerts, "segments": segments,
                                                    "installations": installs,
-                                                   "can_listen": user.role in ("admin", "coordinator"),
+                                                   "can_listen": allowed(user.role, "clips.listen"),
                                                    "skew_limit_s": settings.clock_skew_flag_s})
 
 
@@ -39,7 +40,7 @@ def alerts_page(request: Request, session: DbSession, page: int = Query(1, ge=1,
                 user: User = Depends(require("alerts.view"))) -> Response:
     per = 50
     alerts = views.alert_rows(session, service.list_alerts(session, limit=per, offset=(page - 1) * per))
-    can_listen = user.role in ("admin", "coordinator", "reviewer")
+    can_listen = allowed(user.role, "clips.listen")
     return render(request, "alerts/list.html", {"alerts": alerts, "page": page, "per": per,
                                                 "can_listen": can_listen,
                                                 "total": service.count_alerts(session)})

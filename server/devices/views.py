@@ -18,6 +18,7 @@ from server.devices.schemas import AlertOut, DeviceOut
 from server.errors import AppError, Forbidden
 from server.households.models import Consent, Home
 from server.installations.models import Installation
+from server.roles import allowed
 from server.settings import Settings
 from server.trials.models import Trial
 
@@ -79,7 +80,7 @@ def clip_file_for(session: Session, store: ClipStore, user: User, alert_id: int)
     if clip.erased_at is not None or not store.exists(clip.storage_key):
         raise AppError(f"The clip of alert {alert_id} was erased ({clip.erased_reason or 'removed'}).",
                        code="clip_erased", status=410)
-    if alert.private_flag and user.role != "admin":
+    if alert.private_flag and not allowed(user.role, "clips.private"):
         raise Forbidden("This clip was flagged as private content; only admins may listen to it.",
                         code="private_content")
     if alert.home_id is not None:

@@ -39,6 +39,7 @@ from server.errors import Conflict, Forbidden, NotFound
 from server.households.models import Consent, Home
 from server.installations.models import Installation
 from server.review.models import GoldAnswer, GoldCheck, Verdict
+from server.roles import allowed
 from server.trials.models import DEFAULT_CAUSES, Trial
 
 REVIEW_STATES = (AlertState.pending, AlertState.second_review)
@@ -199,8 +200,9 @@ def queue_item(session: Session, alert: Alert) -> QueueItem:
 # The queue
 
 
-def is_admin(user: User) -> bool:
-    return user.role == "admin"
+def hears_private(user: User) -> bool:
+    """Whether ``user``'s role may be handed clips flagged as private content (the role matrix)."""
+    return allowed(user.role, "clips.private")
 
 
 @functools.cache
@@ -239,7 +241,7 @@ def _review_filter(
     reviewer: User, trial_id: int | None, sound_class: str | None
 ) -> list[ColumnElement[bool]]:
     conds: list[ColumnElement[bool]] = [_clip_present(), _listening_allowed()]
-    if not is_admin(reviewer):
+    if not hears_private(reviewer):
         conds.append(_not_private())
     if trial_id is not None:
         conds.append(Alert.trial_id == trial_id)
@@ -281,14 +283,14 @@ def _gold_page_stmt() -> Select[int, int]:
 
 
 @functools.cache
-def _gold_alerts_stmt(admin: bool, by_trial: bool, by_sound: bool) -> Select[int]:
+def _gold_alerts_stmt(with_private: bool, by_trial: bool, by_sound: bool) -> Select[int]:
     q = select(Alert.id).where(
         Alert.id.in_(bindparam("q_ids", expanding=True)),
         Alert.state == AlertState.final,
         _clip_present(),
         _listening_allowed(),
     )
-    if not admin:
+    if not with_private:
         q = q.where(_not_private())
     if by_trial:
         q = q.where(Alert.trial_id == bindparam("q_trial_id"))
@@ -312,7 +314,7 @@ def _gold_candidates(
     """
     out: list[int] = []
     after = 0
-    alerts_stmt = _gold_alerts_stmt(is_admin(reviewer), trial_id is not None, bool(sound_class))
+    alerts_stmt = _gold_alerts_stmt(hears_private(reviewer), trial_id is not None, bool(sound_class))
     for _page in range(20):
         rows = session.execute(_gold_page_stmt(), {"q_rid": reviewer.id, "q_after": after}).all()
         if not rows:
@@ -353,7 +355,7 @@ def _matches(alert: Alert, reviewer: User, trial_id: int | None, sound_class: st
         return False
     if sound_class and alert.sound_class != sound_class:
         return False
-    if alert.private_flag and not is_admin(reviewer):
+    if alert.private_flag and not hears_private(reviewer):
         return False
     return alert.clip.erased_at is None
 
@@ -372,13 +374,13 @@ def _free_bound() -> ColumnElement[bool]:
 
 @functools.cache
 def _candidates_stmt(
-    state: str, admin: bool, by_trial: bool, by_sound: bool, limit: int
+    state: str, with_private: bool, by_trial: bool, by_sound: bool, limit: int
 ) -> Select[dt.datetime, int]:
     """The oldest free alerts in ``state``: an ordered walk of the (state, received_at) index."""
     q = select(Alert.received_at, Alert.id).where(
         Alert.state == state, _free_bound(), _clip_present(), _listening_allowed()
     )
-    if not admin:
+    if not with_private:
         q = q.where(_not_private())
     if by_trial:
         q = q.where(Alert.trial_id == bindparam("q_trial_id"))
@@ -428,12 +430,12 @@ def _claim_new(
     # Bound names carry a prefix: an UPDATE would read a column's own name as a value to set.
     params: dict[str, Any] = {"q_now": now, "q_rid": reviewer.id, "q_trial_id": trial_id}
     params["q_sound_class"] = sound_class
-    admin = is_admin(reviewer)
+    with_private = hears_private(reviewer)
     for attempt in range(5):
         limit = 4 * 2**attempt + len(exclude)
         candidates: list[tuple[dt.datetime, int]] = []
         for state in REVIEW_STATES:
-            stmt = _candidates_stmt(state, admin, trial_id is not None, bool(sound_class), limit)
+            stmt = _candidates_stmt(state, with_private, trial_id is not None, bool(sound_class), limit)
             candidates += [(r, i) for r, i in session.execute(stmt, params) if i not in exclude]
         if not candidates:
             return None
@@ -534,7 +536,7 @@ def get_review_item(
     alert = session.get(Alert, alert_id, populate_existing=True)
     if alert is None:
         raise NotFound(f"No alert has id {alert_id}.", code="unknown_alert")
-    if alert.private_flag and not is_admin(reviewer):
+    if alert.private_flag and not hears_private(reviewer):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     if alert.state in REVIEW_STATES:
         live = alert.claim_expires_at is not None and alert.claim_expires_at >= now

@@ -45,11 +45,12 @@ from server.review.queue import (
     drawn_for_second_review,
     gold_for,
     gold_open_to,
-    is_admin,
+    hears_private,
     queue_item,
     queue_items,
     trial_causes,
 )
+from server.roles import allowed
 from server.trials.models import Trial
 
 __all__ = [
@@ -200,7 +201,7 @@ def record_verdict(
     trial = session.get(Trial, alert.trial_id)
     assert trial is not None
     label, cause, resemblance, note = _clean(label, cause, resemblance, note, trial)
-    if alert.private_flag and not is_admin(reviewer):
+    if alert.private_flag and not hears_private(reviewer):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     gold = gold_for(session, alert.id)
 
@@ -313,7 +314,16 @@ def list_private_clips_to_purge(session: Session) -> list[Clip]:
 
 
 def can_adjudicate(user: User) -> bool:
-    return is_admin(user) or (user.is_adjudicator and user.role == "reviewer")
+    """A role with "review.adjudicate" settles with the adjudicator permission, or without it if it
+    also holds "review.adjudicate.always" (the role matrix)."""
+    return allowed(user.role, "review.adjudicate") and (
+        user.is_adjudicator or allowed(user.role, "review.adjudicate.always")
+    )
+
+
+def _settles_own(user: User) -> bool:
+    """Whether ``user`` may settle a clip she gave one of the verdicts on (so a small team is never stuck)."""
+    return allowed(user.role, "review.adjudicate.own")
 
 
 def _verdict_views(session: Session, alert_ids: Sequence[int]) -> dict[int, list[VerdictView]]:
@@ -349,10 +359,12 @@ def list_adjudications(
     q = select(Alert).where(Alert.state == AlertState.adjudication).order_by(Alert.received_at, Alert.id)
     if trial_id is not None:
         q = q.where(Alert.trial_id == trial_id)
-    if not is_admin(adjudicator):
+    if not hears_private(adjudicator):
+        q = q.where(Alert.private_flag.is_(False))
+    if not _settles_own(adjudicator):
         # Never her own clips: a reviewer who gave one of the verdicts may not settle them.
         own = select(Verdict.alert_id).where(Verdict.reviewer_id == adjudicator.id)
-        q = q.where(Alert.private_flag.is_(False), Alert.id.not_in(own))
+        q = q.where(Alert.id.not_in(own))
     alerts = list(session.scalars(q.limit(limit)))
     views = _verdict_views(session, [a.id for a in alerts])
     return [
@@ -370,9 +382,9 @@ def get_adjudication(session: Session, *, adjudicator: User, alert_id: int) -> A
         raise NotInReview(
             f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication"
         )
-    if alert.private_flag and not is_admin(adjudicator):
+    if alert.private_flag and not hears_private(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
-    if not is_admin(adjudicator) and session.scalar(
+    if not _settles_own(adjudicator) and session.scalar(
         select(Verdict.id).where(Verdict.alert_id == alert.id, Verdict.reviewer_id == adjudicator.id).limit(1)
     ) is not None:
         raise SameReviewer("You gave one of the verdicts on this clip; another adjudicator must settle it.")
@@ -407,10 +419,10 @@ def adjudicate(
         raise NotInReview(
             f"Alert {alert_id} is not waiting for adjudication.", code="not_awaiting_adjudication"
         )
-    if alert.private_flag and not is_admin(adjudicator):
+    if alert.private_flag and not hears_private(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
     earlier = list(session.scalars(select(Verdict).where(Verdict.alert_id == alert.id)))
-    if not is_admin(adjudicator) and any(v.reviewer_id == adjudicator.id for v in earlier):
+    if not _settles_own(adjudicator) and any(v.reviewer_id == adjudicator.id for v in earlier):
         raise SameReviewer("You gave one of the verdicts on this clip; another adjudicator must settle it.")
     verdict = Verdict(
         alert_id=alert.id,

@@ -5,7 +5,6 @@ from __future__ import annotations
 import datetime as dt
 import re
 import zoneinfo
-
 from typing import Any
 
 from sqlalchemy import event, select
@@ -19,6 +18,7 @@ from server.households.models import AttributeDefinition, Home
 from server.installations.models import Installation
 from server.quota.models import QuotaTarget
 from server.review.models import GoldCheck, Verdict
+from server.roles import allowed
 from server.staged.models import StagedEvent
 from server.trials.models import Trial, TrialMembership
 
@@ -153,7 +153,8 @@ def membership_trial_ids(session: Session, user_id: int) -> set[int]:
 
 def visible_trial_ids(session: Session, user: Any) -> set[int] | None:
     """The ids of the trials ``user`` may see, or None for all of them."""
-    if getattr(user, "role", None) == "admin":
+    role = getattr(user, "role", None)
+    if role is not None and allowed(role, "trials.all"):
         return None
     ids = membership_trial_ids(session, user.id)
     return ids or None

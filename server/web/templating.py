@@ -13,7 +13,7 @@ from fastapi.templating import Jinja2Templates
 from starlette.responses import Response
 
 from server.deps import csrf_token
-from server.roles import CAPABILITIES
+from server.roles import allowed
 
 TEMPLATES_DIR = Path(__file__).resolve().parent.parent.parent / "templates"
 
@@ -82,7 +82,7 @@ def make_templates() -> Jinja2Templates:
     env.filters["ago"] = _ago
     env.filters["num"] = _num
     env.filters["pct"] = _pct
-    env.globals["audit_roles"] = CAPABILITIES["audit.view"]  # admin/_trail.html links for these roles
+    env.globals["allowed"] = allowed  # templates ask the role matrix: allowed(user.role, "audit.view")
     return templates
 
 
@@ -92,7 +92,7 @@ def render(request: Request, name: str, context: dict[str, Any] | None = None, s
     ctx: dict[str, Any] = {
         "user": user,
         "csrf_token": csrf_token(request),
-        "nav": [(label, href) for label, href, cap in NAV if user is not None and user.role in CAPABILITIES[cap]],
+        "nav": [(label, href) for label, href, cap in NAV if user is not None and allowed(user.role, cap)],
         "path": request.url.path,
     }
     ctx.update(context or {})
