@@ -60,8 +60,7 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
     session.flush()
     # Every trial starts with the default household attribute catalogue.
     seed_default_catalogue(session, trial)
-    audit.record(session, actor if not isinstance(actor, str) else actor, "trial.create", "trial",
-                 trial.id, {"code": code})  # type: ignore[arg-type]
+    audit.record(session, actor, "trial.create", "trial", trial.id, {"code": code})  # type: ignore[arg-type]
     return trial
 
 
@@ -188,8 +187,8 @@ def _scope_options(ids: frozenset[int]) -> list[Any]:
         opts.append(with_loader_criteria(model, model.trial_id.in_(keep), include_aliases=True))
     opts.append(with_loader_criteria(Installation, Installation.device_id.in_(
         select(Device.id).where(Device.trial_id.in_(keep))), include_aliases=True))
-    for model in (Verdict, GoldCheck):
-        opts.append(with_loader_criteria(model, model.alert_id.in_(
+    for by_alert in (Verdict, GoldCheck):
+        opts.append(with_loader_criteria(by_alert, by_alert.alert_id.in_(
             select(Alert.id).where(Alert.trial_id.in_(keep))), include_aliases=True))
     return opts
 
