@@ -13,7 +13,6 @@ from collections.abc import Sequence
 from server import migrate, simulate
 from server.admin import cli as admin_cli
 from server.analytics import cli as analytics_cli
-from server.app import create_app
 from server.auth import service as auth_service
 from server.cli_base import CliError, open_db
 from server.db import make_engine, session_scope
@@ -39,6 +38,9 @@ def _print_json(obj: object) -> None:
 
 def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
     import uvicorn
+
+    # Here, not at the top: the whole web app (every router, matplotlib) would load for every command.
+    from server.app import create_app
 
     open_db(settings)
     app = create_app(settings)

@@ -7,7 +7,6 @@ import datetime as dt
 import sys
 from pathlib import Path
 
-from server.app import create_app
 from server.demo import scenario, seed
 
 DEFAULT_DIR = Path("./var/demo")
@@ -89,6 +88,9 @@ def cmd_demo(args: argparse.Namespace, _settings: object) -> int:
 
 def _serve(data_dir: Path, host: str, port: int, log_level: str) -> int:
     import uvicorn
+
+    # Here, not at the top: the whole web app (every router, matplotlib) would load for every command.
+    from server.app import create_app
 
     app = create_app(seed.demo_settings(data_dir))
     print(f"Serving on {f'http://{host}:{port}/'} (Ctrl-C stops; the data stays in {data_dir}).", flush=True)

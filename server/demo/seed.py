@@ -31,7 +31,6 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from server import migrate, sounds
-from server.app import create_app
 from server.auth import service as auth_service
 from server.auth.models import User
 from server.db import make_engine, make_session_factory, session_scope
@@ -377,6 +376,9 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
                     clip_workers: int) -> tuple[dict[str, int], int]:
     """Every heartbeat and alert of the plan, in server-time order, over HTTP to the real app."""
     from fastapi.testclient import TestClient
+
+    # Here, not at the top: the whole web app (every router, matplotlib) would load for every command.
+    from server.app import create_app
 
     offsets = {d.serial: dt.timedelta(seconds=d.clock_offset_s) for d in plan.devices}
     events: list[tuple[dt.datetime, int, str, int]] = []

@@ -8,7 +8,7 @@ import json
 from server.cli_base import open_db
 from server.db import session_scope
 from server.quota import service as quota_service
-from server.quota.api import quota_out
+from server.quota.schemas import quota_out
 from server.settings import Settings
 from server.trials import service as trials_service
 
