@@ -201,7 +201,7 @@ def reset_password(session: Session, *, actor: User | str, user_id: int) -> tupl
     return user, password
 
 
-def set_trials(session: Session, *, actor: object, user_id: int, trial_codes: list[str]) -> list[str]:
+def set_trials(session: Session, *, actor: User | str, user_id: int, trial_codes: list[str]) -> list[str]:
     """Limit an account to these trials (none: every trial). Admins see every trial whatever is set."""
     account = get_user(session, user_id)
     return trials_service.set_memberships(session, account, trial_codes, actor=actor)

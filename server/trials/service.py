@@ -11,6 +11,7 @@ from sqlalchemy import event, select
 from sqlalchemy.orm import ORMExecuteState, Session, with_loader_criteria
 
 from server import audit
+from server.auth.models import User
 from server.devices.models import Alert, Device
 from server.errors import Conflict, NotFound, ValidationFailed
 from server.households.catalogue import seed_default_catalogue
@@ -26,18 +27,28 @@ _CODE = re.compile(r"^[A-Z0-9][A-Z0-9_-]{1,39}$")
 _CLASS = re.compile(r"^[a-z][a-z0-9_]{1,63}$")
 
 
-def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
-                 sound_classes: list[str], ends_on: dt.date | None = None,
-                 fa_target_per_home_month: float = 1.0, timezone: str = "UTC",
-                 disturbance_window_s: float = 60.0, actor: object = "cli") -> Trial:
+def create_trial(
+    session: Session,
+    *,
+    code: str,
+    name: str,
+    starts_on: dt.date,
+    sound_classes: list[str],
+    ends_on: dt.date | None = None,
+    fa_target_per_home_month: float = 1.0,
+    timezone: str = "UTC",
+    disturbance_window_s: float = 60.0,
+    actor: User | str = "cli",
+) -> Trial:
     code = code.strip().upper()
     errors: dict[str, str] = {}
     if not _CODE.match(code):
         errors["code"] = f"Trial code '{code}' must be 2-40 capital letters, digits, '-' or '_'."
     bad = [c for c in sound_classes if not _CLASS.match(c)]
     if not sound_classes or bad:
-        errors["sound_classes"] = ("Give at least one sound class in snake_case"
-                                   + (f"; not valid: {', '.join(bad)}." if bad else "."))
+        errors["sound_classes"] = "Give at least one sound class in snake_case" + (
+            f"; not valid: {', '.join(bad)}." if bad else "."
+        )
     if ends_on is not None and ends_on < starts_on:
         errors["ends_on"] = "The trial cannot end before it starts."
     if not (fa_target_per_home_month > 0):
@@ -52,20 +63,32 @@ def create_trial(session: Session, *, code: str, name: str, starts_on: dt.date,
         raise ValidationFailed(next(iter(errors.values())), errors)
     if find_trial(session, code) is not None:
         raise Conflict(f"A trial with code {code} already exists.", code="trial_exists")
-    trial = Trial(code=code, name=name or code, starts_on=starts_on, ends_on=ends_on,
-                  sound_classes=list(dict.fromkeys(sound_classes)),
-                  fa_target_per_home_month=fa_target_per_home_month, timezone=timezone,
-                  disturbance_window_s=float(disturbance_window_s))
+    trial = Trial(
+        code=code,
+        name=name or code,
+        starts_on=starts_on,
+        ends_on=ends_on,
+        sound_classes=list(dict.fromkeys(sound_classes)),
+        fa_target_per_home_month=fa_target_per_home_month,
+        timezone=timezone,
+        disturbance_window_s=float(disturbance_window_s),
+    )
     session.add(trial)
     session.flush()
     # Every trial starts with the default household attribute catalogue.
     seed_default_catalogue(session, trial)
-    audit.record(session, actor, "trial.create", "trial", trial.id, {"code": code})  # type: ignore[arg-type]
+    audit.record(session, actor, "trial.create", "trial", trial.id, {"code": code})
     return trial
 
 
-def set_trial_settings(session: Session, trial: Trial, *, fa_target_per_home_month: float | None = None,
-                       disturbance_window_s: float | None = None, actor: object = "cli") -> dict[str, Any]:
+def set_trial_settings(
+    session: Session,
+    trial: Trial,
+    *,
+    fa_target_per_home_month: float | None = None,
+    disturbance_window_s: float | None = None,
+    actor: User | str = "cli",
+) -> dict[str, Any]:
     """Change a running trial's false-alarm target or disturbance window (audited, old and new).
 
     Both change what the summary reports for every week, past ones too: the summary is computed
@@ -79,14 +102,17 @@ def set_trial_settings(session: Session, trial: Trial, *, fa_target_per_home_mon
         raise ValidationFailed(next(iter(errors.values())), errors)
     changes: dict[str, Any] = {}
     if fa_target_per_home_month is not None and fa_target_per_home_month != trial.fa_target_per_home_month:
-        changes["fa_target_per_home_month"] = [trial.fa_target_per_home_month, float(fa_target_per_home_month)]
+        changes["fa_target_per_home_month"] = [
+            trial.fa_target_per_home_month,
+            float(fa_target_per_home_month),
+        ]
         trial.fa_target_per_home_month = float(fa_target_per_home_month)
     if disturbance_window_s is not None and disturbance_window_s != trial.disturbance_window_s:
         changes["disturbance_window_s"] = [trial.disturbance_window_s, float(disturbance_window_s)]
         trial.disturbance_window_s = float(disturbance_window_s)
     if changes:
         session.flush()
-        audit.record(session, actor, "trial.settings", "trial", trial.id, changes)  # type: ignore[arg-type]
+        audit.record(session, actor, "trial.settings", "trial", trial.id, changes)
     return changes
 
 
@@ -159,8 +185,9 @@ def visible_trial_ids(session: Session, user: Any) -> set[int] | None:
     return ids or None
 
 
-def check_trial_access(session: Session, user: Any, trial_id: int, *, what: str = "trial",
-                       code: str = "unknown_trial") -> None:
+def check_trial_access(
+    session: Session, user: Any, trial_id: int, *, what: str = "trial", code: str = "unknown_trial"
+) -> None:
     """404 (never 403: another trial's objects are not revealed) unless ``user`` sees the trial."""
     if not _sees(visible_trial_ids(session, user), trial_id):
         raise NotFound(f"No such {what}.", code=code)
@@ -185,11 +212,21 @@ def _scope_options(ids: frozenset[int]) -> list[Any]:
     opts: list[Any] = [with_loader_criteria(Trial, Trial.id.in_(keep), include_aliases=True)]
     for model in (Home, Device, Alert, StagedEvent, AttributeDefinition, QuotaTarget):
         opts.append(with_loader_criteria(model, model.trial_id.in_(keep), include_aliases=True))
-    opts.append(with_loader_criteria(Installation, Installation.device_id.in_(
-        select(Device.id).where(Device.trial_id.in_(keep))), include_aliases=True))
+    opts.append(
+        with_loader_criteria(
+            Installation,
+            Installation.device_id.in_(select(Device.id).where(Device.trial_id.in_(keep))),
+            include_aliases=True,
+        )
+    )
     for by_alert in (Verdict, GoldCheck):
-        opts.append(with_loader_criteria(by_alert, by_alert.alert_id.in_(
-            select(Alert.id).where(Alert.trial_id.in_(keep))), include_aliases=True))
+        opts.append(
+            with_loader_criteria(
+                by_alert,
+                by_alert.alert_id.in_(select(Alert.id).where(Alert.trial_id.in_(keep))),
+                include_aliases=True,
+            )
+        )
     return opts
 
 
@@ -202,7 +239,7 @@ def _apply_trial_scope(state: ORMExecuteState) -> None:
         state.statement = state.statement.options(*_scope_options(ids))
 
 
-def set_memberships(session: Session, user: Any, trial_codes: list[str], *, actor: object) -> list[str]:
+def set_memberships(session: Session, user: Any, trial_codes: list[str], *, actor: User | str) -> list[str]:
     """Limit ``user`` to these trials (an empty list: every trial again). Audited; ends nothing else.
 
     Returns the codes now held, sorted. Unknown codes fail with ``unknown_trial`` and change nothing.
@@ -223,8 +260,14 @@ def set_memberships(session: Session, user: Any, trial_codes: list[str], *, acto
     codes = sorted(wanted.values())
     if set(wanted) != before:
         old = sorted(session.scalars(select(Trial.code).where(Trial.id.in_(before)))) if before else []
-        audit.record(session, actor, "user.trials", "user", user.id,  # type: ignore[arg-type]
-                     {"email": user.email, "before": old, "after": codes})
+        audit.record(
+            session,
+            actor,
+            "user.trials",
+            "user",
+            user.id,
+            {"email": user.email, "before": old, "after": codes},
+        )
     return codes
 
 
@@ -235,6 +278,7 @@ def ensure_default_trial(session: Session, code: str, sound_classes: list[str]) 
         first = session.scalar(select(Trial).order_by(Trial.id))
         if first is not None:
             return first
-        trial = create_trial(session, code=code, name="Default pilot", starts_on=dt.date.today(),
-                             sound_classes=sound_classes)
+        trial = create_trial(
+            session, code=code, name="Default pilot", starts_on=dt.date.today(), sound_classes=sound_classes
+        )
     return trial
