@@ -42,7 +42,8 @@ def closure(root: str, extras: tuple[str, ...]) -> dict[str, str]:
 
 def main() -> None:
     print("# The versions CI tested (Python 3.11), the whole dependency closure of '.[test,dev]'.")
-    print("# Install with: pip install -c constraints.txt -e '.[test,dev]'. Regenerate: DEVELOPERS.md, 'Dependencies'.")
+    print("# Install with: pip install -c constraints.txt -e '.[test,dev]'.")
+    print("# Regenerate: DEVELOPERS.md, 'Gates and dependencies'.")
     for name, version in sorted(closure("trialhouse", ("test", "dev")).items()):
         print(f"{name}=={version}")
 

@@ -49,8 +49,12 @@ def _run(connection) -> None:  # type: ignore[no-untyped-def]
 
 
 if context.is_offline_mode():
-    context.configure(url=Settings().resolved_database_url(), target_metadata=metadata,
-                      literal_binds=True, render_as_batch=True)
+    context.configure(
+        url=Settings().resolved_database_url(),
+        target_metadata=metadata,
+        literal_binds=True,
+        render_as_batch=True,
+    )
     with context.begin_transaction():
         context.run_migrations()
 else:

@@ -76,8 +76,9 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
         if check_schema:
             migrate.check_schema(engine)
         app.state.schema_revision = migrate.current_revision(engine)
-        app.state.background = ThreadPoolExecutor(max_workers=1, thread_name_prefix="trialhouse-bg",
-                                                  initializer=_lower_priority)
+        app.state.background = ThreadPoolExecutor(
+            max_workers=1, thread_name_prefix="trialhouse-bg", initializer=_lower_priority
+        )
         # Device writes run a few at a time: dozens of threads taking turns at the interpreter lock
         # get less done than a handful working while the rest queue (see devices/api.py).
         app.state.device_work_limiter = anyio.CapacityLimiter(settings.device_work_slots)
@@ -91,8 +92,14 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
             app.state.background.shutdown(wait=True, cancel_futures=True)
             engine.dispose()
 
-    app = FastAPI(title="Trialhouse", version="1", description=DESCRIPTION, lifespan=lifespan,
-                  docs_url="/docs", redoc_url=None)
+    app = FastAPI(
+        title="Trialhouse",
+        version="1",
+        description=DESCRIPTION,
+        lifespan=lifespan,
+        docs_url="/docs",
+        redoc_url=None,
+    )
     app.state.settings = settings
     app.state.engine = engine
     app.state.session_factory = make_session_factory(engine)
@@ -113,25 +120,55 @@ def create_app(settings: Settings | None = None, *, check_schema: bool = True) -
     # Staff sessions live in the database (auth/sessions.py); their cookie holds only the id. This
     # signed cookie carries page state that is no credential: the sign-in form's token, flash
     # messages, desk filters. resolved_secret_key() refuses a placeholder or short key.
-    app.add_middleware(SessionMiddleware, secret_key=settings.resolved_secret_key(),
-                       session_cookie=auth_web.UI_COOKIE_NAME, max_age=settings.session_max_age_s,
-                       same_site="lax", https_only=settings.secure_cookies)
+    app.add_middleware(
+        SessionMiddleware,
+        secret_key=settings.resolved_secret_key(),
+        session_cookie=auth_web.UI_COOKIE_NAME,
+        max_age=settings.session_max_age_s,
+        same_site="lax",
+        https_only=settings.secure_cookies,
+    )
     app.add_middleware(auth_web.StaleSessionCookie, settings=settings)
 
     # Outermost: turns away credential-less staff calls and oversized bodies before anything reads them.
     import_limit = MAX_IMPORT_BYTES + 256 * 1024  # the file plus its multipart framing
-    app.add_middleware(RequestGuard, routes_of=app, max_body_bytes=settings.max_body_bytes,
-                       body_limits={("POST", "/api/v1/alerts"): None,  # caps its clip while streaming
-                                    ("POST", "/api/v1/homes/import"): import_limit,
-                                    ("POST", "/homes/import"): import_limit},
-                       session_cookie="trialhouse_session", template_dir=TEMPLATES_DIR)
+    app.add_middleware(
+        RequestGuard,
+        routes_of=app,
+        max_body_bytes=settings.max_body_bytes,
+        body_limits={
+            ("POST", "/api/v1/alerts"): None,  # caps its clip while streaming
+            ("POST", "/api/v1/homes/import"): import_limit,
+            ("POST", "/homes/import"): import_limit,
+        },
+        session_cookie="trialhouse_session",
+        template_dir=TEMPLATES_DIR,
+    )
 
     app.include_router(health.router)
     # The register's list pages (/homes/new, /homes/import, ...) come before /homes/{code}.
-    for module in (auth_pages, auth_api, web_pages, devices_api, devices_pages, households_api,
-                   households_pages, households_home_pages, households_installation_api,
-                   households_installation_pages, staged_api, staged_pages, quota_api, quota_pages,
-                   review_api, review_pages, analytics_api, analytics_pages, admin_api, admin_pages):
+    for module in (
+        auth_pages,
+        auth_api,
+        web_pages,
+        devices_api,
+        devices_pages,
+        households_api,
+        households_pages,
+        households_home_pages,
+        households_installation_api,
+        households_installation_pages,
+        staged_api,
+        staged_pages,
+        quota_api,
+        quota_pages,
+        review_api,
+        review_pages,
+        analytics_api,
+        analytics_pages,
+        admin_api,
+        admin_pages,
+    ):
         app.include_router(module.router)
     document_error_responses(app)
     return app

@@ -1,4 +1,5 @@
-"""The `trialhouse` command line: serve, db, user, trial, device, alert, storage, simulate, and domain commands."""
+"""The `trialhouse` command line: serve, db, user, trial, device, alert, storage, simulate, and the
+domain commands."""
 
 from __future__ import annotations
 
@@ -36,6 +37,7 @@ def _print_json(obj: object) -> None:
 
 # --- commands -------------------------------------------------------------------------------
 
+
 def cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
     import uvicorn
 
@@ -65,8 +67,14 @@ def cmd_user_add(args: argparse.Namespace, settings: Settings) -> int:
         password = sys.stdin.readline().rstrip("\r\n")
     factory = open_db(settings)
     with session_scope(factory) as s:
-        user = auth_service.create_user(s, email=args.email, name=args.name or "", role=args.role,
-                                        password=password, is_adjudicator=args.adjudicator)
+        user = auth_service.create_user(
+            s,
+            email=args.email,
+            name=args.name or "",
+            role=args.role,
+            password=password,
+            is_adjudicator=args.adjudicator,
+        )
         print(f"user {user.email} added with role {user.role}")
     return 0
 
@@ -80,10 +88,16 @@ def cmd_trial_add(args: argparse.Namespace, settings: Settings) -> int:
         except ValueError as exc:
             raise CliError(f"Dates are YYYY-MM-DD: {exc}") from exc
         trial = trials_service.create_trial(
-            s, code=args.code, name=args.name or args.code, starts_on=starts, ends_on=ends,
+            s,
+            code=args.code,
+            name=args.name or args.code,
+            starts_on=starts,
+            ends_on=ends,
             sound_classes=[c.strip() for c in args.sound_classes.split(",") if c.strip()],
-            fa_target_per_home_month=args.target, timezone=args.timezone,
-            disturbance_window_s=args.disturbance_window)
+            fa_target_per_home_month=args.target,
+            timezone=args.timezone,
+            disturbance_window_s=args.disturbance_window,
+        )
         print(f"trial {trial.code} added: {', '.join(trial.sound_classes)}")
     return 0
 
@@ -94,7 +108,8 @@ def cmd_trial_set(args: argparse.Namespace, settings: Settings) -> int:
     with session_scope(open_db(settings)) as s:
         trial = trials_service.get_trial(s, args.code)
         changes = trials_service.set_trial_settings(
-            s, trial, fa_target_per_home_month=args.target, disturbance_window_s=args.disturbance_window)
+            s, trial, fa_target_per_home_month=args.target, disturbance_window_s=args.disturbance_window
+        )
         if not changes:
             print(f"trial {trial.code}: nothing changed")
         for name, (old, new) in changes.items():
@@ -111,14 +126,25 @@ def cmd_trial_list(args: argparse.Namespace, settings: Settings) -> int:
 
 def cmd_device_add(args: argparse.Namespace, settings: Settings) -> int:
     with session_scope(open_db(settings)) as s:
-        trial = (trials_service.get_trial(s, args.trial) if args.trial
-                 else trials_service.ensure_default_trial(s, settings.default_trial_code,
-                                                          settings.default_sound_classes))
-        device, token = devices_service.register_device(s, serial=args.serial, trial=trial,
-                                                        hardware_model=args.hardware_model)
+        trial = (
+            trials_service.get_trial(s, args.trial)
+            if args.trial
+            else trials_service.ensure_default_trial(
+                s, settings.default_trial_code, settings.default_sound_classes
+            )
+        )
+        device, token = devices_service.register_device(
+            s, serial=args.serial, trial=trial, hardware_model=args.hardware_model
+        )
         if args.json:
-            _print_json({"serial": device.serial, "token": token, "trial": trial.code,
-                         "hardware_model": device.hardware_model})
+            _print_json(
+                {
+                    "serial": device.serial,
+                    "token": token,
+                    "trial": trial.code,
+                    "hardware_model": device.hardware_model,
+                }
+            )
         else:
             print(f"device {device.serial} registered in trial {trial.code}")
             print(f"token (shown once; store it on the device): {token}")
@@ -132,8 +158,10 @@ def cmd_device_list(args: argparse.Namespace, settings: Settings) -> int:
             _print_json([r.model_dump(mode="json") for r in rows])
         else:
             for r in rows:
-                print(f"{r.serial}\t{r.trial}\t{r.home or '-'}\t{r.last_seen_at or 'never'}"
-                      f"\t{'revoked' if r.revoked else 'enrolled'}")
+                print(
+                    f"{r.serial}\t{r.trial}\t{r.home or '-'}\t{r.last_seen_at or 'never'}"
+                    f"\t{'revoked' if r.revoked else 'enrolled'}"
+                )
     return 0
 
 
@@ -151,8 +179,10 @@ def cmd_alert_list(args: argparse.Namespace, settings: Settings) -> int:
             _print_json([r.model_dump(mode="json") for r in rows])
         else:
             for r in rows:
-                print(f"{r.id}\t{r.device}\t{r.home or 'unassigned'}\t{r.sound_class}\t{r.score:.2f}"
-                      f"\t{r.detected_at.isoformat()}\t{r.clip_sha256}")
+                print(
+                    f"{r.id}\t{r.device}\t{r.home or 'unassigned'}\t{r.sound_class}\t{r.score:.2f}"
+                    f"\t{r.detected_at.isoformat()}\t{r.clip_sha256}"
+                )
     return 0
 
 
@@ -167,6 +197,7 @@ def cmd_simulate(args: argparse.Namespace, settings: Settings) -> int:
 
 # --- parser ---------------------------------------------------------------------------------
 
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="trialhouse", description="Run an in-home acoustic detector pilot.")
     p.add_argument("-v", "--verbose", action="store_true")
@@ -179,7 +210,9 @@ def build_parser() -> argparse.ArgumentParser:
     sp.set_defaults(func=cmd_serve)
 
     db = sub.add_parser("db", help="database schema").add_subparsers(dest="db_cmd", required=True)
-    db.add_parser("upgrade", help="migrate the database to the current schema").set_defaults(func=cmd_db_upgrade)
+    db.add_parser("upgrade", help="migrate the database to the current schema").set_defaults(
+        func=cmd_db_upgrade
+    )
 
     user = sub.add_parser("user", help="staff accounts").add_subparsers(dest="user_cmd", required=True)
     ua = user.add_parser("add", help="add a staff account (password read from standard input)")
@@ -199,14 +232,23 @@ def build_parser() -> argparse.ArgumentParser:
     ta.add_argument("--ends-on")
     ta.add_argument("--target", type=float, default=1.0, help="false alarms per home-month (default 1.0)")
     ta.add_argument("--timezone", default="UTC")
-    ta.add_argument("--disturbance-window", type=float, default=60.0, metavar="SECONDS",
-                    help="alerts of one sound from one home this close together are one disturbance (default 60)")
+    ta.add_argument(
+        "--disturbance-window",
+        type=float,
+        default=60.0,
+        metavar="SECONDS",
+        help="alerts of one sound from one home this close together are one disturbance (default 60)",
+    )
     ta.set_defaults(func=cmd_trial_add)
     tset = trial.add_parser("set", help="change a trial's target or disturbance window (audited)")
     tset.add_argument("code")
     tset.add_argument("--target", type=float, help="false alarms per home-month")
-    tset.add_argument("--disturbance-window", type=float, metavar="SECONDS",
-                      help="alerts of one sound from one home this close together are one disturbance")
+    tset.add_argument(
+        "--disturbance-window",
+        type=float,
+        metavar="SECONDS",
+        help="alerts of one sound from one home this close together are one disturbance",
+    )
     tset.set_defaults(func=cmd_trial_set)
     trial.add_parser("list", help="list trials").set_defaults(func=cmd_trial_list)
 
@@ -232,10 +274,15 @@ def build_parser() -> argparse.ArgumentParser:
 
     st = sub.add_parser("storage", help="the clip store")
     st_sub = st.add_subparsers(dest="storage_cmd", required=True)
-    sc = st_sub.add_parser("check", help="list orphan files, rows whose file is missing, and upload spools "
-                           "left by a crash (exit 1 if any)")
+    sc = st_sub.add_parser(
+        "check",
+        help="list orphan files, rows whose file is missing, and upload spools "
+        "left by a crash (exit 1 if any)",
+    )
     sc.add_argument("--json", action="store_true")
-    sc.add_argument("--repair", action="store_true", help="list, then remove orphan files and stale upload spools")
+    sc.add_argument(
+        "--repair", action="store_true", help="list, then remove orphan files and stale upload spools"
+    )
     sc.set_defaults(func=cmd_storage_check)
 
     simulate.add_arguments(sub.add_parser("simulate", help="act as a device over the HTTP API"))
@@ -249,8 +296,9 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
-    logging.basicConfig(level=logging.DEBUG if args.verbose else logging.WARNING,
-                        format="%(levelname)s %(name)s: %(message)s")
+    logging.basicConfig(
+        level=logging.DEBUG if args.verbose else logging.WARNING, format="%(levelname)s %(name)s: %(message)s"
+    )
     settings = Settings()
     try:
         return int(args.func(args, settings) or 0)

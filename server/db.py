@@ -118,15 +118,18 @@ def make_engine(url: str, **kw: Any) -> Engine:
     if url.startswith("sqlite"):
         engine = create_engine(
             url,
-            connect_args={"timeout": SQLITE_BUSY_TIMEOUT_S, "check_same_thread": False,
-                          "factory": _SQLiteConnection},
+            connect_args={
+                "timeout": SQLITE_BUSY_TIMEOUT_S,
+                "check_same_thread": False,
+                "factory": _SQLiteConnection,
+            },
             **kw,
         )
         _configure_sqlite(engine)
         _private_file(engine.url.database)
         return engine
     if url.startswith("postgresql://"):
-        url = "postgresql+psycopg://" + url[len("postgresql://"):]
+        url = "postgresql+psycopg://" + url[len("postgresql://") :]
     return create_engine(url, pool_pre_ping=True, pool_size=10, max_overflow=40, **kw)
 
 

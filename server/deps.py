@@ -75,8 +75,9 @@ def auth_now(request: Request) -> dt.datetime:
 
 
 def session_limits(settings: Settings) -> sessions.Limits:
-    return sessions.Limits(idle_s=settings.session_idle_s, max_age_s=settings.session_max_age_s,
-                           touch_s=settings.session_touch_s)
+    return sessions.Limits(
+        idle_s=settings.session_idle_s, max_age_s=settings.session_max_age_s, touch_s=settings.session_touch_s
+    )
 
 
 def csrf_token(request: Request) -> str:
@@ -139,12 +140,16 @@ def _load_staff(request: Request, session: Session) -> User | None:
         if row is None or row.revoked or not row.user.active:
             raise InvalidToken("The personal API token is not recognised or was revoked.")
         if row.expires_at <= now:
-            raise TokenExpired(f"The personal API token expired on {row.expires_at:%Y-%m-%d %H:%M} UTC; "
-                               "create a new one on your account page.")
+            raise TokenExpired(
+                f"The personal API token expired on {row.expires_at:%Y-%m-%d %H:%M} UTC; "
+                "create a new one on your account page."
+            )
         if row.last_used_at is None or (now - row.last_used_at).total_seconds() >= settings.session_touch_s:
+
             def write() -> None:
                 row.last_used_at = now
                 session.flush()
+
             _record_use(session, write)
         request.state.via_token = True
         request.state.web_session = None
@@ -186,11 +191,14 @@ def require(capability: str) -> Callable[..., User]:
         row = request.state.web_session
         if row is not None and request.method not in SAFE_METHODS:
             if not sent or not hmac.compare_digest(row.csrf_token, sent):
-                raise CsrfFailed("The form's security token is missing or stale; reload the page and try again.")
+                raise CsrfFailed(
+                    "The form's security token is missing or stale; reload the page and try again."
+                )
         request.state.user = user
         if user.must_change_password and capability != "staff.self":
             raise PasswordChangeRequired(
-                "An administrator set your password: choose your own on your account page (/account) first.")
+                "An administrator set your password: choose your own on your account page (/account) first."
+            )
         if not allowed(user.role, capability):
             raise Forbidden(f"Your role ({user.role}) does not allow this.")
         trials_service.limit_session_to_user(session, user)  # trial membership, every later query

@@ -27,8 +27,15 @@ class AppError(Exception):
     code = "app_error"
     status = 400
 
-    def __init__(self, message: str, *, code: str | None = None, status: int | None = None,
-                 field: str | None = None, headers: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        message: str,
+        *,
+        code: str | None = None,
+        status: int | None = None,
+        field: str | None = None,
+        headers: dict[str, str] | None = None,
+    ) -> None:
         super().__init__(message)
         self.message = message
         if code is not None:
@@ -174,20 +181,24 @@ def storage_fault(exc: BaseException) -> StorageFault | None:
         if primary == _SQLITE_FULL:
             return StorageFault("storage_full", "The database's disk is full; nothing was stored.")
         if primary == _SQLITE_READONLY:
-            return StorageFault("database_read_only",
-                                "The database accepts no writes just now; nothing was stored.")
+            return StorageFault(
+                "database_read_only", "The database accepts no writes just now; nothing was stored."
+            )
         if primary in (_SQLITE_BUSY, _SQLITE_LOCKED):
             return StorageFault("database_busy", "The database is busy; nothing was stored. Try again.")
         if primary == _SQLITE_IOERR:
-            return StorageFault("storage_full" if "full" in text else "database_unavailable",
-                                "The database could not write to its disk; nothing was stored.")
+            return StorageFault(
+                "storage_full" if "full" in text else "database_unavailable",
+                "The database could not write to its disk; nothing was stored.",
+            )
         return None
     if sqlstate is not None:
         if sqlstate in _PG_DISK_FULL:
             return StorageFault("storage_full", "The database's disk is full; nothing was stored.")
         if sqlstate in _PG_READ_ONLY:
-            return StorageFault("database_read_only",
-                                "The database accepts no writes just now; nothing was stored.")
+            return StorageFault(
+                "database_read_only", "The database accepts no writes just now; nothing was stored."
+            )
         if sqlstate.startswith("08") or sqlstate in ("57P01", "57P02", "57P03"):
             return StorageFault("database_unavailable", "The database cannot be reached just now.")
         return None
@@ -195,8 +206,9 @@ def storage_fault(exc: BaseException) -> StorageFault | None:
         if orig.errno in (errno.ENOSPC, errno.EDQUOT):
             return StorageFault("storage_full", "The disk is full; nothing was stored.")
         if orig.errno in (errno.EROFS, errno.EACCES, errno.EPERM, errno.EIO):
-            return StorageFault("clip_store_unavailable",
-                                "The clip store cannot be written just now; nothing was stored.")
+            return StorageFault(
+                "clip_store_unavailable", "The clip store cannot be written just now; nothing was stored."
+            )
     return None
 
 
@@ -248,17 +260,25 @@ def _wants_html(request: Request) -> bool:
     return "text/html" in request.headers.get("accept", "") or request.method == "GET"
 
 
-def render_error(request: Request, status: int, code: str, message: str,
-                 headers: dict[str, str] | None = None, **extra: Any) -> Response:
+def render_error(
+    request: Request,
+    status: int,
+    code: str,
+    message: str,
+    headers: dict[str, str] | None = None,
+    **extra: Any,
+) -> Response:
     message = _printable(message)
     if _wants_html(request):
         templates = getattr(request.app.state, "templates", None)
         if templates is not None:
             try:
                 return templates.TemplateResponse(
-                    request, "error.html",
+                    request,
+                    "error.html",
                     {"status": status, "code": code, "message": message},
-                    status_code=status, headers=headers,
+                    status_code=status,
+                    headers=headers,
                 )
             except Exception:  # pragma: no cover - the plain body below still answers
                 log.exception("error page failed to render")
@@ -267,9 +287,16 @@ def render_error(request: Request, status: int, code: str, message: str,
 
 
 _HTTP_CODES = {
-    400: "bad_request", 401: "not_signed_in", 403: "forbidden", 404: "not_found",
-    405: "method_not_allowed", 406: "not_acceptable", 413: "request_too_large",
-    415: "unsupported_media_type", 416: "range_not_satisfiable", 422: "invalid_request",
+    400: "bad_request",
+    401: "not_signed_in",
+    403: "forbidden",
+    404: "not_found",
+    405: "method_not_allowed",
+    406: "not_acceptable",
+    413: "request_too_large",
+    415: "unsupported_media_type",
+    416: "range_not_satisfiable",
+    422: "invalid_request",
     429: "too_many_requests",
 }
 
@@ -285,6 +312,7 @@ def app_error_response(request: Request, exc: AppError) -> Response:
         from urllib.parse import quote
 
         from fastapi.responses import RedirectResponse
+
         return RedirectResponse(f"/login?next={quote(request.url.path)}", status_code=303)
     return render_error(request, exc.status, exc.code, exc.message, exc.headers or None, **extra)
 
@@ -305,8 +333,13 @@ def install_handlers(app: FastAPI) -> None:
         if known is None:
             return await _unexpected(request, exc)
         if isinstance(known, StorageFault):
-            log.warning("storage fault on %s %s: %s (%s)", request.method, request.url.path, known.code,
-                        type(getattr(exc, "orig", None) or exc).__name__)
+            log.warning(
+                "storage fault on %s %s: %s (%s)",
+                request.method,
+                request.url.path,
+                known.code,
+                type(getattr(exc, "orig", None) or exc).__name__,
+            )
         return app_error_response(request, known)
 
     for kind in (DBAPIError, StatementError, OSError, OverflowError, UnicodeError, RecursionError):
@@ -336,11 +369,14 @@ def install_handlers(app: FastAPI) -> None:
         # The client hung up mid-body (a device losing its link mid-upload): nothing was stored and
         # nobody reads the answer, so this is not a server error.
         log.info("client disconnected during %s %s", request.method, request.url.path)
-        return render_error(request, 400, "client_disconnected", "The request body ended early: the client went away.")
+        return render_error(
+            request, 400, "client_disconnected", "The request body ended early: the client went away."
+        )
 
     async def _unexpected(request: Request, exc: Exception) -> Response:
         log.error("unhandled error on %s %s", request.method, request.url.path, exc_info=exc)
-        return render_error(request, 500, "internal_error",
-                            "Something went wrong on the server; the error was logged.")
+        return render_error(
+            request, 500, "internal_error", "Something went wrong on the server; the error was logged."
+        )
 
     app.add_exception_handler(Exception, _unexpected)

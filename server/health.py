@@ -20,7 +20,7 @@ MIB = 1024 * 1024
 
 
 def database_check(engine: Engine) -> str:
-    """"ok", or why the database cannot store anything.
+    """ "ok", or why the database cannot store anything.
 
     A cheap write probe: a no-op UPDATE of Alembic's version row, rolled back. A read (SELECT 1)
     passes on a read-only or full database; a write attempt does not. The probe never waits for
@@ -78,8 +78,12 @@ def free_space_check(path: Path, min_free_bytes: int) -> str:
     return "ok"
 
 
-@router.get("/api/v1/health", tags=["device"], summary="Can the server store heartbeats and clips now?",
-            responses={503: {"description": "A check failed (`unhealthy`); the body names each check"}})
+@router.get(
+    "/api/v1/health",
+    tags=["device"],
+    summary="Can the server store heartbeats and clips now?",
+    responses={503: {"description": "A check failed (`unhealthy`); the body names each check"}},
+)
 def health(request: Request) -> JSONResponse:
     state = request.app.state
     settings = state.settings
@@ -92,6 +96,5 @@ def health(request: Request) -> JSONResponse:
     if failing:
         body = error_body("unhealthy", f"Unusable: {', '.join(failing)}.", checks=checks)
         body.update({"status": "unhealthy", "checks": checks})
-        return JSONResponse(body, status_code=503,
-                            headers={"Retry-After": str(StorageFault.RETRY_AFTER_S)})
+        return JSONResponse(body, status_code=503, headers={"Retry-After": str(StorageFault.RETRY_AFTER_S)})
     return JSONResponse({"status": "ok", "checks": checks, "schema": state.schema_revision})

@@ -52,7 +52,9 @@ def run(engine: Engine, step: Callable[[Config, str], None], target: str) -> Non
                 if sqlite:
                     broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
                     if broken:
-                        raise RuntimeError(f"the migration left {len(broken)} broken reference(s): {broken[:5]}")
+                        raise RuntimeError(
+                            f"the migration left {len(broken)} broken reference(s): {broken[:5]}"
+                        )
         finally:
             if raw is not None:
                 raw.execute("PRAGMA foreign_keys=ON")
@@ -74,4 +76,5 @@ def check_schema(engine: Engine) -> None:
         state = "has no Trialhouse schema" if current is None else f"is at schema revision {current}"
         raise SchemaOutOfDate(
             f"The database {state}; this version needs revision {head}. "
-            "Run `trialhouse db upgrade` (with the same TRIALHOUSE_DATABASE_URL) and start again.")
+            "Run `trialhouse db upgrade` (with the same TRIALHOUSE_DATABASE_URL) and start again."
+        )

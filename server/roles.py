@@ -10,27 +10,27 @@ ROLES = (ADMIN, COORDINATOR, REVIEWER, LEAD)
 ALL = frozenset(ROLES)
 
 CAPABILITIES: dict[str, frozenset[str]] = {
-    "staff.self": ALL,                                           # own account, personal API tokens
-    "trials.all": frozenset({ADMIN}),                            # every trial, whatever the memberships
+    "staff.self": ALL,  # own account, personal API tokens
+    "trials.all": frozenset({ADMIN}),  # every trial, whatever the memberships
     "devices.view": frozenset({ADMIN, COORDINATOR, LEAD}),
-    "devices.manage": frozenset({ADMIN, COORDINATOR}),           # register, revoke
-    "alerts.view": frozenset({ADMIN, COORDINATOR, LEAD}),           # reviewers work from the desk, blind
-    "clips.listen": frozenset({ADMIN, COORDINATOR, REVIEWER}),   # audio and its images
-    "clips.private": frozenset({ADMIN}),                         # clips flagged as private content
-    "homes.view": frozenset({ADMIN, COORDINATOR, LEAD}),         # codes and attributes only
+    "devices.manage": frozenset({ADMIN, COORDINATOR}),  # register, revoke
+    "alerts.view": frozenset({ADMIN, COORDINATOR, LEAD}),  # reviewers work from the desk, blind
+    "clips.listen": frozenset({ADMIN, COORDINATOR, REVIEWER}),  # audio and its images
+    "clips.private": frozenset({ADMIN}),  # clips flagged as private content
+    "homes.view": frozenset({ADMIN, COORDINATOR, LEAD}),  # codes and attributes only
     "homes.manage": frozenset({ADMIN, COORDINATOR}),
-    "personal.view": frozenset({ADMIN, COORDINATOR}),            # contact data; audited
-    "personal.manage": frozenset({ADMIN, COORDINATOR}),          # edit contact data; audited
+    "personal.view": frozenset({ADMIN, COORDINATOR}),  # contact data; audited
+    "personal.manage": frozenset({ADMIN, COORDINATOR}),  # edit contact data; audited
     "homes.erase": frozenset({ADMIN, COORDINATOR}),
     "quota.view": frozenset({ADMIN, COORDINATOR, LEAD}),
-    "quota.manage": frozenset({ADMIN, COORDINATOR}),             # targets, counting states
-    "attributes.manage": frozenset({ADMIN, COORDINATOR}),        # a trial's attribute catalogue
+    "quota.manage": frozenset({ADMIN, COORDINATOR}),  # targets, counting states
+    "attributes.manage": frozenset({ADMIN, COORDINATOR}),  # a trial's attribute catalogue
     "installations.manage": frozenset({ADMIN, COORDINATOR}),
     "staged.manage": frozenset({ADMIN, COORDINATOR}),
     "review.work": frozenset({ADMIN, REVIEWER}),
-    "review.adjudicate": frozenset({ADMIN, REVIEWER}),           # reviewers also need is_adjudicator
-    "review.adjudicate.always": frozenset({ADMIN}),              # without is_adjudicator
-    "review.adjudicate.own": frozenset({ADMIN}),                 # a clip one gave a verdict on
+    "review.adjudicate": frozenset({ADMIN, REVIEWER}),  # reviewers also need is_adjudicator
+    "review.adjudicate.always": frozenset({ADMIN}),  # without is_adjudicator
+    "review.adjudicate.own": frozenset({ADMIN}),  # a clip one gave a verdict on
     "review.gold": frozenset({ADMIN, COORDINATOR}),
     "review.agreement": frozenset({ADMIN, LEAD}),
     "summary.view": frozenset({ADMIN, COORDINATOR, LEAD}),

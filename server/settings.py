@@ -16,13 +16,41 @@ from server.errors import AppError
 
 MIN_SECRET_KEY_BYTES = 32
 # Values people paste from examples and tutorials; compared case-insensitively, ignoring - _ and spaces.
-PLACEHOLDER_KEYS = frozenset({
-    "changeme", "changemenow", "changethis", "changeit", "replaceme", "replacethis", "secret",
-    "secretkey", "mysecretkey", "yoursecretkey", "yoursecretkeyhere", "supersecret", "supersecretkey",
-    "placeholder", "insertsecrethere", "putyoursecrethere", "generateme", "xxx", "todo", "fixme",
-    "default", "development", "devkey", "devsecret", "test", "testkey", "notsecret", "password",
-    "trialhouse", "trialhousesecret", "trialhousesecretkey",
-})
+PLACEHOLDER_KEYS = frozenset(
+    {
+        "changeme",
+        "changemenow",
+        "changethis",
+        "changeit",
+        "replaceme",
+        "replacethis",
+        "secret",
+        "secretkey",
+        "mysecretkey",
+        "yoursecretkey",
+        "yoursecretkeyhere",
+        "supersecret",
+        "supersecretkey",
+        "placeholder",
+        "insertsecrethere",
+        "putyoursecrethere",
+        "generateme",
+        "xxx",
+        "todo",
+        "fixme",
+        "default",
+        "development",
+        "devkey",
+        "devsecret",
+        "test",
+        "testkey",
+        "notsecret",
+        "password",
+        "trialhouse",
+        "trialhousesecret",
+        "trialhousesecretkey",
+    }
+)
 
 
 class InsecureSecretKey(AppError):
@@ -32,13 +60,17 @@ class InsecureSecretKey(AppError):
 def check_secret_key(key: str) -> None:
     """Raise ``InsecureSecretKey`` (a one-line message) for a placeholder or too-short key."""
     squashed = "".join(ch for ch in key.lower() if ch not in "-_ .").strip()
-    hint = ("generate one with: python3 -c 'import secrets; print(secrets.token_urlsafe(48))' "
-            "(or leave it unset to use a generated key kept in the data directory)")
+    hint = (
+        "generate one with: python3 -c 'import secrets; print(secrets.token_urlsafe(48))' "
+        "(or leave it unset to use a generated key kept in the data directory)"
+    )
     if squashed in PLACEHOLDER_KEYS or squashed.startswith(("changeme", "replaceme", "yoursecret")):
         raise InsecureSecretKey(f"TRIALHOUSE_SECRET_KEY is a placeholder value; {hint}.")
     if len(key.encode("utf-8")) < MIN_SECRET_KEY_BYTES:
-        raise InsecureSecretKey(f"TRIALHOUSE_SECRET_KEY has {len(key.encode('utf-8'))} bytes; "
-                                f"it needs at least {MIN_SECRET_KEY_BYTES}: {hint}.")
+        raise InsecureSecretKey(
+            f"TRIALHOUSE_SECRET_KEY has {len(key.encode('utf-8'))} bytes; "
+            f"it needs at least {MIN_SECRET_KEY_BYTES}: {hint}."
+        )
 
 
 class Settings(BaseSettings):
@@ -95,7 +127,9 @@ class Settings(BaseSettings):
     password_wait_s: float = Field(default=10.0, gt=0)
 
     default_trial_code: str = "PILOT-1"
-    default_sound_classes: list[str] = Field(default_factory=lambda: ["smoke_alarm", "baby_cry", "glass_break"])
+    default_sound_classes: list[str] = Field(
+        default_factory=lambda: ["smoke_alarm", "baby_cry", "glass_break"]
+    )
 
     # Request bodies other than device clips (which have max_clip_bytes) and register imports.
     max_body_bytes: int = Field(default=1024 * 1024, ge=1024)

@@ -51,6 +51,7 @@ def free_port() -> int:
 
 # --- PostgreSQL ---------------------------------------------------------------------------------
 
+
 def _pg_bin(name: str) -> str | None:
     found = shutil.which(name)
     if found:
@@ -66,8 +67,9 @@ class PrivateCluster:
     def __init__(self) -> None:
         self.initdb, self.pg_ctl = _pg_bin("initdb"), _pg_bin("pg_ctl")
         if not (self.initdb and self.pg_ctl):
-            raise RuntimeError("PostgreSQL server binaries (initdb, pg_ctl) not found; "
-                               "install Debian's postgresql package")
+            raise RuntimeError(
+                "PostgreSQL server binaries (initdb, pg_ctl) not found; install Debian's postgresql package"
+            )
         self.dir = Path(tempfile.mkdtemp(prefix="trialhouse-pg-"))
         self.data = self.dir / "data"
         self.port = free_port()
@@ -83,14 +85,35 @@ class PrivateCluster:
         return subprocess.run(full, capture_output=True, text=True, timeout=120, check=False)
 
     def start(self) -> str:
-        r = self._run(self.initdb, "-D", str(self.data), "-U", "trialhouse", "--auth=trust",
-                      "--encoding=UTF8", "--no-sync")
+        r = self._run(
+            self.initdb,
+            "-D",
+            str(self.data),
+            "-U",
+            "trialhouse",
+            "--auth=trust",
+            "--encoding=UTF8",
+            "--no-sync",
+        )
         if r.returncode:
             raise RuntimeError(f"initdb failed: {r.stderr.strip()}")
-        opts = (f"-p {self.port} -k {self.dir} -c listen_addresses=127.0.0.1 -c fsync=off "
-                "-c synchronous_commit=off -c full_page_writes=off -c max_connections=200")
-        r = self._run(self.pg_ctl, "-D", str(self.data), "-o", opts, "-l", str(self.dir / "log"), "-w",
-                      "-t", "60", "start")
+        opts = (
+            f"-p {self.port} -k {self.dir} -c listen_addresses=127.0.0.1 -c fsync=off "
+            "-c synchronous_commit=off -c full_page_writes=off -c max_connections=200"
+        )
+        r = self._run(
+            self.pg_ctl,
+            "-D",
+            str(self.data),
+            "-o",
+            opts,
+            "-l",
+            str(self.dir / "log"),
+            "-w",
+            "-t",
+            "60",
+            "start",
+        )
         if r.returncode:
             log = (self.dir / "log").read_text() if (self.dir / "log").exists() else ""
             raise RuntimeError(f"pg_ctl start failed: {r.stderr.strip()} {log[-500:]}")
@@ -129,6 +152,7 @@ def _pg_create(admin_url: str, name: str, template: str | None = None) -> str:
 
 
 # --- the two backends ---------------------------------------------------------------------------
+
 
 class Backend:
     """A migrated template database and a way to hand out fresh copies of it."""
@@ -190,8 +214,11 @@ def work_engine(backend: Backend) -> Iterator[Engine]:
 
 @pytest.fixture
 def settings(tmp_path: Path, work_engine: Engine) -> Settings:
-    return Settings(data_dir=tmp_path / "data", database_url=work_engine.url.render_as_string(hide_password=False),
-                    secret_key="test-secret-key-" + "x" * 32)
+    return Settings(
+        data_dir=tmp_path / "data",
+        database_url=work_engine.url.render_as_string(hide_password=False),
+        secret_key="test-secret-key-" + "x" * 32,
+    )
 
 
 @pytest.fixture
@@ -240,8 +267,11 @@ def sign_in(client: TestClient, email: str, password: str) -> TestClient:
     page = client.get("/login")
     token = re.search(r'name="csrf_token" value="([^"]+)"', page.text)
     assert token, "login page carries a CSRF token"
-    r = client.post("/login", data={"email": email, "password": password, "csrf_token": token.group(1)},
-                    follow_redirects=False)
+    r = client.post(
+        "/login",
+        data={"email": email, "password": password, "csrf_token": token.group(1)},
+        follow_redirects=False,
+    )
     assert r.status_code == 303, r.text
     return client
 
@@ -274,11 +304,13 @@ def staff_client(app, session: Session):  # type: ignore[no-untyped-def]
 
 # --- committed databases: concurrency, live servers, browsers --------------------------------------
 
+
 @pytest.fixture
 def fresh_settings(backend: Backend, tmp_path: Path) -> Settings:
     """Settings on a brand-new migrated database of the current backend (real commits)."""
-    return Settings(data_dir=tmp_path / "live", database_url=backend.fresh_url(),
-                    secret_key="test-secret-key-" + "y" * 32)
+    return Settings(
+        data_dir=tmp_path / "live", database_url=backend.fresh_url(), secret_key="test-secret-key-" + "y" * 32
+    )
 
 
 class LiveServer:
@@ -289,8 +321,9 @@ class LiveServer:
         self.app = create_app(settings)
         self.port = free_port()
         self.url = f"http://127.0.0.1:{self.port}"
-        config = uvicorn.Config(self.app, host="127.0.0.1", port=self.port, log_level="warning",
-                                access_log=False)
+        config = uvicorn.Config(
+            self.app, host="127.0.0.1", port=self.port, log_level="warning", access_log=False
+        )
         self.server = uvicorn.Server(config)
         self.thread = threading.Thread(target=self.server.run, daemon=True)
 
@@ -324,9 +357,17 @@ def chromium_path() -> str | None:
     return path if path and Path(path).exists() else None
 
 
-CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-                 "--disable-background-networking", "--disable-component-update", "--disable-sync",
-                 "--disable-dev-shm-usage"]
+CHROMIUM_ARGS = [
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--disable-dev-shm-usage",
+]
 
 
 @pytest.fixture(scope="session")

@@ -3,13 +3,12 @@
 from __future__ import annotations
 
 import datetime as dt
+import io
 import itertools
 from typing import Any
 
 import numpy as np
 import soundfile as sf
-import io
-
 from sqlalchemy.orm import Session
 
 from server.auth import service as auth_service
@@ -34,14 +33,19 @@ def _n() -> int:
 
 def make_trial(session: Session, **kw: Any) -> Trial:
     n = _n()
-    args: dict[str, Any] = {"code": f"T{n:04d}", "name": f"Test trial {n}", "starts_on": dt.date(2026, 1, 1),
-                            "sound_classes": ["smoke_alarm", "baby_cry", "glass_break"]}
+    args: dict[str, Any] = {
+        "code": f"T{n:04d}",
+        "name": f"Test trial {n}",
+        "starts_on": dt.date(2026, 1, 1),
+        "sound_classes": ["smoke_alarm", "baby_cry", "glass_break"],
+    }
     args.update(kw)
     return trials_service.create_trial(session, **args)
 
 
-def make_user(session: Session, *, role: str = "coordinator", password: str = PASSWORD,
-              **kw: Any) -> tuple[User, str]:
+def make_user(
+    session: Session, *, role: str = "coordinator", password: str = PASSWORD, **kw: Any
+) -> tuple[User, str]:
     n = _n()
     args: dict[str, Any] = {"email": f"{role}{n}@example.test", "name": f"{role.title()} {n}"}
     args.update(kw)
@@ -65,17 +69,33 @@ def make_home(session: Session, trial: Trial, **kw: Any) -> Home:
     return home
 
 
-def make_installation(session: Session, device: Device, home: Home, *, room: str = "kitchen",
-                      installed_at: dt.datetime, removed_at: dt.datetime | None = None) -> Installation:
-    inst = Installation(device_id=device.id, home_id=home.id, room=room, installed_at=installed_at,
-                        removed_at=removed_at)
+def make_installation(
+    session: Session,
+    device: Device,
+    home: Home,
+    *,
+    room: str = "kitchen",
+    installed_at: dt.datetime,
+    removed_at: dt.datetime | None = None,
+) -> Installation:
+    inst = Installation(
+        device_id=device.id, home_id=home.id, room=room, installed_at=installed_at, removed_at=removed_at
+    )
     session.add(inst)
     session.flush()
     return inst
 
 
-def sine_wav(seconds: float = 1.0, rate: int = 16000, freq: float = 1000.0, amp: float = 0.5,
-             subtype: str = "PCM_16", fmt: str = "WAV", channels: int = 1, seed: int | None = None) -> bytes:
+def sine_wav(
+    seconds: float = 1.0,
+    rate: int = 16000,
+    freq: float = 1000.0,
+    amp: float = 0.5,
+    subtype: str = "PCM_16",
+    fmt: str = "WAV",
+    channels: int = 1,
+    seed: int | None = None,
+) -> bytes:
     t = np.arange(int(round(seconds * rate))) / rate
     x = amp * np.sin(2 * np.pi * freq * t)
     if seed is not None:
@@ -86,11 +106,21 @@ def sine_wav(seconds: float = 1.0, rate: int = 16000, freq: float = 1000.0, amp:
     return buf.getvalue()
 
 
-def make_alert(session: Session, store: ClipStore, settings: Settings, device: Device, *,
-               event_id: str | None = None, sound_class: str = "smoke_alarm", score: float = 0.9,
-               detected_at: dt.datetime | None = None, clip: bytes | None = None,
-               clip_offset_s: float = 0.5, firmware: str = "1.0.0",
-               now: dt.datetime | None = None) -> Alert:
+def make_alert(
+    session: Session,
+    store: ClipStore,
+    settings: Settings,
+    device: Device,
+    *,
+    event_id: str | None = None,
+    sound_class: str = "smoke_alarm",
+    score: float = 0.9,
+    detected_at: dt.datetime | None = None,
+    clip: bytes | None = None,
+    clip_offset_s: float = 0.5,
+    firmware: str = "1.0.0",
+    now: dt.datetime | None = None,
+) -> Alert:
     """An alert through the real ingest path (probe, clip store, attribution)."""
     import json
 
@@ -98,13 +128,21 @@ def make_alert(session: Session, store: ClipStore, settings: Settings, device: D
     now = now or dt.datetime.now(dt.UTC)
     detected_at = detected_at or now
     clip = clip if clip is not None else sine_wav(seed=n)
-    meta = json.dumps({"event_id": event_id or f"ev-{n}", "sound_class": sound_class, "score": score,
-                       "detected_at": detected_at.isoformat(), "clip_offset_s": clip_offset_s,
-                       "firmware": firmware}).encode()
+    meta = json.dumps(
+        {
+            "event_id": event_id or f"ev-{n}",
+            "sound_class": sound_class,
+            "score": score,
+            "detected_at": detected_at.isoformat(),
+            "clip_offset_s": clip_offset_s,
+            "firmware": firmware,
+        }
+    ).encode()
     with store.spool() as up:
         up.write(clip)
-        result = devices_service.ingest_alert(session, store=store, settings=settings, device=device,
-                                              meta_raw=meta, upload=up, now=now)
+        result = devices_service.ingest_alert(
+            session, store=store, settings=settings, device=device, meta_raw=meta, upload=up, now=now
+        )
     alert = session.get(Alert, result.alert_id)
     assert alert is not None
     return alert
@@ -112,9 +150,17 @@ def make_alert(session: Session, store: ClipStore, settings: Settings, device: D
 
 # --- households (register) ------------------------------------------------------------------------
 
-def make_registered_home(session: Session, trial: Trial, *, state: str = "candidate",
-                         attributes: dict[str, Any] | None = None, at: dt.datetime | None = None,
-                         retention_days: int = 90, staff_may_listen: bool = True) -> Home:
+
+def make_registered_home(
+    session: Session,
+    trial: Trial,
+    *,
+    state: str = "candidate",
+    attributes: dict[str, Any] | None = None,
+    at: dt.datetime | None = None,
+    retention_days: int = 90,
+    staff_may_listen: bool = True,
+) -> Home:
     """A home created through the register service and walked to ``state`` (up to consented)."""
     from server.households import service as households_service
 
@@ -128,21 +174,42 @@ def make_registered_home(session: Session, trial: Trial, *, state: str = "candid
     households_service.transition(session, home, "screened", at=at)
     if state == "screened":
         return home
-    households_service.record_consent(session, home, form_version="v1", consented_on=at.date(),
-                                      retention_days=retention_days, staff_may_listen=staff_may_listen,
-                                      mark_consented=True, at=at)
+    households_service.record_consent(
+        session,
+        home,
+        form_version="v1",
+        consented_on=at.date(),
+        retention_days=retention_days,
+        staff_may_listen=staff_may_listen,
+        mark_consented=True,
+        at=at,
+    )
     assert state == "consented", "walk further with install_device / transition"
     return home
 
 
-def make_installed_home(session: Session, trial: Trial, device: Device, *, room: str = "kitchen",
-                        installed_at: dt.datetime, attributes: dict[str, Any] | None = None,
-                        state: str = "active", retention_days: int = 90) -> Home:
+def make_installed_home(
+    session: Session,
+    trial: Trial,
+    device: Device,
+    *,
+    room: str = "kitchen",
+    installed_at: dt.datetime,
+    attributes: dict[str, Any] | None = None,
+    state: str = "active",
+    retention_days: int = 90,
+) -> Home:
     """A consented home with ``device`` installed from ``installed_at``, then made ``state``."""
     from server.households import service as households_service
 
-    home = make_registered_home(session, trial, state="consented", attributes=attributes,
-                                at=installed_at - dt.timedelta(days=1), retention_days=retention_days)
+    home = make_registered_home(
+        session,
+        trial,
+        state="consented",
+        attributes=attributes,
+        at=installed_at - dt.timedelta(days=1),
+        retention_days=retention_days,
+    )
     households_service.install_device(session, home=home, device=device, room=room, installed_at=installed_at)
     if state == "active":
         households_service.transition(session, home, "active", at=installed_at)

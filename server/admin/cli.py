@@ -103,7 +103,9 @@ def cmd_trials(args: argparse.Namespace, settings: Settings) -> int:
         held = service.set_trials(
             s, actor="cli", user_id=service.get_user_by_email(s, args.email).id, trial_codes=codes
         )
-        print(f"user {args.email} works on {', '.join(held)}" if held else f"user {args.email} sees every trial")
+        print(
+            f"user {args.email} works on {', '.join(held)}" if held else f"user {args.email} sees every trial"
+        )
     return 0
 
 
@@ -141,6 +143,8 @@ def register(user: argparse._SubParsersAction) -> None:  # type: ignore[type-arg
     ut = user.add_parser("trials", help="limit an account to some trials (admins always see all)")
     ut.add_argument("--email", required=True)
     ut.add_argument(
-        "--trials", required=True, help="comma-separated trial codes, e.g. PILOT-1,PILOT-2; '' for every trial"
+        "--trials",
+        required=True,
+        help="comma-separated trial codes, e.g. PILOT-1,PILOT-2; '' for every trial",
     )
     ut.set_defaults(func=cmd_trials)

@@ -836,9 +836,9 @@ def _homes_note(
     homes_differ = disp.p_value < 0.05 and disp.ratio > 1.5
     if not homes_differ and home_level.high > 1.25 * exact.high:
         return (
-            f"Homes look alike so far (overdispersion {disp.ratio:.1f}), but {home_level.events} false alarms "
-            f"over {home_level.homes} homes cannot show that they are: a few homes could hold most of them, so "
-            "the home-level interval reaches higher than the exact Poisson interval."
+            f"Homes look alike so far (overdispersion {disp.ratio:.1f}), but {home_level.events} false "
+            f"alarms over {home_level.homes} homes cannot show that they are: a few homes could hold most "
+            "of them, so the home-level interval reaches higher than the exact Poisson interval."
         )
     if homes_differ:
         return (

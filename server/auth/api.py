@@ -27,8 +27,15 @@ class TokenOut(BaseModel):
 
     @classmethod
     def of(cls, row: ApiToken, now: dt.datetime) -> TokenOut:
-        return cls(id=row.id, label=row.label, created_at=row.created_at, expires_at=row.expires_at,
-                   last_used_at=row.last_used_at, revoked_at=row.revoked_at, state=row.state(now))
+        return cls(
+            id=row.id,
+            label=row.label,
+            created_at=row.created_at,
+            expires_at=row.expires_at,
+            last_used_at=row.last_used_at,
+            revoked_at=row.revoked_at,
+            state=row.state(now),
+        )
 
 
 class TokenList(BaseModel):
@@ -52,27 +59,41 @@ def _list(session: Session, user: User, now: dt.datetime) -> TokenList:
 
 
 @router.get("/tokens", response_model=TokenList)
-def list_tokens(request: Request, session: DbSession, user: User = Depends(require("staff.self"))) -> TokenList:
+def list_tokens(
+    request: Request, session: DbSession, user: User = Depends(require("staff.self"))
+) -> TokenList:
     return _list(session, user, auth_now(request))
 
 
 @router.post("/tokens", response_model=TokenCreated, status_code=201)
-def create_token(request: Request, body: TokenIn, session: DbSession, settings: SettingsDep,
-                 user: User = Depends(require("staff.self"))) -> TokenCreated:
+def create_token(
+    request: Request,
+    body: TokenIn,
+    session: DbSession,
+    settings: SettingsDep,
+    user: User = Depends(require("staff.self")),
+) -> TokenCreated:
     """Only a signed-in browser session may create a token: a token minting tokens would let a
     leaked one outlive its expiry date."""
     if request.state.via_token:
         raise Forbidden("A personal API token cannot create tokens; create one on your account page.")
     now = auth_now(request)
-    row, secret = service.create_api_token(session, user, body.label, days=body.days or settings.api_token_days,
-                                           max_days=settings.api_token_max_days, now=now)
+    row, secret = service.create_api_token(
+        session,
+        user,
+        body.label,
+        days=body.days or settings.api_token_days,
+        max_days=settings.api_token_max_days,
+        now=now,
+    )
     session.commit()
     return TokenCreated(token=TokenOut.of(row, now), secret=secret)
 
 
 @router.delete("/tokens/{token_id}", response_model=TokenOut)
-def revoke_token(request: Request, token_id: int, session: DbSession,
-                 user: User = Depends(require("staff.self"))) -> TokenOut:
+def revoke_token(
+    request: Request, token_id: int, session: DbSession, user: User = Depends(require("staff.self"))
+) -> TokenOut:
     now = auth_now(request)
     row = service.revoke_api_token(session, token_id, by=user, now=now)
     session.commit()

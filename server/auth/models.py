@@ -94,7 +94,10 @@ class SignInStrikes(Base):
     """
 
     __tablename__ = "sign_in_strikes"
-    __table_args__ = (UniqueConstraint("kind", "key_digest"), Index("ix_sign_in_strikes_last", "last_failed_at"))
+    __table_args__ = (
+        UniqueConstraint("kind", "key_digest"),
+        Index("ix_sign_in_strikes_last", "last_failed_at"),
+    )
 
     id: Mapped[int] = mapped_column(primary_key=True)
     kind: Mapped[str] = mapped_column(String(10))  # "account" | "address"

@@ -29,16 +29,25 @@ TOKEN_DAY_CHOICES = (7, 30, 90, 180, 365)
 
 
 def _safe_next(value: str | None, user: User) -> str:
-    if value and value.startswith("/") and not value.startswith("//") and not value.startswith("/login") \
-            and "\\" not in value:
+    if (
+        value
+        and value.startswith("/")
+        and not value.startswith("//")
+        and not value.startswith("/login")
+        and "\\" not in value
+    ):
         return value
     return HOME_BY_ROLE.get(user.role, "/devices")
 
 
 def policy(settings: Settings) -> throttle.Policy:
-    return throttle.Policy(account_limit=settings.sign_in_account_limit,
-                           address_limit=settings.sign_in_address_limit, window_s=settings.sign_in_window_s,
-                           block_s=settings.sign_in_block_s, block_max_s=settings.sign_in_block_max_s)
+    return throttle.Policy(
+        account_limit=settings.sign_in_account_limit,
+        address_limit=settings.sign_in_address_limit,
+        window_s=settings.sign_in_window_s,
+        block_s=settings.sign_in_block_s,
+        block_max_s=settings.sign_in_block_max_s,
+    )
 
 
 def client_address(request: Request) -> str | None:
@@ -74,10 +83,22 @@ async def check_password(request: Request, password_hash: str, password: str) ->
         limiter.release()
 
 
-def _login_page(request: Request, *, next: str, email: str, error: str | None, status: int,
-                headers: dict[str, str] | None = None) -> Response:
-    return render(request, "auth/login.html", {"next": next, "email": email, "error": error},
-                  status_code=status, headers=headers)
+def _login_page(
+    request: Request,
+    *,
+    next: str,
+    email: str,
+    error: str | None,
+    status: int,
+    headers: dict[str, str] | None = None,
+) -> Response:
+    return render(
+        request,
+        "auth/login.html",
+        {"next": next, "email": email, "error": error},
+        status_code=status,
+        headers=headers,
+    )
 
 
 @router.get("/login")
@@ -96,8 +117,13 @@ async def login(request: Request, session: DbSession, settings: SettingsDep) -> 
     email, password, next_ = field("email")[:254], field("password"), field("next")[:2000]
     expected = request.session.get("csrf")
     if not expected or not hmac.compare_digest(str(expected), field("csrf_token")):
-        return _login_page(request, next=next_, email=email, status=403,
-                           error="The sign-in form had expired; please try again.")
+        return _login_page(
+            request,
+            next=next_,
+            email=email,
+            status=403,
+            error="The sign-in form had expired; please try again.",
+        )
     address, now = client_address(request), auth_now(request)
 
     def begin() -> service.SignInAttempt:
@@ -110,19 +136,28 @@ async def login(request: Request, session: DbSession, settings: SettingsDep) -> 
         attempt = await run_in_threadpool(begin)
         verified = await check_password(request, attempt.password_hash, password)
     except service.SignInBlocked as exc:
-        return _login_page(request, next=next_, email=email, error=exc.message, status=429, headers=exc.headers)
+        return _login_page(
+            request, next=next_, email=email, error=exc.message, status=429, headers=exc.headers
+        )
 
     def finish() -> tuple[Any, str] | None:
-        result = service.finish_sign_in(session, attempt, verified, now=now, policy=policy(settings),
-                                        user_agent=request.headers.get("user-agent"),
-                                        limits=session_limits(settings))
+        result = service.finish_sign_in(
+            session,
+            attempt,
+            verified,
+            now=now,
+            policy=policy(settings),
+            user_agent=request.headers.get("user-agent"),
+            limits=session_limits(settings),
+        )
         session.commit()
         return result
 
     started = await run_in_threadpool(finish)
     if started is None:
-        return _login_page(request, next=next_, email=email, error="E-mail or password is not right.",
-                           status=401)
+        return _login_page(
+            request, next=next_, email=email, error="E-mail or password is not right.", status=401
+        )
     row, raw = started
     request.session.clear()  # nothing from before sign-in carries over
     target = "/account" if row.user.must_change_password else _safe_next(next_, row.user)
@@ -132,8 +167,9 @@ async def login(request: Request, session: DbSession, settings: SettingsDep) -> 
 
 
 @router.post("/logout")
-def logout(request: Request, session: DbSession, settings: SettingsDep,
-           user: User = Depends(require("staff.self"))) -> Response:
+def logout(
+    request: Request, session: DbSession, settings: SettingsDep, user: User = Depends(require("staff.self"))
+) -> Response:
     row = request.state.web_session
     if row is not None:
         service.sign_out(session, row, now=auth_now(request))
@@ -146,9 +182,17 @@ def logout(request: Request, session: DbSession, settings: SettingsDep,
 
 # --- the account page ---------------------------------------------------------------------------
 
-def _account(request: Request, session: Session, settings: Settings, user: User, *,
-             new_token: str | None = None, errors: dict[str, str] | None = None,
-             status: int = 200) -> Response:
+
+def _account(
+    request: Request,
+    session: Session,
+    settings: Settings,
+    user: User,
+    *,
+    new_token: str | None = None,
+    errors: dict[str, str] | None = None,
+    status: int = 200,
+) -> Response:
     now = auth_now(request)
     current = request.state.web_session
     ctx = {
@@ -167,21 +211,29 @@ def _account(request: Request, session: Session, settings: Settings, user: User,
 
 
 @router.get("/account")
-def account(request: Request, session: DbSession, settings: SettingsDep,
-            user: User = Depends(require("staff.self"))) -> Response:
+def account(
+    request: Request, session: DbSession, settings: SettingsDep, user: User = Depends(require("staff.self"))
+) -> Response:
     return _account(request, session, settings, user)
 
 
 @router.post("/account/tokens")
-def create_token(request: Request, session: DbSession, settings: SettingsDep, label: str = Form(""),
-                 days: str = Form(""), user: User = Depends(require("staff.self"))) -> Response:
+def create_token(
+    request: Request,
+    session: DbSession,
+    settings: SettingsDep,
+    label: str = Form(""),
+    days: str = Form(""),
+    user: User = Depends(require("staff.self")),
+) -> Response:
     try:
         n = int(days) if days.strip() else settings.api_token_days
     except ValueError:
         n = -1
     try:
-        _, token = service.create_api_token(session, user, label, days=n, max_days=settings.api_token_max_days,
-                                            now=auth_now(request))
+        _, token = service.create_api_token(
+            session, user, label, days=n, max_days=settings.api_token_max_days, now=auth_now(request)
+        )
     except ValidationFailed as exc:  # raised before anything was written
         return _account(request, session, settings, user, errors=exc.errors, status=422)
     session.commit()
@@ -189,18 +241,26 @@ def create_token(request: Request, session: DbSession, settings: SettingsDep, la
 
 
 @router.post("/account/tokens/{token_id}/revoke")
-def revoke_token(request: Request, token_id: int, session: DbSession,
-                 user: User = Depends(require("staff.self"))) -> Response:
+def revoke_token(
+    request: Request, token_id: int, session: DbSession, user: User = Depends(require("staff.self"))
+) -> Response:
     service.revoke_api_token(session, token_id, by=user, now=auth_now(request))
     session.commit()
     return RedirectResponse("/account?done=token-revoked", status_code=303)
 
 
 @router.post("/account/sessions/end-others")
-def end_other_sessions(request: Request, session: DbSession, user: User = Depends(require("staff.self"))) -> Response:
+def end_other_sessions(
+    request: Request, session: DbSession, user: User = Depends(require("staff.self"))
+) -> Response:
     current = request.state.web_session
-    ended = sessions.end_all(session, user.id, reason="ended_by_user", now=auth_now(request),
-                             keep_id=current.id if current is not None else None)
+    ended = sessions.end_all(
+        session,
+        user.id,
+        reason="ended_by_user",
+        now=auth_now(request),
+        keep_id=current.id if current is not None else None,
+    )
     from server import audit
 
     audit.record(session, user, "auth.sessions_end", "user", user.id, {"ended": ended})
@@ -209,8 +269,9 @@ def end_other_sessions(request: Request, session: DbSession, user: User = Depend
 
 
 @router.post("/account/password")
-async def change_password(request: Request, session: DbSession, settings: SettingsDep,
-                          user: User = Depends(require("staff.self"))) -> Response:
+async def change_password(
+    request: Request, session: DbSession, settings: SettingsDep, user: User = Depends(require("staff.self"))
+) -> Response:
     """Change one's own password: the current one is checked (and throttled like a sign-in), then
     every session of the user ends and this browser gets a new one."""
     form = await request.form()
@@ -237,6 +298,7 @@ async def change_password(request: Request, session: DbSession, settings: Settin
     except service.SignInBlocked as exc:
         return await run_in_threadpool(page, {"current_password": exc.message}, 429)
     if not verified:
+
         def fail() -> Response:
             throttle.record_failure(session, attempt.email, address, now=now, policy=policy(settings))
             from server import audit
@@ -244,11 +306,14 @@ async def change_password(request: Request, session: DbSession, settings: Settin
             audit.record(session, user, "auth.password_change_failed", "user", user.id, {"address": address})
             session.commit()
             return page({"current_password": "That is not your current password."}, 422)
+
         return await run_in_threadpool(fail)
     if new != repeat:
         return await run_in_threadpool(page, {"repeat_password": "The two new passwords differ."}, 422)
     if new == current:
-        return await run_in_threadpool(page, {"new_password": "Choose a password other than the current one."}, 422)
+        return await run_in_threadpool(
+            page, {"new_password": "Choose a password other than the current one."}, 422
+        )
     try:
         service.check_password_rule(new)
     except ValidationFailed as exc:
@@ -256,8 +321,9 @@ async def change_password(request: Request, session: DbSession, settings: Settin
 
     def apply() -> str:
         service.set_password(session, user, new, now=now)
-        row, raw = sessions.start(session, user, now=now, user_agent=request.headers.get("user-agent"),
-                                  client_addr=address)
+        row, raw = sessions.start(
+            session, user, now=now, user_agent=request.headers.get("user-agent"), client_addr=address
+        )
         session.commit()
         request.state.web_session = row
         return raw

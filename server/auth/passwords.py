@@ -29,8 +29,9 @@ def verify_password(password_hash: str, password: str) -> bool:
 def common_passwords() -> frozenset[str]:
     """The shipped list of well-known weak passwords, lower-cased."""
     text = resources.files("server.auth").joinpath("common_passwords.txt").read_text(encoding="utf-8")
-    return frozenset(line.strip().lower() for line in text.splitlines()
-                     if line.strip() and not line.startswith("#"))
+    return frozenset(
+        line.strip().lower() for line in text.splitlines() if line.strip() and not line.startswith("#")
+    )
 
 
 def password_problem(password: str) -> str | None:

@@ -31,6 +31,7 @@ MAX_TOKEN_DAYS = 365
 
 # --- passwords ----------------------------------------------------------------------------------
 
+
 def check_password_rule(password: str) -> None:
     """At least 12 characters and not on the shipped list of common passwords (any case)."""
     problem = password_problem(password)
@@ -58,8 +59,9 @@ def _password_executor() -> ThreadPoolExecutor:
     global _password_threads
     with _password_threads_lock:
         if _password_threads is None:
-            _password_threads = ThreadPoolExecutor(max_workers=16, thread_name_prefix="trialhouse-argon2",
-                                                   initializer=_yield_cpu)
+            _password_threads = ThreadPoolExecutor(
+                max_workers=16, thread_name_prefix="trialhouse-argon2", initializer=_yield_cpu
+            )
         return _password_threads
 
 
@@ -69,9 +71,17 @@ async def run_password_work(check: Callable[[str, str], bool], password_hash: st
     return await loop.run_in_executor(_password_executor(), check, password_hash, password)
 
 
-def create_user(session: Session, *, email: str, name: str, role: str, password: str,
-                is_adjudicator: bool = False, actor: User | str | None = "cli",
-                must_change_password: bool = False) -> User:
+def create_user(
+    session: Session,
+    *,
+    email: str,
+    name: str,
+    role: str,
+    password: str,
+    is_adjudicator: bool = False,
+    actor: User | str | None = "cli",
+    must_change_password: bool = False,
+) -> User:
     email = email.strip().lower()
     errors = {}
     if not _EMAIL.match(email):
@@ -85,17 +95,29 @@ def create_user(session: Session, *, email: str, name: str, role: str, password:
         raise ValidationFailed(next(iter(errors.values())), errors)
     if session.scalar(select(User).where(User.email == email)) is not None:
         raise Conflict(f"A user with e-mail {email} already exists.", code="user_exists")
-    user = User(email=email, name=name or email.split("@")[0], role=role,
-                password_hash=hash_password(password), is_adjudicator=is_adjudicator,
-                must_change_password=must_change_password)
+    user = User(
+        email=email,
+        name=name or email.split("@")[0],
+        role=role,
+        password_hash=hash_password(password),
+        is_adjudicator=is_adjudicator,
+        must_change_password=must_change_password,
+    )
     session.add(user)
     session.flush()
     audit.record(session, actor, "user.create", "user", user.id, {"email": email, "role": role})
     return user
 
 
-def set_password(session: Session, user: User, new_password: str, *, must_change: bool = False,
-                 actor: User | str | None = None, now: dt.datetime | None = None) -> None:
+def set_password(
+    session: Session,
+    user: User,
+    new_password: str,
+    *,
+    must_change: bool = False,
+    actor: User | str | None = None,
+    now: dt.datetime | None = None,
+) -> None:
     """Check the rule, store the new hash and end every session of the user.
 
     ``must_change`` (an admin chose the password) keeps the user to the account page until they
@@ -106,23 +128,32 @@ def set_password(session: Session, user: User, new_password: str, *, must_change
     user.must_change_password = must_change
     session.flush()
     ended = end_sessions(session, user.id, reason="password_changed", now=now)
-    audit.record(session, actor if actor is not None else user, "user.password_set", "user", user.id,
-                 {"must_change": must_change, "sessions_ended": ended})
+    audit.record(
+        session,
+        actor if actor is not None else user,
+        "user.password_set",
+        "user",
+        user.id,
+        {"must_change": must_change, "sessions_ended": ended},
+    )
 
 
 # --- sessions -----------------------------------------------------------------------------------
+
 
 def end_sessions(session: Session, user_id: int, *, reason: str, now: dt.datetime | None = None) -> int:
     """End every live session of the user at once; returns how many there were."""
     return sessions.end_all(session, user_id, reason=reason, now=now or utcnow())
 
 
-def live_sessions(session: Session, user_id: int, *, now: dt.datetime,
-                  limits: sessions.Limits) -> list[StaffSession]:
+def live_sessions(
+    session: Session, user_id: int, *, now: dt.datetime, limits: sessions.Limits
+) -> list[StaffSession]:
     return sessions.list_live(session, user_id, now=now, limits=limits)
 
 
 # --- sign-in ------------------------------------------------------------------------------------
+
 
 class SignInBlocked(AppError):
     """Too many failed sign-ins for this account or address: try again after ``retry_after_s``."""
@@ -132,8 +163,10 @@ class SignInBlocked(AppError):
     def __init__(self, retry_after_s: int) -> None:
         minutes = retry_after_s / 60
         wait = f"{retry_after_s} seconds" if retry_after_s < 120 else f"{minutes:.0f} minutes"
-        super().__init__(f"Too many failed sign-ins. Wait {wait}, then try again.",
-                         headers={"Retry-After": str(retry_after_s)})
+        super().__init__(
+            f"Too many failed sign-ins. Wait {wait}, then try again.",
+            headers={"Retry-After": str(retry_after_s)},
+        )
         self.retry_after_s = retry_after_s
 
 
@@ -162,9 +195,16 @@ def begin_sign_in(session: Session, email: str, address: str | None, *, now: dt.
     return SignInAttempt(email, address, user, user.password_hash if user is not None else DUMMY_HASH)
 
 
-def finish_sign_in(session: Session, attempt: SignInAttempt, verified: bool, *, now: dt.datetime,
-                   policy: throttle.Policy, user_agent: str | None = None,
-                   limits: sessions.Limits | None = None) -> tuple[StaffSession, str] | None:
+def finish_sign_in(
+    session: Session,
+    attempt: SignInAttempt,
+    verified: bool,
+    *,
+    now: dt.datetime,
+    policy: throttle.Policy,
+    user_agent: str | None = None,
+    limits: sessions.Limits | None = None,
+) -> tuple[StaffSession, str] | None:
     """Record the outcome: a new session (row, cookie value) for a success, None for a failure.
 
     Also drops aged-out strike counts (on a failure) and long-dead session rows (on a success, when
@@ -172,13 +212,22 @@ def finish_sign_in(session: Session, attempt: SignInAttempt, verified: bool, *, 
     """
     if attempt.user is None or not verified:
         started = throttle.record_failure(session, attempt.email, attempt.address, now=now, policy=policy)
-        detail: dict[str, str | int | None] = {"email": attempt.email, "address": attempt.address,
-                  "reason": "wrong_password" if attempt.user is not None else "unknown_or_inactive"}
+        detail: dict[str, str | int | None] = {
+            "email": attempt.email,
+            "address": attempt.address,
+            "reason": "wrong_password" if attempt.user is not None else "unknown_or_inactive",
+        }
         if started is not None:
             detail["blocked_s"] = started.retry_after_s
             detail["blocked_key"] = started.kind
-        audit.record(session, f"client:{attempt.address or 'unknown'}", "auth.sign_in_failed", "user",
-                     attempt.user.id if attempt.user is not None else None, detail)
+        audit.record(
+            session,
+            f"client:{attempt.address or 'unknown'}",
+            "auth.sign_in_failed",
+            "user",
+            attempt.user.id if attempt.user is not None else None,
+            detail,
+        )
         throttle.purge(session, now=now, policy=policy)  # aged-out counts (indexed; usually nothing)
         return None
     user = attempt.user
@@ -187,7 +236,9 @@ def finish_sign_in(session: Session, attempt: SignInAttempt, verified: bool, *, 
         sessions.purge(session, now=now, limits=limits)
     user.last_login_at = now
     row, raw = sessions.start(session, user, now=now, user_agent=user_agent, client_addr=attempt.address)
-    audit.record(session, user, "auth.sign_in", "user", user.id, {"address": attempt.address, "session": row.id})
+    audit.record(
+        session, user, "auth.sign_in", "user", user.id, {"address": attempt.address, "session": row.id}
+    )
     return row, raw
 
 
@@ -211,8 +262,16 @@ def authenticate(session: Session, email: str, password: str) -> User | None:
 
 # --- personal API tokens ------------------------------------------------------------------------
 
-def create_api_token(session: Session, user: User, label: str, *, days: int = DEFAULT_TOKEN_DAYS,
-                     max_days: int = MAX_TOKEN_DAYS, now: dt.datetime | None = None) -> tuple[ApiToken, str]:
+
+def create_api_token(
+    session: Session,
+    user: User,
+    label: str,
+    *,
+    days: int = DEFAULT_TOKEN_DAYS,
+    max_days: int = MAX_TOKEN_DAYS,
+    now: dt.datetime | None = None,
+) -> tuple[ApiToken, str]:
     """A new token for ``user`` valid ``days`` days; returns the row and the token (shown only once)."""
     if not 1 <= days <= max_days:
         msg = f"A token can live from 1 to {max_days} days."
@@ -220,12 +279,23 @@ def create_api_token(session: Session, user: User, label: str, *, days: int = DE
     label = label.strip()[:100] or "token"
     now = now or utcnow()
     token = new_token(STAFF_PREFIX)
-    row = ApiToken(user_id=user.id, label=label, token_hash=token_digest(token), created_at=now,
-                   expires_at=now + dt.timedelta(days=days))
+    row = ApiToken(
+        user_id=user.id,
+        label=label,
+        token_hash=token_digest(token),
+        created_at=now,
+        expires_at=now + dt.timedelta(days=days),
+    )
     session.add(row)
     session.flush()
-    audit.record(session, user, "api_token.create", "api_token", row.id,
-                 {"label": row.label, "expires_at": row.expires_at.isoformat()})
+    audit.record(
+        session,
+        user,
+        "api_token.create",
+        "api_token",
+        row.id,
+        {"label": row.label, "expires_at": row.expires_at.isoformat()},
+    )
     return row, token
 
 
@@ -233,8 +303,11 @@ def find_api_token(session: Session, token: str) -> ApiToken | None:
     """The token's row whatever its state (callers decide: revoked, expired, inactive user)."""
     if not token.startswith(STAFF_PREFIX) or len(token) > 200:
         return None
-    return session.scalar(select(ApiToken).where(ApiToken.token_hash == token_digest(token))
-                          .execution_options(populate_existing=True))
+    return session.scalar(
+        select(ApiToken)
+        .where(ApiToken.token_hash == token_digest(token))
+        .execution_options(populate_existing=True)
+    )
 
 
 def find_user_by_api_token(session: Session, token: str, *, now: dt.datetime | None = None) -> User | None:
@@ -246,11 +319,18 @@ def find_user_by_api_token(session: Session, token: str, *, now: dt.datetime | N
 
 def list_api_tokens(session: Session, user_id: int) -> list[ApiToken]:
     """Every token of the user, newest first, whatever its state."""
-    return list(session.scalars(select(ApiToken).where(ApiToken.user_id == user_id)
-                                .order_by(ApiToken.created_at.desc(), ApiToken.id.desc())))
+    return list(
+        session.scalars(
+            select(ApiToken)
+            .where(ApiToken.user_id == user_id)
+            .order_by(ApiToken.created_at.desc(), ApiToken.id.desc())
+        )
+    )
 
 
-def revoke_api_token(session: Session, token_id: int, *, by: User, now: dt.datetime | None = None) -> ApiToken:
+def revoke_api_token(
+    session: Session, token_id: int, *, by: User, now: dt.datetime | None = None
+) -> ApiToken:
     """Revoke a token: its owner or an admin may. Revoking a revoked token changes nothing."""
     row = session.get(ApiToken, token_id)
     if row is None or (row.user_id != by.id and by.role != ADMIN):
@@ -260,11 +340,11 @@ def revoke_api_token(session: Session, token_id: int, *, by: User, now: dt.datet
         row.revoked = True
         row.revoked_at = now or utcnow()
         session.flush()
-        audit.record(session, by, "api_token.revoke", "api_token", row.id,
-                     {"label": row.label, "owner": row.user_id})
+        audit.record(
+            session, by, "api_token.revoke", "api_token", row.id, {"label": row.label, "owner": row.user_id}
+        )
     return row
 
 
 def list_users(session: Session) -> list[User]:
     return list(session.scalars(select(User).order_by(User.role, User.email)))
-

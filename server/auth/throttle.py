@@ -53,8 +53,11 @@ def keys(email: str, address: str | None) -> list[tuple[str, str]]:
 
 
 def _row(session: Session, kind: str, digest: str) -> SignInStrikes | None:
-    return session.scalar(select(SignInStrikes).where(SignInStrikes.kind == kind, SignInStrikes.key_digest == digest)
-                          .execution_options(populate_existing=True))
+    return session.scalar(
+        select(SignInStrikes)
+        .where(SignInStrikes.kind == kind, SignInStrikes.key_digest == digest)
+        .execution_options(populate_existing=True)
+    )
 
 
 @dataclasses.dataclass(frozen=True)
@@ -76,14 +79,17 @@ def check(session: Session, email: str, address: str | None, *, now: dt.datetime
     return worst
 
 
-def record_failure(session: Session, email: str, address: str | None, *, now: dt.datetime,
-                   policy: Policy) -> Blocked | None:
+def record_failure(
+    session: Session, email: str, address: str | None, *, now: dt.datetime, policy: Policy
+) -> Blocked | None:
     """Count a failure on both keys; returns the block it started, if any."""
     started: Blocked | None = None
     for kind, digest in keys(email, address):
         row = _row(session, kind, digest)
         if row is None:
-            row = SignInStrikes(kind=kind, key_digest=digest, failures=0, first_failed_at=now, last_failed_at=now)
+            row = SignInStrikes(
+                kind=kind, key_digest=digest, failures=0, first_failed_at=now, last_failed_at=now
+            )
             try:
                 with session.begin_nested():
                     session.add(row)
@@ -105,7 +111,9 @@ def record_failure(session: Session, email: str, address: str | None, *, now: dt
 
 def record_success(session: Session, email: str) -> None:
     kind, digest = keys(email, None)[0]
-    session.execute(delete(SignInStrikes).where(SignInStrikes.kind == kind, SignInStrikes.key_digest == digest))
+    session.execute(
+        delete(SignInStrikes).where(SignInStrikes.kind == kind, SignInStrikes.key_digest == digest)
+    )
 
 
 def purge(session: Session, *, now: dt.datetime, policy: Policy) -> int:

@@ -20,12 +20,21 @@ UI_COOKIE_NAME = "trialhouse_ui"
 
 
 def set_session_cookie(response: Response, raw: str, settings: Settings) -> None:
-    response.set_cookie(COOKIE_NAME, raw, max_age=settings.session_max_age_s, path="/", httponly=True,
-                        samesite="lax", secure=settings.secure_cookies)
+    response.set_cookie(
+        COOKIE_NAME,
+        raw,
+        max_age=settings.session_max_age_s,
+        path="/",
+        httponly=True,
+        samesite="lax",
+        secure=settings.secure_cookies,
+    )
 
 
 def clear_session_cookie(response: Response, settings: Settings) -> None:
-    response.delete_cookie(COOKIE_NAME, path="/", httponly=True, samesite="lax", secure=settings.secure_cookies)
+    response.delete_cookie(
+        COOKIE_NAME, path="/", httponly=True, samesite="lax", secure=settings.secure_cookies
+    )
 
 
 def password_limiter(request: Request) -> anyio.CapacityLimiter:
@@ -44,7 +53,9 @@ class StaleSessionCookie:
     def __init__(self, app: ASGIApp, settings: Settings) -> None:
         self.app = app
         flags = "; Path=/; HttpOnly; SameSite=lax" + ("; Secure" if settings.secure_cookies else "")
-        self.header = f'{COOKIE_NAME}=""; Max-Age=0; expires=Thu, 01 Jan 1970 00:00:00 GMT{flags}'.encode("latin-1")
+        self.header = f'{COOKIE_NAME}=""; Max-Age=0; expires=Thu, 01 Jan 1970 00:00:00 GMT{flags}'.encode(
+            "latin-1"
+        )
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":

@@ -42,8 +42,18 @@ EMAIL_DOMAIN = "example.test"  # reserved for testing (RFC 6761): nobody gets ma
 
 DWELLINGS = ("flat", "terraced house", "semi-detached house", "detached house")
 # Trait keys of the plan; ``seed`` maps them onto the trial's attribute catalogue.
-TRAITS = ("infant", "children", "dog", "cat", "other_pets", "aged_75", "instrument",
-          "building_works", "major_road", "flight_path")
+TRAITS = (
+    "infant",
+    "children",
+    "dog",
+    "cat",
+    "other_pets",
+    "aged_75",
+    "instrument",
+    "building_works",
+    "major_road",
+    "flight_path",
+)
 
 
 # ---------------------------------------------------------------------------------------
@@ -87,9 +97,9 @@ class ConsentTerms:
 @dataclass(frozen=True)
 class Household:
     key: str
-    character: str            # one line for the register (no personal data)
+    character: str  # one line for the register (no personal data)
     traits: frozenset[str]
-    dwelling: str             # one of DWELLINGS
+    dwelling: str  # one of DWELLINGS
     occupants: int
     steps: tuple[StateStep, ...]
     consent: ConsentTerms | None
@@ -105,7 +115,7 @@ class Household:
 class DeviceSpec:
     serial: str
     hardware_model: str
-    clock_offset_s: float      # device clock minus true time
+    clock_offset_s: float  # device clock minus true time
     upgrade_at: dt.datetime | None
 
 
@@ -120,7 +130,7 @@ class Placement:
 
 @dataclass(frozen=True)
 class Beat:
-    at: dt.datetime            # true (server) time; the device stamps sent_at with its own clock
+    at: dt.datetime  # true (server) time; the device stamps sent_at with its own clock
     listening: bool
     firmware: str
 
@@ -140,20 +150,20 @@ class Detection:
     event_id: str
     serial: str
     home_key: str
-    sound_class: str           # claimed by the detector
-    sound: str                 # kind in server.sounds.SOUNDS that the clip is made of
+    sound_class: str  # claimed by the detector
+    sound: str  # kind in server.sounds.SOUNDS that the clip is made of
     score: float
-    at: dt.datetime            # true detection time
+    at: dt.datetime  # true detection time
     received_delay_s: float
     firmware: str
-    truth_label: str           # confirmed | false_alarm
+    truth_label: str  # confirmed | false_alarm
     truth_cause: str | None
     truth_resemblance: str | None
-    source: str                # key of the source in SOURCES, or "staged"
+    source: str  # key of the source in SOURCES, or "staged"
     clip_seed: int
     staged_key: str | None = None
     private: bool = False
-    ambiguous: bool = False    # a reviewer may well say "unsure" the first time
+    ambiguous: bool = False  # a reviewer may well say "unsure" the first time
 
 
 @dataclass(frozen=True)
@@ -171,7 +181,7 @@ class StagedTest:
 @dataclass(frozen=True)
 class QuotaLine:
     label: str
-    trait: str | None          # None: all homes; "dwelling:flat" for a one-of value
+    trait: str | None  # None: all homes; "dwelling:flat" for a one-of value
     min_count: int | None
     max_count: int | None
 
@@ -193,7 +203,7 @@ class Plan:
     detections: tuple[Detection, ...]
     staged: tuple[StagedTest, ...]
     quota: tuple[QuotaLine, ...]
-    roles: dict[str, str] = field(default_factory=dict)   # story role -> household key
+    roles: dict[str, str] = field(default_factory=dict)  # story role -> household key
     mover_serial: str = ""
     move_at: dt.datetime | None = None
     skewed_serial: str = ""
@@ -228,10 +238,10 @@ class Source:
     cause: str | None
     resemblance: str | None
     rate_per_day: float
-    hours: tuple[tuple[float, float], ...]   # local hours when it happens
+    hours: tuple[tuple[float, float], ...]  # local hours when it happens
     weekdays_only: bool = False
-    new_firmware_factor: float = 1.0         # the new firmware's effect on the rate
-    th100_factor: float = 1.0                # the older hardware's effect on the rate
+    new_firmware_factor: float = 1.0  # the new firmware's effect on the rate
+    th100_factor: float = 1.0  # the older hardware's effect on the rate
     kitchen_factor: float = 1.0
     score: tuple[float, float] = (2.0, 3.0)  # beta shape, mapped above the threshold
 
@@ -240,49 +250,190 @@ EVENING = ((17.0, 23.0),)
 DAYTIME = ((8.0, 20.0),)
 WAKING = ((7.0, 22.5),)
 
-SOURCES: dict[str, Source] = {s.key: s for s in (
-    # Everyone's home
-    Source("tv", "tv_babble", "baby_cry", "false_alarm", "tv_radio_music", "resembles", 0.012, EVENING,
-           new_firmware_factor=0.6),
-    Source("vacuum", "vacuum", "smoke_alarm", "false_alarm", "appliance", "resembles", 0.008,
-           ((9.0, 18.0),)),
-    Source("door", "door_slam", "glass_break", "false_alarm", "door_knock_impact", "resembles", 0.014, WAKING,
-           th100_factor=3.0),
-    Source("kettle", "kettle_rumble", "smoke_alarm", "false_alarm", "kitchen_cooking", "unrelated", 0.004,
-           ((6.5, 9.0), (17.0, 19.5)), kitchen_factor=3.0, score=(1.5, 4.0)),
-    # Homes with character
-    Source("dog", "dog_bark", "baby_cry", "false_alarm", "dog", "unrelated", 0.03, WAKING,
-           new_firmware_factor=0.6, score=(1.5, 4.0)),
-    Source("dog_glass", "dog_bark", "glass_break", "false_alarm", "dog", "unrelated", 0.008, WAKING,
-           score=(1.5, 4.0)),
-    Source("cockatoo", "bird_screech", "baby_cry", "false_alarm", "cat_other_pet", "resembles", 0.4,
-           ((6.0, 9.5), (16.0, 20.0)), new_firmware_factor=0.6, score=(3.0, 2.0)),
-    Source("road", "traffic", "glass_break", "false_alarm", "traffic_aircraft", "unrelated", 0.09,
-           ((7.0, 9.5), (16.0, 19.0)), score=(1.5, 4.0)),
-    Source("piano", "piano", "smoke_alarm", "false_alarm", "tv_radio_music", "resembles", 0.07,
-           ((15.0, 21.0),)),
-    Source("works", "drill", "glass_break", "false_alarm", "tools_building", "unrelated", 0.45,
-           ((8.0, 17.0),), weekdays_only=True),
-    Source("works_smoke", "drill", "smoke_alarm", "false_alarm", "tools_building", "unrelated", 0.15,
-           ((8.0, 17.0),), weekdays_only=True, score=(1.5, 4.0)),
-    # Real events
-    Source("cry", "baby_cry", "baby_cry", "confirmed", None, None, 0.12, ((0.0, 24.0),), score=(5.0, 1.5)),
-    Source("toast", "smoke_alarm_t3", "smoke_alarm", "confirmed", None, None, 0.0,
-           ((7.0, 9.0), (18.0, 20.0)), score=(6.0, 1.2)),
-    Source("dropped_glass", "glass_break", "glass_break", "confirmed", None, None, 0.0, WAKING,
-           score=(5.0, 1.5)),
-    # A household conversation that the reviewer flags as private content
-    Source("chat", "tv_babble", "baby_cry", "false_alarm", "speech", "unrelated", 0.0, EVENING,
-           score=(1.5, 4.0)),
-)}
+SOURCES: dict[str, Source] = {
+    s.key: s
+    for s in (
+        # Everyone's home
+        Source(
+            "tv",
+            "tv_babble",
+            "baby_cry",
+            "false_alarm",
+            "tv_radio_music",
+            "resembles",
+            0.012,
+            EVENING,
+            new_firmware_factor=0.6,
+        ),
+        Source(
+            "vacuum", "vacuum", "smoke_alarm", "false_alarm", "appliance", "resembles", 0.008, ((9.0, 18.0),)
+        ),
+        Source(
+            "door",
+            "door_slam",
+            "glass_break",
+            "false_alarm",
+            "door_knock_impact",
+            "resembles",
+            0.014,
+            WAKING,
+            th100_factor=3.0,
+        ),
+        Source(
+            "kettle",
+            "kettle_rumble",
+            "smoke_alarm",
+            "false_alarm",
+            "kitchen_cooking",
+            "unrelated",
+            0.004,
+            ((6.5, 9.0), (17.0, 19.5)),
+            kitchen_factor=3.0,
+            score=(1.5, 4.0),
+        ),
+        # Homes with character
+        Source(
+            "dog",
+            "dog_bark",
+            "baby_cry",
+            "false_alarm",
+            "dog",
+            "unrelated",
+            0.03,
+            WAKING,
+            new_firmware_factor=0.6,
+            score=(1.5, 4.0),
+        ),
+        Source(
+            "dog_glass",
+            "dog_bark",
+            "glass_break",
+            "false_alarm",
+            "dog",
+            "unrelated",
+            0.008,
+            WAKING,
+            score=(1.5, 4.0),
+        ),
+        Source(
+            "cockatoo",
+            "bird_screech",
+            "baby_cry",
+            "false_alarm",
+            "cat_other_pet",
+            "resembles",
+            0.4,
+            ((6.0, 9.5), (16.0, 20.0)),
+            new_firmware_factor=0.6,
+            score=(3.0, 2.0),
+        ),
+        Source(
+            "road",
+            "traffic",
+            "glass_break",
+            "false_alarm",
+            "traffic_aircraft",
+            "unrelated",
+            0.09,
+            ((7.0, 9.5), (16.0, 19.0)),
+            score=(1.5, 4.0),
+        ),
+        Source(
+            "piano",
+            "piano",
+            "smoke_alarm",
+            "false_alarm",
+            "tv_radio_music",
+            "resembles",
+            0.07,
+            ((15.0, 21.0),),
+        ),
+        Source(
+            "works",
+            "drill",
+            "glass_break",
+            "false_alarm",
+            "tools_building",
+            "unrelated",
+            0.45,
+            ((8.0, 17.0),),
+            weekdays_only=True,
+        ),
+        Source(
+            "works_smoke",
+            "drill",
+            "smoke_alarm",
+            "false_alarm",
+            "tools_building",
+            "unrelated",
+            0.15,
+            ((8.0, 17.0),),
+            weekdays_only=True,
+            score=(1.5, 4.0),
+        ),
+        # Real events
+        Source(
+            "cry", "baby_cry", "baby_cry", "confirmed", None, None, 0.12, ((0.0, 24.0),), score=(5.0, 1.5)
+        ),
+        Source(
+            "toast",
+            "smoke_alarm_t3",
+            "smoke_alarm",
+            "confirmed",
+            None,
+            None,
+            0.0,
+            ((7.0, 9.0), (18.0, 20.0)),
+            score=(6.0, 1.2),
+        ),
+        Source(
+            "dropped_glass",
+            "glass_break",
+            "glass_break",
+            "confirmed",
+            None,
+            None,
+            0.0,
+            WAKING,
+            score=(5.0, 1.5),
+        ),
+        # A household conversation that the reviewer flags as private content
+        Source(
+            "chat",
+            "tv_babble",
+            "baby_cry",
+            "false_alarm",
+            "speech",
+            "unrelated",
+            0.0,
+            EVENING,
+            score=(1.5, 4.0),
+        ),
+    )
+}
 
 STAGED_SOURCES = {
-    "smoke_alarm": ("test alarm sounder held up in the hallway, 3 m from the device", 85.0, (30.0, 60.0),
-                    (2.0, 8.0), 0.9),
-    "baby_cry": ("recorded infant cry played from a small speaker at 1.5 m", 70.0, (45.0, 90.0),
-                 (3.0, 15.0), 0.8),
-    "glass_break": ("pane of old window glass broken inside a heavy bag, 4 m from the device", 90.0,
-                    (2.0, 5.0), (0.3, 1.5), 0.75),
+    "smoke_alarm": (
+        "test alarm sounder held up in the hallway, 3 m from the device",
+        85.0,
+        (30.0, 60.0),
+        (2.0, 8.0),
+        0.9,
+    ),
+    "baby_cry": (
+        "recorded infant cry played from a small speaker at 1.5 m",
+        70.0,
+        (45.0, 90.0),
+        (3.0, 15.0),
+        0.8,
+    ),
+    "glass_break": (
+        "pane of old window glass broken inside a heavy bag, 4 m from the device",
+        90.0,
+        (2.0, 5.0),
+        (0.3, 1.5),
+        0.75,
+    ),
 }
 
 
@@ -290,23 +441,91 @@ STAGED_SOURCES = {
 # People, invented
 
 
-GIVEN = ("Aurel", "Brisa", "Caio", "Dessa", "Emeric", "Fable", "Gwenna", "Halden", "Isolde", "Jory",
-         "Kenna", "Lisandro", "Maelis", "Nico", "Ottilie", "Perrin", "Quinta", "Roswin", "Sela", "Teodor",
-         "Una", "Vasco", "Wilma", "Yusra", "Zeno", "Anouk", "Bram", "Cosima", "Dario", "Elske")
-FAMILY_HEAD = ("Tar", "Mir", "Quen", "Vol", "Bri", "Dax", "Ost", "Yel", "Fen", "Lor", "Gav", "Hul",
-               "Nor", "Pell", "Rask", "Sund")
-FAMILY_TAIL = ("velow", "renhald", "dasby", "moric", "tanish", "quill", "berow", "snade", "vantree",
-               "kessop", "marle", "wyth")
-STREETS = ("Lanternwell Row", "Copperbeck Lane", "Orrery Street", "Hazelfold Way", "Mistlegate Road",
-           "Tumblecross Close", "Wrenhollow Court", "Saltbriar Terrace", "Quarrystep Lane", "Bellwether Yard")
+GIVEN = (
+    "Aurel",
+    "Brisa",
+    "Caio",
+    "Dessa",
+    "Emeric",
+    "Fable",
+    "Gwenna",
+    "Halden",
+    "Isolde",
+    "Jory",
+    "Kenna",
+    "Lisandro",
+    "Maelis",
+    "Nico",
+    "Ottilie",
+    "Perrin",
+    "Quinta",
+    "Roswin",
+    "Sela",
+    "Teodor",
+    "Una",
+    "Vasco",
+    "Wilma",
+    "Yusra",
+    "Zeno",
+    "Anouk",
+    "Bram",
+    "Cosima",
+    "Dario",
+    "Elske",
+)
+FAMILY_HEAD = (
+    "Tar",
+    "Mir",
+    "Quen",
+    "Vol",
+    "Bri",
+    "Dax",
+    "Ost",
+    "Yel",
+    "Fen",
+    "Lor",
+    "Gav",
+    "Hul",
+    "Nor",
+    "Pell",
+    "Rask",
+    "Sund",
+)
+FAMILY_TAIL = (
+    "velow",
+    "renhald",
+    "dasby",
+    "moric",
+    "tanish",
+    "quill",
+    "berow",
+    "snade",
+    "vantree",
+    "kessop",
+    "marle",
+    "wyth",
+)
+STREETS = (
+    "Lanternwell Row",
+    "Copperbeck Lane",
+    "Orrery Street",
+    "Hazelfold Way",
+    "Mistlegate Road",
+    "Tumblecross Close",
+    "Wrenhollow Court",
+    "Saltbriar Terrace",
+    "Quarrystep Lane",
+    "Bellwether Yard",
+)
 
 STAFF = (
     StaffMember("admin", f"admin@{EMAIL_DOMAIN}", "Maren Tollerby", "admin"),
     StaffMember("coordinator", f"coordinator@{EMAIL_DOMAIN}", "Juno Aberwyth", "coordinator"),
     StaffMember("reviewer1", f"reviewer.one@{EMAIL_DOMAIN}", "Kit Ravensmoric", "reviewer"),
     StaffMember("reviewer2", f"reviewer.two@{EMAIL_DOMAIN}", "Sable Quendasby", "reviewer"),
-    StaffMember("adjudicator", f"adjudicator@{EMAIL_DOMAIN}", "Ottilie Fenwyth", "reviewer",
-                is_adjudicator=True),
+    StaffMember(
+        "adjudicator", f"adjudicator@{EMAIL_DOMAIN}", "Ottilie Fenwyth", "reviewer", is_adjudicator=True
+    ),
     StaffMember("lead", f"lead@{EMAIL_DOMAIN}", "Dorian Paskmarle", "lead"),
 )
 
@@ -327,8 +546,6 @@ CHARACTER = {
 
 # ---------------------------------------------------------------------------------------
 # Helpers
-
-
 
 
 def _zone() -> zoneinfo.ZoneInfo:
@@ -388,9 +605,13 @@ class _Builder:
         names = " and ".join(given) + f" {fam}"
         street = str(self.rng.choice(STREETS))
         number = int(self.rng.integers(1, 140))
-        return Contact(names=names, address=f"{number} {street}, {TOWN}",
-                       phone=f"0100 555 {int(self.rng.integers(0, 10000)):04d}",
-                       email=f"{given[0].lower()}.{fam.lower()}@{EMAIL_DOMAIN}", access_notes=notes)
+        return Contact(
+            names=names,
+            address=f"{number} {street}, {TOWN}",
+            phone=f"0100 555 {int(self.rng.integers(0, 10000)):04d}",
+            email=f"{given[0].lower()}.{fam.lower()}@{EMAIL_DOMAIN}",
+            access_notes=notes,
+        )
 
     def event_id(self) -> str:
         self.event_seq += 1
@@ -401,8 +622,14 @@ class _Builder:
 # The plan
 
 
-def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
-               starts_on: dt.date | None = None, now: dt.datetime | None = None) -> Plan:
+def build_plan(
+    *,
+    seed: int = 1,
+    homes: int = 36,
+    weeks: int = 10,
+    starts_on: dt.date | None = None,
+    now: dt.datetime | None = None,
+) -> Plan:
     """The whole demo pilot for ``homes`` installed homes over ``weeks`` weeks, from ``seed``."""
     if not MIN_HOMES <= homes <= MAX_HOMES:
         raise ValueError(f"The demo needs between {MIN_HOMES} and {MAX_HOMES} homes; got {homes}.")
@@ -423,8 +650,10 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
     withdraw_at = local_time((start + dt.timedelta(days=0.6 * days)).date(), 15.5)
     works_from = local_time((start + dt.timedelta(days=0.3 * days)).date(), 0.0)
     works = (works_from, min(end, works_from + dt.timedelta(days=14)))
-    rollout = (local_time((start + dt.timedelta(days=0.5 * days)).date(), 3.0),
-               local_time((start + dt.timedelta(days=0.5 * days + 3)).date(), 3.0))
+    rollout = (
+        local_time((start + dt.timedelta(days=0.5 * days)).date(), 3.0),
+        local_time((start + dt.timedelta(days=0.5 * days + 3)).date(), 3.0),
+    )
 
     keys, traits = _assign_traits(rng, homes)
     roles = {role: role for role in ROLES}
@@ -438,8 +667,12 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
         # Alternate the models so that both are in every home mix; the draw keeps the spread uneven.
         model = model or HARDWARE_MODELS[(serial_n + int(rng.random() < 0.3)) % 2]
         wave = rollout[int(rng.integers(0, 2))]
-        spec = DeviceSpec(serial=f"{model.replace('-', '')}-{serial_n:04d}", hardware_model=model,
-                          clock_offset_s=0.0, upgrade_at=wave)
+        spec = DeviceSpec(
+            serial=f"{model.replace('-', '')}-{serial_n:04d}",
+            hardware_model=model,
+            clock_offset_s=0.0,
+            upgrade_at=wave,
+        )
         b.devices.append(spec)
         return spec
 
@@ -454,8 +687,9 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
             recruited = start + dt.timedelta(days=0.1 * days)
         else:
             assert install_day is not None
-            installed_at = local_time((start + dt.timedelta(days=install_day)).date(),
-                                      float(rng.uniform(9.5, 16.0)))
+            installed_at = local_time(
+                (start + dt.timedelta(days=install_day)).date(), float(rng.uniform(9.5, 16.0))
+            )
             if installed_at < start:
                 installed_at = start + dt.timedelta(hours=10)
             recruited = start - dt.timedelta(days=float(rng.uniform(21.0, 28.0)))
@@ -464,12 +698,18 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
         consent_step = next(s for s in steps if s.state == "consented")
         notes = _access_notes(key, tr)
         hh = Household(
-            key=key, character=CHARACTER.get(key, _general_character(tr, dwelling)), traits=tr,
-            dwelling=dwelling, occupants=occupants, steps=steps,
-            consent=ConsentTerms("C-2.1", consent_step.at.astimezone(_zone()).date(), True,
-                                 60 if i % 7 == 3 else 120),
+            key=key,
+            character=CHARACTER.get(key, _general_character(tr, dwelling)),
+            traits=tr,
+            dwelling=dwelling,
+            occupants=occupants,
+            steps=steps,
+            consent=ConsentTerms(
+                "C-2.1", consent_step.at.astimezone(_zone()).date(), True, 60 if i % 7 == 3 else 120
+            ),
             contact=b.contact(notes, 1 if "aged_75" in tr else 2),
-            erase_at=withdraw_at + dt.timedelta(days=1) if key == "erased" else None)
+            erase_at=withdraw_at + dt.timedelta(days=1) if key == "erased" else None,
+        )
         b.households.append(hh)
 
         # Devices: one per home, a second one in every sixth ordinary home.
@@ -481,19 +721,25 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
         b.placements.append(Placement(dev.serial, key, room, installed_at, removed))
         if key == "mover_from":
             mover_serial = dev.serial
-            b.placements.append(Placement(dev.serial, "mover_to", "living_room",
-                                          _round_s(move_at + dt.timedelta(days=1)), None))
+            b.placements.append(
+                Placement(
+                    dev.serial, "mover_to", "living_room", _round_s(move_at + dt.timedelta(days=1)), None
+                )
+            )
         if key == "piano":
             skewed_serial = dev.serial
         if key.startswith("home-") and i % 6 == 5:
             other = "kitchen" if room != "kitchen" else "landing"
             second = new_device()
-            b.placements.append(Placement(second.serial, key, other,
-                                          installed_at + dt.timedelta(minutes=12), None))
+            b.placements.append(
+                Placement(second.serial, key, other, installed_at + dt.timedelta(minutes=12), None)
+            )
 
     # The skewed clock.
-    b.devices = [DeviceSpec(d.serial, d.hardware_model, CLOCK_SKEW_S, d.upgrade_at)
-                 if d.serial == skewed_serial else d for d in b.devices]
+    b.devices = [
+        DeviceSpec(d.serial, d.hardware_model, CLOCK_SKEW_S, d.upgrade_at) if d.serial == skewed_serial else d
+        for d in b.devices
+    ]
 
     _plan_outages(b, rng, days)
     listening = _listening(b)
@@ -507,12 +753,28 @@ def build_plan(*, seed: int = 1, homes: int = 36, weeks: int = 10,
     beats = {d.serial: _beats_for(b, d) for d in b.devices}
     _assign_extras(b, homes)
 
-    return Plan(seed=seed, homes=homes, weeks=weeks, starts_on=starts_on, start=start, end=end,
-                staff=STAFF, households=tuple(b.households), devices=tuple(b.devices),
-                placements=tuple(b.placements), outages=tuple(b.outages), beats=beats,
-                detections=tuple(b.detections), staged=tuple(b.staged), quota=_quota(homes),
-                roles=roles, mover_serial=mover_serial, move_at=_round_s(move_at),
-                skewed_serial=skewed_serial, works=works)
+    return Plan(
+        seed=seed,
+        homes=homes,
+        weeks=weeks,
+        starts_on=starts_on,
+        start=start,
+        end=end,
+        staff=STAFF,
+        households=tuple(b.households),
+        devices=tuple(b.devices),
+        placements=tuple(b.placements),
+        outages=tuple(b.outages),
+        beats=beats,
+        detections=tuple(b.detections),
+        staged=tuple(b.staged),
+        quota=_quota(homes),
+        roles=roles,
+        mover_serial=mover_serial,
+        move_at=_round_s(move_at),
+        skewed_serial=skewed_serial,
+        works=works,
+    )
 
 
 def _assign_traits(rng: np.random.Generator, homes: int) -> tuple[list[str], dict[str, frozenset[str]]]:
@@ -525,13 +787,13 @@ def _assign_traits(rng: np.random.Generator, homes: int) -> tuple[list[str], dic
     traits["dog"].add("dog")
     traits["erased"].update({"infant", "children"})
     traits["mover_to"].add("infant")
-    general = keys[len(ROLES):]
+    general = keys[len(ROLES) :]
     order = [str(k) for k in rng.permutation(general)]
 
     def take(n: int, trait: str) -> None:
         have = sum(trait in t for t in traits.values())
         pool = [k for k in order if trait not in traits[k]]
-        for k in pool[:max(0, n - have)]:
+        for k in pool[: max(0, n - have)]:
             traits[k].add(trait)
         order.sort(key=lambda k: len(traits[k]))  # spread traits over homes
 
@@ -565,19 +827,28 @@ def _room(rng: np.random.Generator, tr: frozenset[str]) -> str:
 
 
 def _general_character(tr: frozenset[str], dwelling: str) -> str:
-    bits = {"infant": "a baby", "children": "school-age children", "dog": "a dog", "cat": "a cat",
-            "aged_75": "a resident over 75", "instrument": "a guitar player",
-            "major_road": "a busy road outside", "flight_path": "planes overhead"}
+    bits = {
+        "infant": "a baby",
+        "children": "school-age children",
+        "dog": "a dog",
+        "cat": "a cat",
+        "aged_75": "a resident over 75",
+        "instrument": "a guitar player",
+        "major_road": "a busy road outside",
+        "flight_path": "planes overhead",
+    }
     have = [v for k, v in bits.items() if k in tr]
     return f"{dwelling.capitalize()}" + (" with " + ", ".join(have) if have else ", quiet household")
 
 
 def _access_notes(key: str, tr: frozenset[str]) -> str:
-    notes = {"cockatoo": "The cockatoo flies free in the living room: close doors behind you.",
-             "dog": "Two terriers; they bark at the bell but are friendly.",
-             "building": "Scaffolding next door; use the side gate.",
-             "road": "Park on the side street, not on the ring road.",
-             "piano": "Visits after 4 pm clash with piano practice."}
+    notes = {
+        "cockatoo": "The cockatoo flies free in the living room: close doors behind you.",
+        "dog": "Two terriers; they bark at the bell but are friendly.",
+        "building": "Scaffolding next door; use the side gate.",
+        "road": "Park on the side street, not on the ring road.",
+        "piano": "Visits after 4 pm clash with piano practice.",
+    }
     if key in notes:
         return notes[key]
     if "dog" in tr:
@@ -587,24 +858,36 @@ def _access_notes(key: str, tr: frozenset[str]) -> str:
     return ""
 
 
-def _steps_for(rng: np.random.Generator, key: str, recruited: dt.datetime, installed_at: dt.datetime,
-               move_at: dt.datetime, withdraw_at: dt.datetime) -> tuple[StateStep, ...]:
+def _steps_for(
+    rng: np.random.Generator,
+    key: str,
+    recruited: dt.datetime,
+    installed_at: dt.datetime,
+    move_at: dt.datetime,
+    withdraw_at: dt.datetime,
+) -> tuple[StateStep, ...]:
     if key == "mover_to":
         screened = recruited + dt.timedelta(days=1)
-        consented = max(screened + dt.timedelta(hours=12),
-                        move_at - dt.timedelta(days=float(rng.uniform(1.5, 3.0))))
+        consented = max(
+            screened + dt.timedelta(hours=12), move_at - dt.timedelta(days=float(rng.uniform(1.5, 3.0)))
+        )
     else:
         screened = recruited + dt.timedelta(days=float(rng.uniform(4.0, 8.0)))
         consented = installed_at - dt.timedelta(days=float(rng.uniform(3.0, 9.0)))
         consented = max(consented, screened + dt.timedelta(days=1))
-    steps = [StateStep(_round_s(recruited), "candidate", "Answered the pilot's letter"),
-             StateStep(_round_s(screened), "screened", "Phone screening done"),
-             StateStep(_round_s(consented), "consented", "Consent form C-2.1 signed"),
-             StateStep(installed_at, "installed", None),
-             StateStep(_round_s(installed_at + dt.timedelta(hours=20)), "active", "First day of listening")]
+    steps = [
+        StateStep(_round_s(recruited), "candidate", "Answered the pilot's letter"),
+        StateStep(_round_s(screened), "screened", "Phone screening done"),
+        StateStep(_round_s(consented), "consented", "Consent form C-2.1 signed"),
+        StateStep(installed_at, "installed", None),
+        StateStep(_round_s(installed_at + dt.timedelta(hours=20)), "active", "First day of listening"),
+    ]
     if key == "mover_from":
-        steps.append(StateStep(move_at, "paused", "Household away until after the pilot; device moved",
-                               listening=False))
+        steps.append(
+            StateStep(
+                move_at, "paused", "Household away until after the pilot; device moved", listening=False
+            )
+        )
     if key == "erased":
         steps.append(StateStep(withdraw_at, "withdrawn", "Household asked to leave and to be erased"))
     return tuple(steps)
@@ -634,8 +917,9 @@ def _plan_outages(b: _Builder, rng: np.random.Generator, days: float) -> None:
             day -= dt.timedelta(days=(day.weekday() - 4) % 7)  # a Friday
             s, e = local_time(day, 18.0), local_time(day + dt.timedelta(days=3), 8.0)
             if s > p.installed_at and e < b.end:
-                b.outages.append(Outage(p.serial, _round_s(s), _round_s(e),
-                                        "router unplugged for the weekend"))
+                b.outages.append(
+                    Outage(p.serial, _round_s(s), _round_s(e), "router unplugged for the weekend")
+                )
     # Overlapping outages of one device merge into one.
     merged: list[Outage] = []
     for o in sorted(b.outages, key=lambda o: (o.serial, o.started_at)):
@@ -682,9 +966,15 @@ def _firmware_at(b: _Builder, serial: str, at: dt.datetime) -> str:
     return FIRMWARE_NEW if spec.upgrade_at is not None and at >= spec.upgrade_at else FIRMWARE_OLD
 
 
-def _place_event(b: _Builder, windows: list[_Window], hours: Sequence[tuple[float, float]], *,
-                 weekdays_only: bool = False, within: tuple[dt.datetime, dt.datetime] | None = None,
-                 tries: int = 30) -> tuple[dt.datetime, _Window] | None:
+def _place_event(
+    b: _Builder,
+    windows: list[_Window],
+    hours: Sequence[tuple[float, float]],
+    *,
+    weekdays_only: bool = False,
+    within: tuple[dt.datetime, dt.datetime] | None = None,
+    tries: int = 30,
+) -> tuple[dt.datetime, _Window] | None:
     rng = b.rng
     if not windows:
         return None
@@ -710,17 +1000,38 @@ def _place_event(b: _Builder, windows: list[_Window], hours: Sequence[tuple[floa
     return None
 
 
-def _add_detection(b: _Builder, src: Source, t: dt.datetime, w: _Window, *, staged_key: str | None = None,
-                   private: bool = False) -> None:
+def _add_detection(
+    b: _Builder,
+    src: Source,
+    t: dt.datetime,
+    w: _Window,
+    *,
+    staged_key: str | None = None,
+    private: bool = False,
+) -> None:
     fw = _firmware_at(b, w.serial, t)
     rng = b.rng
-    b.detections.append(Detection(
-        event_id=b.event_id(), serial=w.serial, home_key=w.home_key, sound_class=src.sound_class,
-        sound=src.sound, score=_score(rng, fw, src.score), at=t,
-        received_delay_s=round(float(rng.uniform(1.5, 25.0)), 1), firmware=fw, truth_label=src.label,
-        truth_cause=src.cause, truth_resemblance=src.resemblance, source=src.key,
-        clip_seed=int(rng.integers(0, 2**31 - 1)), staged_key=staged_key, private=private,
-        ambiguous=src.key in ("tv", "dog") and rng.random() < 0.12))
+    b.detections.append(
+        Detection(
+            event_id=b.event_id(),
+            serial=w.serial,
+            home_key=w.home_key,
+            sound_class=src.sound_class,
+            sound=src.sound,
+            score=_score(rng, fw, src.score),
+            at=t,
+            received_delay_s=round(float(rng.uniform(1.5, 25.0)), 1),
+            firmware=fw,
+            truth_label=src.label,
+            truth_cause=src.cause,
+            truth_resemblance=src.resemblance,
+            source=src.key,
+            clip_seed=int(rng.integers(0, 2**31 - 1)),
+            staged_key=staged_key,
+            private=private,
+            ambiguous=src.key in ("tv", "dog") and rng.random() < 0.12,
+        )
+    )
 
 
 def _home_sources(hh: Household) -> list[str]:
@@ -729,15 +1040,20 @@ def _home_sources(hh: Household) -> list[str]:
         keys += ["dog", "dog_glass"]
     if "infant" in hh.traits:
         keys.append("cry")
-    extra = {"cockatoo": ["cockatoo"], "road": ["road"], "piano": ["piano"],
-             "building": ["works", "works_smoke"]}.get(hh.key, [])
+    extra = {
+        "cockatoo": ["cockatoo"],
+        "road": ["road"],
+        "piano": ["piano"],
+        "building": ["works", "works_smoke"],
+    }.get(hh.key, [])
     if "major_road" in hh.traits and hh.key != "road":
         extra.append("road_light")
     return keys + extra
 
 
-def _plan_sources(b: _Builder, listening: list[_Window], works: tuple[dt.datetime, dt.datetime],
-                  days: float) -> None:
+def _plan_sources(
+    b: _Builder, listening: list[_Window], works: tuple[dt.datetime, dt.datetime], days: float
+) -> None:
     rng = b.rng
     models = {d.serial: d.hardware_model for d in b.devices}
     for hh in b.households:
@@ -775,12 +1091,15 @@ def _plan_sources(b: _Builder, listening: list[_Window], works: tuple[dt.datetim
 def _plan_one_offs(b: _Builder, listening: list[_Window]) -> None:
     """Burnt toast setting off the alarm, a dropped glass, and two private conversations."""
     rng = b.rng
-    ordinary = ([h for h in b.households if h.key.startswith("home-")]
-                or [h for h in b.households if h.key not in ("cockatoo", "erased", "mover_from")])
+    ordinary = [h for h in b.households if h.key.startswith("home-")] or [
+        h for h in b.households if h.key not in ("cockatoo", "erased", "mover_from")
+    ]
     kitchens = [h for h in ordinary if any(w.room == "kitchen" for w in _windows_of(listening, h.key))]
     pool = kitchens or ordinary
-    picks = [(SOURCES["toast"], h) for h in (pool[int(i)] for i in rng.choice(len(pool), min(3, len(pool)),
-                                                                                  replace=False))]
+    picks = [
+        (SOURCES["toast"], h)
+        for h in (pool[int(i)] for i in rng.choice(len(pool), min(3, len(pool)), replace=False))
+    ]
     picks.append((SOURCES["dropped_glass"], ordinary[int(rng.integers(0, len(ordinary)))]))
     for src, hh in picks:
         placed = _place_event(b, _windows_of(listening, hh.key), src.hours)
@@ -798,7 +1117,7 @@ def _ensure_heard(b: _Builder, listening: list[_Window], keys: Sequence[str], at
     """The stories of the moved device and the erased home need alerts, whatever the draws gave."""
     for key in keys:
         have = sum(d.home_key == key for d in b.detections)
-        for src_key in ("door", "tv", "vacuum")[:max(0, at_least - have)]:
+        for src_key in ("door", "tv", "vacuum")[: max(0, at_least - have)]:
             src = SOURCES[src_key]
             placed = _place_event(b, _windows_of(listening, key), src.hours, tries=200)
             if placed:
@@ -836,11 +1155,15 @@ def _ensure_ambiguous(b: _Builder, at_least: int = 2) -> None:
 def _plan_staged(b: _Builder, listening: list[_Window], homes: int) -> None:
     """Test sounds played by the coordinator in about a third of the homes; some are missed."""
     rng = b.rng
-    eligible = [h for h in b.households
-                if h.key not in ("erased", "mover_from", "mover_to") and _windows_of(listening, h.key)]
+    eligible = [
+        h
+        for h in b.households
+        if h.key not in ("erased", "mover_from", "mover_to") and _windows_of(listening, h.key)
+    ]
     count = max(2, round(homes / 3))
-    chosen = [eligible[int(i)] for i in sorted(rng.choice(len(eligible), min(count, len(eligible)),
-                                                          replace=False))]
+    chosen = [
+        eligible[int(i)] for i in sorted(rng.choice(len(eligible), min(count, len(eligible)), replace=False))
+    ]
     classes = list(SOUND_CLASSES)
     n = 0
     planned: list[tuple[Household, str, dt.datetime, _Window]] = []
@@ -864,11 +1187,30 @@ def _plan_staged(b: _Builder, listening: list[_Window], homes: int) -> None:
         text, level, length, latency, _p = STAGED_SOURCES[cls]
         duration = float(rng.uniform(*length))
         key = f"staged-{n:02d}"
-        b.staged.append(StagedTest(key, hh.key, cls, t, _round_s(t + dt.timedelta(seconds=duration)) +
-                                   dt.timedelta(seconds=1), text, level, detected))
+        b.staged.append(
+            StagedTest(
+                key,
+                hh.key,
+                cls,
+                t,
+                _round_s(t + dt.timedelta(seconds=duration)) + dt.timedelta(seconds=1),
+                text,
+                level,
+                detected,
+            )
+        )
         if detected:
-            src = Source("staged", {"smoke_alarm": "smoke_alarm_t3"}.get(cls, cls), cls, "confirmed",
-                         None, None, 0.0, ((10.0, 16.0),), score=(6.0, 1.3))
+            src = Source(
+                "staged",
+                {"smoke_alarm": "smoke_alarm_t3"}.get(cls, cls),
+                cls,
+                "confirmed",
+                None,
+                None,
+                0.0,
+                ((10.0, 16.0),),
+                score=(6.0, 1.3),
+            )
             lag = dt.timedelta(seconds=round(float(rng.uniform(*latency)), 1))
             _add_detection(b, src, t + lag, w, staged_key=key)
 
@@ -922,18 +1264,27 @@ def _assign_extras(b: _Builder, homes: int) -> None:
         if kind in ("screened_elderly", "declined", "consented"):
             steps.append(StateStep(_round_s(t0 + dt.timedelta(days=5)), "screened", "Phone screening done"))
         if kind == "declined":
-            steps.append(StateStep(_round_s(t0 + dt.timedelta(days=9)), "declined",
-                                   "Decided not to take part"))
+            steps.append(
+                StateStep(_round_s(t0 + dt.timedelta(days=9)), "declined", "Decided not to take part")
+            )
         consent = None
         if kind == "consented":
             at = _round_s(t0 + dt.timedelta(days=8))
             steps.append(StateStep(at, "consented", "Consent form C-2.1 signed; installation booked"))
             consent = ConsentTerms("C-2.1", at.astimezone(_zone()).date(), True, 120)
         dwelling, occupants = _dwelling(rng, ftr)
-        b.households.append(Household(
-            key=f"extra-{i + 1:02d}", character=_general_character(ftr, dwelling), traits=ftr,
-            dwelling=dwelling, occupants=occupants, steps=tuple(steps), consent=consent,
-            contact=b.contact(_access_notes("", ftr), 1 if "aged_75" in ftr else 2)))
+        b.households.append(
+            Household(
+                key=f"extra-{i + 1:02d}",
+                character=_general_character(ftr, dwelling),
+                traits=ftr,
+                dwelling=dwelling,
+                occupants=occupants,
+                steps=tuple(steps),
+                consent=consent,
+                contact=b.contact(_access_notes("", ftr), 1 if "aged_75" in ftr else 2),
+            )
+        )
 
 
 def _quota(homes: int) -> tuple[QuotaLine, ...]:

@@ -60,9 +60,15 @@ MARKER_KIND = "trialhouse-demo"
 
 # The plan's trait keys onto the default attribute catalogue (server.households.catalogue).
 TRAIT_ATTRIBUTES = {
-    "infant": "infant_under_2", "children": "children_2_to_12", "dog": "dog", "cat": "cat",
-    "other_pets": "other_pets", "aged_75": "resident_75_plus", "instrument": "instrument_played",
-    "building_works": "building_works_nearby", "major_road": "major_road_50m",
+    "infant": "infant_under_2",
+    "children": "children_2_to_12",
+    "dog": "dog",
+    "cat": "cat",
+    "other_pets": "other_pets",
+    "aged_75": "resident_75_plus",
+    "instrument": "instrument_played",
+    "building_works": "building_works_nearby",
+    "major_road": "major_road_50m",
     "flight_path": "under_flight_path",
 }
 DWELLING_ATTRIBUTE = "dwelling_type"
@@ -93,8 +99,8 @@ class SeedResult:
     settings: Settings
     plan: Plan
     sign_ins: tuple[SignIn, ...]
-    home_codes: dict[str, str]                 # household key -> home code
-    alert_ids: dict[str, int]                  # event_id -> alert id
+    home_codes: dict[str, str]  # household key -> home code
+    alert_ids: dict[str, int]  # event_id -> alert id
     timings: dict[str, float] = field(default_factory=dict)
     counts: dict[str, int] = field(default_factory=dict)
 
@@ -139,8 +145,10 @@ def prepare_data_dir(data_dir: Path) -> None:
         raise DemoError(f"{data_dir} exists and is not a directory; choose another --data-dir.")
     if data_dir.is_dir() and any(data_dir.iterdir()):
         if read_marker(data_dir) is None:
-            raise DemoError(f"{data_dir} is not empty and is not a demo's data directory; the demo will not "
-                            "overwrite it. Choose another --data-dir (or an empty one).")
+            raise DemoError(
+                f"{data_dir} is not empty and is not a demo's data directory; the demo will not "
+                "overwrite it. Choose another --data-dir (or an empty one)."
+            )
         for child in data_dir.iterdir():
             if child.is_dir() and not child.is_symlink():
                 shutil.rmtree(child)
@@ -189,10 +197,15 @@ class _ClipMaker:
         self.pool: cf.ProcessPoolExecutor | None = None
         self.futures: dict[int, cf.Future[tuple[bytes, float]]] = {}
         self.submitted = 0
-        if (workers > 0 and len(self.jobs) >= 16 and threading.active_count() == 1
-                and "fork" in multiprocessing.get_all_start_methods()):
-            self.pool = cf.ProcessPoolExecutor(max_workers=workers,
-                                               mp_context=multiprocessing.get_context("fork"))
+        if (
+            workers > 0
+            and len(self.jobs) >= 16
+            and threading.active_count() == 1
+            and "fork" in multiprocessing.get_all_start_methods()
+        ):
+            self.pool = cf.ProcessPoolExecutor(
+                max_workers=workers, mp_context=multiprocessing.get_context("fork")
+            )
             self._top_up(0)
 
     def _top_up(self, i: int) -> None:
@@ -227,9 +240,16 @@ class ReplayClock:
         return self.at
 
 
-def seed_demo(data_dir: Path, *, seed: int = 1, homes: int = 36, weeks: int = 10,
-              starts_on: dt.date | None = None, clip_workers: int = 1,
-              progress: Callable[[str], None] | None = None) -> SeedResult:
+def seed_demo(
+    data_dir: Path,
+    *,
+    seed: int = 1,
+    homes: int = 36,
+    weeks: int = 10,
+    starts_on: dt.date | None = None,
+    clip_workers: int = 1,
+    progress: Callable[[str], None] | None = None,
+) -> SeedResult:
     """Create the demo in ``data_dir`` (see ``prepare_data_dir``) and return what was made."""
     say = progress or (lambda _msg: None)
     t0, c0 = time.perf_counter(), time.process_time()
@@ -243,43 +263,62 @@ def seed_demo(data_dir: Path, *, seed: int = 1, homes: int = 36, weeks: int = 10
         timings: dict[str, float] = {"plan_and_schema": time.perf_counter() - t0}
 
         t = time.perf_counter()
-        sign_ins = tuple(SignIn(m.role, m.email, f"{m.key}-{secrets.token_hex(4)}", m.name, m.is_adjudicator)
-                         for m in plan.staff)
+        sign_ins = tuple(
+            SignIn(m.role, m.email, f"{m.key}-{secrets.token_hex(4)}", m.name, m.is_adjudicator)
+            for m in plan.staff
+        )
         with session_scope(factory) as s:
             register = _seed_register(s, plan, sign_ins)
         timings["register"] = time.perf_counter() - t
-        say(f"register: {len(plan.households)} homes, {len(plan.devices)} devices, "
-            f"{len(plan.staged)} staged tests ({timings['register']:.1f} s)")
+        say(
+            f"register: {len(plan.households)} homes, {len(plan.devices)} devices, "
+            f"{len(plan.staged)} staged tests ({timings['register']:.1f} s)"
+        )
 
         t = time.perf_counter()
         engine.dispose()  # no open SQLite handle goes across the clip worker's fork
         alert_ids, requests = _replay_devices(settings, plan, register.tokens, clip_workers)
         timings["device_traffic"] = time.perf_counter() - t
-        say(f"devices: {requests} requests over HTTP, {len(alert_ids)} alerts "
-            f"({timings['device_traffic']:.1f} s)")
+        say(
+            f"devices: {requests} requests over HTTP, {len(alert_ids)} alerts "
+            f"({timings['device_traffic']:.1f} s)"
+        )
 
         t = time.perf_counter()
         with session_scope(factory) as s:
             counts = _seed_staff_work(s, settings, plan, register.home_codes, alert_ids, seed)
         timings["review_and_erasure"] = time.perf_counter() - t
-        say(f"review: {counts['verdicts']} verdicts, {counts['adjudicated']} adjudicated, "
-            f"{counts['pending']} still pending; erasure done ({timings['review_and_erasure']:.1f} s)")
+        say(
+            f"review: {counts['verdicts']} verdicts, {counts['adjudicated']} adjudicated, "
+            f"{counts['pending']} still pending; erasure done ({timings['review_and_erasure']:.1f} s)"
+        )
     finally:
         engine.dispose()
     timings["total"] = time.perf_counter() - t0
     timings["cpu"] = time.process_time() - c0
     counts["requests"] = requests
     result = SeedResult(settings, plan, sign_ins, register.home_codes, alert_ids, timings, counts)
-    _write_marker(Path(data_dir), {
-        "kind": MARKER_KIND, "complete": True, "seed": seed, "homes": homes, "weeks": weeks,
-        "starts_on": plan.starts_on.isoformat(), "seeded_at": dt.datetime.now(dt.UTC).isoformat(),
-        "seconds": round(timings["total"], 2), "timings": {k: round(v, 2) for k, v in timings.items()},
-        "counts": counts,
-        "sign_ins": [s.__dict__ for s in sign_ins]})
+    _write_marker(
+        Path(data_dir),
+        {
+            "kind": MARKER_KIND,
+            "complete": True,
+            "seed": seed,
+            "homes": homes,
+            "weeks": weeks,
+            "starts_on": plan.starts_on.isoformat(),
+            "seeded_at": dt.datetime.now(dt.UTC).isoformat(),
+            "seconds": round(timings["total"], 2),
+            "timings": {k: round(v, 2) for k, v in timings.items()},
+            "counts": counts,
+            "sign_ins": [s.__dict__ for s in sign_ins],
+        },
+    )
     return result
 
 
 # --- the register ----------------------------------------------------------------------------
+
 
 @dataclass
 class _Register:
@@ -305,13 +344,26 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
     users: dict[str, User] = {}
     for member, sign_in in zip(plan.staff, sign_ins, strict=True):
         users[member.key] = auth_service.create_user(
-            s, email=member.email, name=member.name, role=member.role, password=sign_in.password,
-            is_adjudicator=member.is_adjudicator, actor="demo")
+            s,
+            email=member.email,
+            name=member.name,
+            role=member.role,
+            password=sign_in.password,
+            is_adjudicator=member.is_adjudicator,
+            actor="demo",
+        )
     admin, coordinator = users["admin"], users["coordinator"]
     trial = trials_service.create_trial(
-        s, code=scenario.TRIAL_CODE, name=scenario.TRIAL_NAME, starts_on=plan.starts_on, ends_on=plan.ends_on,
-        sound_classes=list(scenario.SOUND_CLASSES), fa_target_per_home_month=1.0, timezone=scenario.TIMEZONE,
-        actor=admin)
+        s,
+        code=scenario.TRIAL_CODE,
+        name=scenario.TRIAL_NAME,
+        starts_on=plan.starts_on,
+        ends_on=plan.ends_on,
+        sound_classes=list(scenario.SOUND_CLASSES),
+        fa_target_per_home_month=1.0,
+        timezone=scenario.TIMEZONE,
+        actor=admin,
+    )
     households_service.seed_default_catalogue(s, trial)
     for line in plan.quota:
         key: str | None = None
@@ -320,60 +372,114 @@ def _seed_register(s: Session, plan: Plan, sign_ins: tuple[SignIn, ...]) -> _Reg
             key, value = DWELLING_ATTRIBUTE, line.trait.split(":", 1)[1]
         elif line.trait is not None:
             key, value = TRAIT_ATTRIBUTES[line.trait], True
-        quota_service.add_target(s, trial, attribute_key=key, value=value, min_count=line.min_count,
-                                      max_count=line.max_count, label=line.label, actor=coordinator)
+        quota_service.add_target(
+            s,
+            trial,
+            attribute_key=key,
+            value=value,
+            min_count=line.min_count,
+            max_count=line.max_count,
+            label=line.label,
+            actor=coordinator,
+        )
 
     tokens: dict[str, str] = {}
     devices: dict[str, Device] = {}
     for spec in plan.devices:
         device, token = devices_service.register_device(
-            s, serial=spec.serial, trial=trial, hardware_model=spec.hardware_model, actor=coordinator,
-            heartbeat_interval_s=scenario.HEARTBEAT_INTERVAL_S)
+            s,
+            serial=spec.serial,
+            trial=trial,
+            hardware_model=spec.hardware_model,
+            actor=coordinator,
+            heartbeat_interval_s=scenario.HEARTBEAT_INTERVAL_S,
+        )
         devices[spec.serial], tokens[spec.serial] = device, token
 
     homes: dict[str, Home] = {}
     today = plan.end.date() + dt.timedelta(days=1)
     for hh in plan.households:
         first = hh.steps[0]
-        home = households_service.create_home(s, trial, attributes=_attributes(s, trial, hh),
-                                              actor=coordinator, at=first.at, note=first.note)
+        home = households_service.create_home(
+            s, trial, attributes=_attributes(s, trial, hh), actor=coordinator, at=first.at, note=first.note
+        )
         homes[hh.key] = home
         c = hh.contact
-        households_service.set_contact(s, home, actor=coordinator, names=c.names, address=c.address,
-                                       phone=c.phone, email=c.email, access_notes=c.access_notes)
+        households_service.set_contact(
+            s,
+            home,
+            actor=coordinator,
+            names=c.names,
+            address=c.address,
+            phone=c.phone,
+            email=c.email,
+            access_notes=c.access_notes,
+        )
         for step in hh.steps[1:]:
             if step.state == "consented":
                 assert hh.consent is not None
                 households_service.record_consent(
-                    s, home, form_version=hh.consent.form_version, consented_on=hh.consent.consented_on,
-                    staff_may_listen=hh.consent.staff_may_listen, retention_days=hh.consent.retention_days,
-                    actor=coordinator, mark_consented=True, at=step.at, today=today)
+                    s,
+                    home,
+                    form_version=hh.consent.form_version,
+                    consented_on=hh.consent.consented_on,
+                    staff_may_listen=hh.consent.staff_may_listen,
+                    retention_days=hh.consent.retention_days,
+                    actor=coordinator,
+                    mark_consented=True,
+                    at=step.at,
+                    today=today,
+                )
             elif step.state == "installed":
-                for p in sorted((p for p in plan.placements if p.home_key == hh.key),
-                                key=lambda p: p.installed_at):
-                    households_service.install_device(s, home=home, device=devices[p.serial], room=p.room,
-                                                      installed_at=p.installed_at, actor=coordinator)
+                for p in sorted(
+                    (p for p in plan.placements if p.home_key == hh.key), key=lambda p: p.installed_at
+                ):
+                    households_service.install_device(
+                        s,
+                        home=home,
+                        device=devices[p.serial],
+                        room=p.room,
+                        installed_at=p.installed_at,
+                        actor=coordinator,
+                    )
             else:
-                households_service.transition(s, home, step.state, actor=coordinator, at=step.at,
-                                              note=step.note, listening=step.listening)
+                households_service.transition(
+                    s,
+                    home,
+                    step.state,
+                    actor=coordinator,
+                    at=step.at,
+                    note=step.note,
+                    listening=step.listening,
+                )
                 if step.state == "paused":
                     for p in plan.placements:
                         if p.home_key == hh.key and p.removed_at is not None and p.removed_at <= step.at:
                             inst = installations_service.current_installation(s, devices[p.serial])
                             if inst is not None and inst.home_id == home.id:
-                                installations_service.remove_installation(s, inst, removed_at=p.removed_at,
-                                                                       actor=coordinator)
+                                installations_service.remove_installation(
+                                    s, inst, removed_at=p.removed_at, actor=coordinator
+                                )
     for st in plan.staged:
-        staged_service.log_staged_event(s, home=homes[st.home_key], sound_class=st.sound_class,
-                                            started_at=st.started_at, ended_at=st.ended_at, source=st.source,
-                                            level_db=st.level_db, actor=coordinator)
+        staged_service.log_staged_event(
+            s,
+            home=homes[st.home_key],
+            sound_class=st.sound_class,
+            started_at=st.started_at,
+            ended_at=st.ended_at,
+            source=st.source,
+            level_db=st.level_db,
+            actor=coordinator,
+        )
     return _Register(users, {k: h.code for k, h in homes.items()}, tokens)
 
 
 # --- the devices -----------------------------------------------------------------------------
 
-def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
-                    clip_workers: int) -> tuple[dict[str, int], int]:
+
+def _replay_devices(
+    settings: Settings, plan: Plan, tokens: dict[str, str], clip_workers: int
+) -> tuple[dict[str, int], int]:
     """Every heartbeat and alert of the plan, in server-time order, over HTTP to the real app."""
     from fastapi.testclient import TestClient
 
@@ -384,8 +490,10 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
     events: list[tuple[dt.datetime, int, str, int]] = []
     for serial, beats in plan.beats.items():
         events += [(b.at, 0, serial, i) for i, b in enumerate(beats)]
-    events += [(d.at + dt.timedelta(seconds=d.received_delay_s), 1, d.serial, i)
-               for i, d in enumerate(plan.detections)]
+    events += [
+        (d.at + dt.timedelta(seconds=d.received_delay_s), 1, d.serial, i)
+        for i, d in enumerate(plan.detections)
+    ]
     events.sort()
 
     clips = _ClipMaker(plan.detections, clip_workers)
@@ -395,24 +503,37 @@ def _replay_devices(settings: Settings, plan: Plan, tokens: dict[str, str],
     alert_ids: dict[str, int] = {}
     try:
         with TestClient(app, base_url="http://demo.invalid") as client:
-            sims = {serial: DeviceSimulator("http://demo.invalid", token, client=client,  # type: ignore[arg-type]
-                                        retries=0)
-                    for serial, token in tokens.items()}
+            sims = {
+                serial: DeviceSimulator(
+                    "http://demo.invalid",
+                    token,
+                    client=client,  # type: ignore[arg-type]
+                    retries=0,
+                )
+                for serial, token in tokens.items()
+            }
             for at, kind, serial, i in events:
                 clock.at = at
                 sim = sims[serial]
                 if kind == 0:
                     beat = plan.beats[serial][i]
-                    r = sim.heartbeat(listening=beat.listening, sent_at=at + offsets[serial],
-                                      firmware=beat.firmware)
+                    r = sim.heartbeat(
+                        listening=beat.listening, sent_at=at + offsets[serial], firmware=beat.firmware
+                    )
                     if r.status != 200:
                         raise DemoError(f"heartbeat of {serial} at {at.isoformat()} got {r.status}: {r.body}")
                     continue
                 clip, offset = clips.get(i)
                 d = plan.detections[i]
-                r = sim.send_alert(clip=clip, sound_class=d.sound_class, score=d.score,
-                                   detected_at=d.at + offsets[serial], clip_offset_s=offset,
-                                   event_id=d.event_id, firmware=d.firmware)
+                r = sim.send_alert(
+                    clip=clip,
+                    sound_class=d.sound_class,
+                    score=d.score,
+                    detected_at=d.at + offsets[serial],
+                    clip_offset_s=offset,
+                    event_id=d.event_id,
+                    firmware=d.firmware,
+                )
                 if r.status != 201:
                     raise DemoError(f"alert {d.event_id} of {serial} got {r.status}: {r.body}")
                 alert_ids[d.event_id] = int(r.body["alert_id"])
@@ -429,8 +550,13 @@ _NOTES = {
     "road": "Lorry passing outside.",
     "chat": "Household conversation; flagged as private.",
 }
-_WRONG_CAUSE = {"tv_radio_music": "speech", "dog": "cat_other_pet", "door_knock_impact": "kitchen_cooking",
-                "appliance": "other_alarm_beep", "cat_other_pet": "other_child_sound"}
+_WRONG_CAUSE = {
+    "tv_radio_music": "speech",
+    "dog": "cat_other_pet",
+    "door_knock_impact": "kitchen_cooking",
+    "appliance": "other_alarm_beep",
+    "cat_other_pet": "other_child_sound",
+}
 
 
 @dataclass(order=True)
@@ -456,8 +582,14 @@ def _other_answer(d: Detection, rng: np.random.Generator) -> tuple[str, str | No
     return ("false_alarm", cause, "unrelated" if d.truth_resemblance == "resembles" else "resembles")
 
 
-def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dict[str, str],
-                     alert_ids: dict[str, int], seed: int) -> dict[str, int]:
+def _seed_staff_work(
+    s: Session,
+    settings: Settings,
+    plan: Plan,
+    home_codes: dict[str, str],
+    alert_ids: dict[str, int],
+    seed: int,
+) -> dict[str, int]:
     """Verdicts (first, blind second, one adjudication), gold checks and the erasure, in time order."""
     rng = np.random.default_rng([seed, 7])
     users = {u.email: u for u in s.scalars(select(User))}
@@ -494,8 +626,15 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
 
     by_alert: dict[int, Detection] = {alert_ids[d.event_id]: d for d in plan.detections}
     first_of: dict[int, int] = {}
-    counts = {"verdicts": 0, "second": 0, "disagreements": 0, "adjudicated": 0, "unsure": 0, "private": 0,
-              "gold": 0}
+    counts = {
+        "verdicts": 0,
+        "second": 0,
+        "disagreements": 0,
+        "adjudicated": 0,
+        "unsure": 0,
+        "private": 0,
+        "gold": 0,
+    }
     unsure_left = 3
     erased_home_id: int | None = None
     while tasks:
@@ -504,9 +643,18 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
             home = households_service.get_home(s, home_codes[erased_key])
             erased_home_id = home.id
             ticket = erasure.erasure_ticket(settings.resolved_secret_key(), home, now=task.at)
-            erasure.erase_home(s, ClipStore(settings.clip_dir), home, secret=settings.resolved_secret_key(),
-                               ticket=ticket, confirm_code=home.code, actor=coordinator, now=task.at,
-                               cache_dir=settings.cache_dir, note="Asked by phone; confirmed in writing.")
+            erasure.erase_home(
+                s,
+                ClipStore(settings.clip_dir),
+                home,
+                secret=settings.resolved_secret_key(),
+                ticket=ticket,
+                confirm_code=home.code,
+                actor=coordinator,
+                now=task.at,
+                cache_dir=settings.cache_dir,
+                note="Asked by phone; confirmed in writing.",
+            )
             continue
         if task.kind == "gold":
             counts["gold"] = _mark_gold(s, plan, alert_ids, coordinator)
@@ -529,9 +677,18 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
                 if rng.random() < 0.02:
                     label, cause, resemblance = _other_answer(d, rng)
             note = _NOTES.get(d.source) if rng.random() < 0.3 or d.private else None
-            review_service.record_verdict(s, reviewer=reviewer, alert_id=alert.id, label=label, cause=cause,
-                                          resemblance=resemblance, note=note, private=d.private, key=key,
-                                          now=task.at)
+            review_service.record_verdict(
+                s,
+                reviewer=reviewer,
+                alert_id=alert.id,
+                label=label,
+                cause=cause,
+                resemblance=resemblance,
+                note=note,
+                private=d.private,
+                key=key,
+                now=task.at,
+            )
             counts["verdicts"] += 1
             counts["private"] += int(d.private)
             first_of[alert.id] = reviewer.id
@@ -540,12 +697,21 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
                 if at < plan.end:
                     push(at, "second", alert.id)
         elif task.kind == "second":
-            reviewer = next(r for r in second_pool[int(rng.integers(0, 2)):] + second_pool
-                            if r.id != first_of[alert.id])
+            reviewer = next(
+                r for r in second_pool[int(rng.integers(0, 2)) :] + second_pool if r.id != first_of[alert.id]
+            )
             disagree = rng.random() < 0.2
             label, cause, resemblance = _other_answer(d, rng) if disagree else _answer(d)
-            review_service.record_verdict(s, reviewer=reviewer, alert_id=alert.id, label=label, cause=cause,
-                                          resemblance=resemblance, key=key, now=task.at)
+            review_service.record_verdict(
+                s,
+                reviewer=reviewer,
+                alert_id=alert.id,
+                label=label,
+                cause=cause,
+                resemblance=resemblance,
+                key=key,
+                now=task.at,
+            )
             counts["verdicts"] += 1
             counts["second"] += 1
             if alert.state == AlertState.adjudication:
@@ -556,9 +722,16 @@ def _seed_staff_work(s: Session, settings: Settings, plan: Plan, home_codes: dic
                     push(at, "adjudicate", alert.id)
         elif task.kind == "adjudicate":
             label, cause, resemblance = _answer(d)
-            review_service.adjudicate(s, adjudicator=adjudicator, alert_id=alert.id, label=label,
-                                      cause=cause, resemblance=resemblance,
-                                      note="Listened twice; the spectrogram settles it.", now=task.at)
+            review_service.adjudicate(
+                s,
+                adjudicator=adjudicator,
+                alert_id=alert.id,
+                label=label,
+                cause=cause,
+                resemblance=resemblance,
+                note="Listened twice; the spectrogram settles it.",
+                now=task.at,
+            )
     s.flush()
     states = dict(s.execute(select(Alert.state, func.count(Alert.id)).group_by(Alert.state)).all())
     counts["pending"] = int(states.get(AlertState.pending, 0))
@@ -574,11 +747,13 @@ def _mark_gold(s: Session, plan: Plan, alert_ids: dict[str, int], coordinator: U
     staged = [d for d in plan.detections if d.staged_key is not None]
     screech = [d for d in plan.detections if d.source == "cockatoo"]
     for d, label, cause in [(d, "confirmed", None) for d in staged[:2]] + [
-            (d, "false_alarm", "cat_other_pet") for d in screech[:1]]:
+        (d, "false_alarm", "cat_other_pet") for d in screech[:1]
+    ]:
         alert = s.get(Alert, alert_ids[d.event_id])
         if alert is None or alert.state != AlertState.final or alert.final_label != label:
             continue
-        review_service.mark_gold(s, user=coordinator, alert_id=alert.id, expected_label=label,
-                                 expected_cause=cause)
+        review_service.mark_gold(
+            s, user=coordinator, alert_id=alert.id, expected_label=label, expected_cause=cause
+        )
         marked += 1
     return marked

@@ -77,52 +77,85 @@ async def _read_limited(request: Request, limit: int) -> bytes:
     return bytes(body)
 
 
-@router.post("/api/v1/heartbeats", response_model=HeartbeatOut, tags=["device"],
-             summary="Report that the device is alive and whether it is listening",
-             responses={401: {}, 403: {}, 422: {}})
-async def post_heartbeat(request: Request, device: CurrentDevice, session: DbSession,
-                         settings: SettingsDep) -> JSONResponse:
+@router.post(
+    "/api/v1/heartbeats",
+    response_model=HeartbeatOut,
+    tags=["device"],
+    summary="Report that the device is alive and whether it is listening",
+    responses={401: {}, 403: {}, 422: {}},
+)
+async def post_heartbeat(
+    request: Request, device: CurrentDevice, session: DbSession, settings: SettingsDep
+) -> JSONResponse:
     raw = await _read_limited(request, HEARTBEAT_BODY_LIMIT)
     try:
         beat = HeartbeatIn.model_validate_json(raw)
     except ValidationError as exc:
         err = exc.errors()[0]
         loc = ".".join(str(p) for p in err.get("loc", ()))
-        raise ValidationFailed(f"Heartbeat field '{loc}': {err.get('msg')}." if loc
-                               else f"Heartbeat body: {err.get('msg')}.", field=loc or None,
-                               code="invalid_request") from exc
+        raise ValidationFailed(
+            f"Heartbeat field '{loc}': {err.get('msg')}." if loc else f"Heartbeat body: {err.get('msg')}.",
+            field=loc or None,
+            code="invalid_request",
+        ) from exc
 
     def work() -> JSONResponse:
-        received_at, next_s = service.record_heartbeat(session, device=device, beat=beat, settings=settings,
-                                                        now=request.app.state.clock())
+        received_at, next_s = service.record_heartbeat(
+            session, device=device, beat=beat, settings=settings, now=request.app.state.clock()
+        )
         session.commit()
         # A ready response: FastAPI would otherwise validate and encode the model a second time.
-        return JSONResponse(HeartbeatOut(received_at=received_at, next_heartbeat_s=next_s).model_dump(mode="json"))
+        return JSONResponse(
+            HeartbeatOut(received_at=received_at, next_heartbeat_s=next_s).model_dump(mode="json")
+        )
 
     return await _run_device_work(request, work)
 
 
-@router.post("/api/v1/alerts", status_code=201, response_model=AlertReceipt, tags=["device"],
-             summary="Upload one alert: multipart with a 'meta' JSON part and a 'clip' audio part",
-             responses={200: {"model": AlertReceipt, "description": "A resend of a stored alert"},
-                        400: {}, 401: {}, 403: {}, 409: {}, 413: {}, 415: {}, 422: {}})
-async def post_alert(request: Request, device: CurrentDevice, session: DbSession, settings: SettingsDep,
-                     store: ClipStoreDep) -> JSONResponse:
+@router.post(
+    "/api/v1/alerts",
+    status_code=201,
+    response_model=AlertReceipt,
+    tags=["device"],
+    summary="Upload one alert: multipart with a 'meta' JSON part and a 'clip' audio part",
+    responses={
+        200: {"model": AlertReceipt, "description": "A resend of a stored alert"},
+        400: {},
+        401: {},
+        403: {},
+        409: {},
+        413: {},
+        415: {},
+        422: {},
+    },
+)
+async def post_alert(
+    request: Request, device: CurrentDevice, session: DbSession, settings: SettingsDep, store: ClipStoreDep
+) -> JSONResponse:
     boundary_of(request.headers.get("content-type", ""))  # 415 before reading anything
     length = request.headers.get("content-length")
     if length and length.isdigit() and int(length) > settings.max_clip_bytes + 512 * 1024:
-        raise ClipTooLarge(f"The upload is {int(length)} bytes; a clip may be at most "
-                           f"{settings.max_clip_bytes} bytes.")
-    upload = await read_alert_upload(request.stream(), request.headers.get("content-type", ""), store,
-                                     settings.max_clip_bytes)
+        raise ClipTooLarge(
+            f"The upload is {int(length)} bytes; a clip may be at most {settings.max_clip_bytes} bytes."
+        )
+    upload = await read_alert_upload(
+        request.stream(), request.headers.get("content-type", ""), store, settings.max_clip_bytes
+    )
     clip = upload.clip
     assert clip is not None and upload.meta is not None
     meta = upload.meta
 
     def work() -> tuple[int, bool]:
         with clip:
-            result = service.ingest_alert(session, store=store, settings=settings, device=device,
-                                          meta_raw=meta, upload=clip, now=request.app.state.clock())
+            result = service.ingest_alert(
+                session,
+                store=store,
+                settings=settings,
+                device=device,
+                meta_raw=meta,
+                upload=clip,
+                now=request.app.state.clock(),
+            )
             alert_id, duplicate = result.alert_id, result.duplicate
             session.commit()
         return alert_id, duplicate
@@ -133,42 +166,62 @@ async def post_alert(request: Request, device: CurrentDevice, session: DbSession
 
 # --- staff API --------------------------------------------------------------------------------
 
+
 @router.get("/api/v1/devices", response_model=list[DeviceOut], tags=["staff"])
-def api_list_devices(session: DbSession, settings: SettingsDep,
-                     user: User = Depends(require("devices.view"))) -> list[DeviceOut]:
+def api_list_devices(
+    session: DbSession, settings: SettingsDep, user: User = Depends(require("devices.view"))
+) -> list[DeviceOut]:
     return views.device_rows(session, settings)
 
 
-@router.post("/api/v1/devices", response_model=DeviceCreated, status_code=201, tags=["staff"],
-             summary="Register a device; the token is shown once in this response")
-def api_register_device(body: DeviceIn, session: DbSession, settings: SettingsDep,
-                        user: User = Depends(require("devices.manage"))) -> DeviceCreated:
-    trial = (trials_service.get_trial(session, body.trial) if body.trial
-             else trials_service.ensure_default_trial(session, settings.default_trial_code,
-                                                      settings.default_sound_classes))
-    device, token = service.register_device(session, serial=body.serial, trial=trial,
-                                            hardware_model=body.hardware_model, actor=user)
+@router.post(
+    "/api/v1/devices",
+    response_model=DeviceCreated,
+    status_code=201,
+    tags=["staff"],
+    summary="Register a device; the token is shown once in this response",
+)
+def api_register_device(
+    body: DeviceIn, session: DbSession, settings: SettingsDep, user: User = Depends(require("devices.manage"))
+) -> DeviceCreated:
+    trial = (
+        trials_service.get_trial(session, body.trial)
+        if body.trial
+        else trials_service.ensure_default_trial(
+            session, settings.default_trial_code, settings.default_sound_classes
+        )
+    )
+    device, token = service.register_device(
+        session, serial=body.serial, trial=trial, hardware_model=body.hardware_model, actor=user
+    )
     session.commit()
     row = views.device_row(session, settings, device)
     return DeviceCreated(**row.model_dump(), token=token)
 
 
 @router.post("/api/v1/devices/{serial}/revoke", response_model=DeviceOut, tags=["staff"])
-def api_revoke_device(serial: str, session: DbSession, settings: SettingsDep,
-                      user: User = Depends(require("devices.manage"))) -> DeviceOut:
+def api_revoke_device(
+    serial: str, session: DbSession, settings: SettingsDep, user: User = Depends(require("devices.manage"))
+) -> DeviceOut:
     device = service.revoke_device(session, serial, actor=user)
     session.commit()
     return views.device_row(session, settings, device)
 
 
 @router.get("/api/v1/alerts", response_model=list[AlertOut], tags=["staff"])
-def api_list_alerts(session: DbSession, limit: int = Query(100, ge=1, le=1000), offset: int = Query(0, ge=0),
-                    user: User = Depends(require("alerts.view"))) -> list[AlertOut]:
+def api_list_alerts(
+    session: DbSession,
+    limit: int = Query(100, ge=1, le=1000),
+    offset: int = Query(0, ge=0),
+    user: User = Depends(require("alerts.view")),
+) -> list[AlertOut]:
     return views.alert_rows(session, service.list_alerts(session, limit=limit, offset=offset))
 
 
 @router.get("/api/v1/alerts/{alert_id}", response_model=AlertOut, tags=["staff"])
-def api_get_alert(alert_id: int, session: DbSession, user: User = Depends(require("alerts.view"))) -> AlertOut:
+def api_get_alert(
+    alert_id: int, session: DbSession, user: User = Depends(require("alerts.view"))
+) -> AlertOut:
     return views.alert_rows(session, [service.get_alert(session, alert_id)])[0]
 
 
@@ -177,14 +230,20 @@ def _serve_clip(alert_id: int, session: Session, store: ClipStoreDep, user: User
     return FileResponse(path, media_type=media_type, headers={"Cache-Control": "private, no-store"})
 
 
-@router.get("/api/v1/alerts/{alert_id}/clip", tags=["staff"], response_class=FileResponse,
-            summary="The alert's audio as received; supports HTTP Range")
-def api_get_clip(alert_id: int, session: DbSession, store: ClipStoreDep,
-                 user: User = Depends(require("clips.listen"))) -> FileResponse:
+@router.get(
+    "/api/v1/alerts/{alert_id}/clip",
+    tags=["staff"],
+    response_class=FileResponse,
+    summary="The alert's audio as received; supports HTTP Range",
+)
+def api_get_clip(
+    alert_id: int, session: DbSession, store: ClipStoreDep, user: User = Depends(require("clips.listen"))
+) -> FileResponse:
     return _serve_clip(alert_id, session, store, user)
 
 
 @router.get("/clips/{alert_id}/audio", include_in_schema=False)
-def page_clip_audio(alert_id: int, session: DbSession, store: ClipStoreDep,
-                    user: User = Depends(require("clips.listen"))) -> FileResponse:
+def page_clip_audio(
+    alert_id: int, session: DbSession, store: ClipStoreDep, user: User = Depends(require("clips.listen"))
+) -> FileResponse:
     return _serve_clip(alert_id, session, store, user)

@@ -71,8 +71,13 @@ class Clip(Base):
 
     __tablename__ = "clip"
     __table_args__ = (
-        Index("ix_clip_sha256_live", "sha256", unique=True,
-              sqlite_where=text("erased_at IS NULL"), postgresql_where=text("erased_at IS NULL")),
+        Index(
+            "ix_clip_sha256_live",
+            "sha256",
+            unique=True,
+            sqlite_where=text("erased_at IS NULL"),
+            postgresql_where=text("erased_at IS NULL"),
+        ),
     )
 
     id: Mapped[int] = mapped_column(primary_key=True)
@@ -97,10 +102,10 @@ class Clip(Base):
 class AlertState:
     """Where an alert stands in review. Stored as plain strings."""
 
-    pending = "pending"            # waiting for a first verdict
+    pending = "pending"  # waiting for a first verdict
     second_review = "second_review"  # waiting for a blind second verdict
     adjudication = "adjudication"  # two verdicts disagree
-    final = "final"                # final_label is set
+    final = "final"  # final_label is set
 
     all = (pending, second_review, adjudication, final)
 
@@ -154,7 +159,8 @@ class Alert(Base):
     finalized_at: Mapped[dt.datetime | None] = mapped_column(UTCDateTime)
     private_flag: Mapped[bool] = mapped_column(default=False)
     private_flagged_by_id: Mapped[int | None] = mapped_column(
-        ForeignKey("user_account.id", ondelete="SET NULL"))
+        ForeignKey("user_account.id", ondelete="SET NULL")
+    )
 
     device: Mapped[Device] = relationship(lazy="joined")
     clip: Mapped[Clip] = relationship(lazy="joined")

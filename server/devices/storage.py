@@ -35,10 +35,16 @@ def check(session: Session, settings: Settings, *, verify_hashes: bool = True) -
                     h.update(chunk)
             if h.hexdigest() != rows[key].sha256:
                 corrupt.append(key)
-    return {"rows": len(rows), "files": len(files), "orphans": orphans, "missing": missing,
-            "corrupt": corrupt, "erased_rows": len(erased),
-            "erased_but_present": sorted((files & erased) - set(rows)),
-            "spools": store.stale_spools()}
+    return {
+        "rows": len(rows),
+        "files": len(files),
+        "orphans": orphans,
+        "missing": missing,
+        "corrupt": corrupt,
+        "erased_rows": len(erased),
+        "erased_but_present": sorted((files & erased) - set(rows)),
+        "spools": store.stale_spools(),
+    }
 
 
 def problems(report: dict[str, Any]) -> bool:
@@ -62,8 +68,14 @@ def repair(session: Session, settings: Settings, report: dict[str, Any]) -> dict
             removed.append(key)
     spools = store.remove_spools(report["spools"])
     if removed or spools:
-        audit.record(session, "cli", "storage.repair", "clip", None,
-                     {"orphans_removed": len(removed), "spools_removed": len(spools)})
+        audit.record(
+            session,
+            "cli",
+            "storage.repair",
+            "clip",
+            None,
+            {"orphans_removed": len(removed), "spools_removed": len(spools)},
+        )
     return {"orphans_removed": removed, "spools_removed": spools, "orphans_too_young": young}
 
 
@@ -74,8 +86,11 @@ def run_check(session: Session, settings: Settings, *, as_json: bool, fix: bool)
     fixed = repair(session, settings, report) if fix else None
     if fixed is not None:
         report["repair"] = fixed
-        after = dict(report, orphans=[k for k in report["orphans"] if k not in fixed["orphans_removed"]],
-                     spools=[k for k in report["spools"] if k not in fixed["spools_removed"]])
+        after = dict(
+            report,
+            orphans=[k for k in report["orphans"] if k not in fixed["orphans_removed"]],
+            spools=[k for k in report["spools"] if k not in fixed["spools_removed"]],
+        )
     else:
         after = report
     if as_json:

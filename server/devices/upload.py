@@ -43,15 +43,17 @@ def boundary_of(content_type: str) -> bytes:
     ctype, params = parse_options_header(content_type or "")
     if ctype != b"multipart/form-data":
         raise NotMultipart(
-            "Send the alert as multipart/form-data with a 'meta' part (JSON) and a 'clip' part (audio).")
+            "Send the alert as multipart/form-data with a 'meta' part (JSON) and a 'clip' part (audio)."
+        )
     boundary = params.get(b"boundary")
     if not boundary:
         raise MalformedMultipart("The multipart Content-Type has no boundary parameter.")
     return boundary
 
 
-async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, store: ClipStore,
-                            max_clip_bytes: int) -> AlertUpload:
+async def read_alert_upload(
+    stream: AsyncIterator[bytes], content_type: str, store: ClipStore, max_clip_bytes: int
+) -> AlertUpload:
     """Parse the body; the caller must ``discard()`` the clip spool when done."""
     boundary = boundary_of(content_type)
     result = AlertUpload()
@@ -95,9 +97,12 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
         name = state.name
         if name == "clip" and result.clip is not None:
             if result.clip.size + len(chunk) > max_clip_bytes:
-                errors.append(ClipTooLarge(
-                    f"The clip is larger than the limit of {max_clip_bytes / 1048576:.1f} MiB "
-                    f"({max_clip_bytes} bytes)."))
+                errors.append(
+                    ClipTooLarge(
+                        f"The clip is larger than the limit of {max_clip_bytes / 1048576:.1f} MiB "
+                        f"({max_clip_bytes} bytes)."
+                    )
+                )
                 return
             result.clip.write(chunk)
         elif name == "meta":
@@ -120,13 +125,19 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
     def on_end() -> None:
         state.ended = True
 
-    parser = MultipartParser(boundary, {
-        "on_end": on_end,
-        "on_part_begin": on_part_begin, "on_header_field": on_header_field,
-        "on_header_value": on_header_value, "on_header_end": on_header_end,
-        "on_headers_finished": on_headers_finished, "on_part_data": on_part_data,
-        "on_part_end": on_part_end,
-    })
+    parser = MultipartParser(
+        boundary,
+        {
+            "on_end": on_end,
+            "on_part_begin": on_part_begin,
+            "on_header_field": on_header_field,
+            "on_header_value": on_header_value,
+            "on_header_end": on_header_end,
+            "on_headers_finished": on_headers_finished,
+            "on_part_data": on_part_data,
+            "on_part_end": on_part_end,
+        },
+    )
     try:
         async for chunk in stream:
             if chunk:
@@ -152,13 +163,16 @@ async def read_alert_upload(stream: AsyncIterator[bytes], content_type: str, sto
         # a part that never ended may be incomplete, so none of it is used.
         if result.clip:
             result.clip.discard()
-        raise MalformedMultipart("The multipart body ends before its closing boundary; was the upload cut short?")
+        raise MalformedMultipart(
+            "The multipart body ends before its closing boundary; was the upload cut short?"
+        )
     if result.meta is None or result.clip is None:
         if result.clip:
             result.clip.discard()
         missing = [n for n, v in (("meta", result.meta), ("clip", result.clip)) if v is None]
         if not result.parts:
             raise MalformedMultipart("The multipart body holds no parts (is the boundary right?).")
-        raise InvalidRequest(f"The form has no '{missing[0]}' part; send 'meta' (JSON) and 'clip' (audio).",
-                             field=missing[0])
+        raise InvalidRequest(
+            f"The form has no '{missing[0]}' part; send 'meta' (JSON) and 'clip' (audio).", field=missing[0]
+        )
     return result

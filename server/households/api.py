@@ -141,9 +141,14 @@ def api_export_personal(
 
 
 async def _csv_body(request: Request) -> bytes:
-    if request.headers.get("content-type", "").startswith(("application/x-www-form-urlencoded", "multipart/")):
-        raise AppError("Send the CSV file itself as the body (Content-Type: text/csv), not a form.",
-                       code="unsupported_media_type", status=415)
+    if request.headers.get("content-type", "").startswith(
+        ("application/x-www-form-urlencoded", "multipart/")
+    ):
+        raise AppError(
+            "Send the CSV file itself as the body (Content-Type: text/csv), not a form.",
+            code="unsupported_media_type",
+            status=415,
+        )
     body = bytearray()
     async for chunk in request.stream():
         body.extend(chunk)

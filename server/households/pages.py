@@ -22,6 +22,7 @@ from server.trials import service as trials_service
 
 router = APIRouter(include_in_schema=False)
 
+
 def _traits(row_attrs: dict[str, Any], specs: list[Any]) -> list[str]:
     """A short reading of a home's answers: yes attributes by label, options and numbers with labels."""
     out = []

@@ -51,8 +51,6 @@ def _by_id(actor: Actor | None) -> int | None:
     return actor.id if isinstance(actor, User) else None
 
 
-
-
 # --- look-ups -----------------------------------------------------------------------------------
 
 
@@ -138,8 +136,9 @@ def timeline_of(session: Session, home: Home) -> list[tuple[HomeStateChange, Use
 
 
 def next_home_code(session: Session) -> str:
-    codes = session.scalars(select(Home.code).where(Home.code.like("H-%"))
-                            .execution_options(trialhouse_all_trials=True))  # unique in every trial
+    codes = session.scalars(
+        select(Home.code).where(Home.code.like("H-%")).execution_options(trialhouse_all_trials=True)
+    )  # unique in every trial
     numbers = [int(c[2:]) for c in codes if CODE_PATTERN.match(c)]
     return f"H-{(max(numbers, default=0) + 1):04d}"
 

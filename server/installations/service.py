@@ -341,8 +341,9 @@ def reattribute_alerts(session: Session, device_id: int) -> int:
     session.flush()  # a table-level read does not flush by itself
     a = _alert.c
     rows = session.execute(
-        select(a.id, a.detected_at, a.clock_skew_s, a.installation_id, a.home_id)
-        .where(a.device_id == device_id)
+        select(a.id, a.detected_at, a.clock_skew_s, a.installation_id, a.home_id).where(
+            a.device_id == device_id
+        )
     )
     changes = []
     for alert_id, detected_at, skew_s, installation_id, home_id in rows.all():

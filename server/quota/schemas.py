@@ -82,8 +82,7 @@ def quota_out(view: QuotaView) -> QuotaOut:
             for s in r.targets
         ],
         suggestions=[
-            SuggestionOut(code=s.code, state=s.state, helps=view.suggestion_labels(s))
-            for s in r.suggestions
+            SuggestionOut(code=s.code, state=s.state, helps=view.suggestion_labels(s)) for s in r.suggestions
         ],
         remaining_after={labels[k]: v for k, v in r.remaining_after.items()},
         rule=view.rule,

@@ -384,9 +384,15 @@ def get_adjudication(session: Session, *, adjudicator: User, alert_id: int) -> A
         )
     if alert.private_flag and not hears_private(adjudicator):
         raise PrivateContent("This clip was flagged as private content; only admins may listen to it.")
-    if not _settles_own(adjudicator) and session.scalar(
-        select(Verdict.id).where(Verdict.alert_id == alert.id, Verdict.reviewer_id == adjudicator.id).limit(1)
-    ) is not None:
+    if (
+        not _settles_own(adjudicator)
+        and session.scalar(
+            select(Verdict.id)
+            .where(Verdict.alert_id == alert.id, Verdict.reviewer_id == adjudicator.id)
+            .limit(1)
+        )
+        is not None
+    ):
         raise SameReviewer("You gave one of the verdicts on this clip; another adjudicator must settle it.")
     return AdjudicationCase(
         queue_item(session, alert), tuple(_verdict_views(session, [alert.id])[alert.id]), alert.private_flag

@@ -41,8 +41,7 @@ class Trial(Base):
     causes: Mapped[list[dict[str, Any]]] = mapped_column(default=lambda: [dict(c) for c in DEFAULT_CAUSES])
     second_review_share: Mapped[float] = mapped_column(Float, default=0.10)
     # Lifecycle states whose homes count toward the recruitment quota.
-    quota_states: Mapped[list[str]] = mapped_column(
-        default=lambda: ["consented", "installed", "active"])
+    quota_states: Mapped[list[str]] = mapped_column(default=lambda: ["consented", "installed", "active"])
     # Days to keep the clips of alerts with no home's consent behind them (unassigned alerts, or a
     # home with no consent on record); `trialhouse storage purge` removes them after that.
     unassigned_clip_retention_days: Mapped[int] = mapped_column(default=30, server_default="30")

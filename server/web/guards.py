@@ -134,12 +134,22 @@ class RequestGuard:
     to None for a route that caps its own body while streaming (device alert clips).
     """
 
-    SECURITY_HEADERS = (("x-content-type-options", "nosniff"), ("x-frame-options", "DENY"),
-                        ("referrer-policy", "same-origin"))
+    SECURITY_HEADERS = (
+        ("x-content-type-options", "nosniff"),
+        ("x-frame-options", "DENY"),
+        ("referrer-policy", "same-origin"),
+    )
 
-    def __init__(self, app: ASGIApp, *, routes_of: Any, max_body_bytes: int,
-                 body_limits: dict[tuple[str, str], int | None] | None = None,
-                 session_cookie: str = "trialhouse_session", template_dir: Path | None = None) -> None:
+    def __init__(
+        self,
+        app: ASGIApp,
+        *,
+        routes_of: Any,
+        max_body_bytes: int,
+        body_limits: dict[tuple[str, str], int | None] | None = None,
+        session_cookie: str = "trialhouse_session",
+        template_dir: Path | None = None,
+    ) -> None:
         self.app = app
         self.routes_of = routes_of
         self.max_body_bytes = max_body_bytes
@@ -259,7 +269,7 @@ _ERROR_STATUSES = {
     "413": "The body is over the limit: `body_too_large`",
     "422": "The input fails validation: `invalid_request`, `validation_failed` and the route's own codes",
     "503": "Storage cannot take writes now: `storage_full`, `database_read_only`, `clip_store_unavailable`, "
-           "`database_busy`, `database_unavailable`; the response carries Retry-After",
+    "`database_busy`, `database_unavailable`; the response carries Retry-After",
 }
 _UNSAFE = {"post", "put", "patch", "delete"}
 
@@ -276,8 +286,12 @@ def document_error_responses(app: Any) -> None:
         if app.openapi_schema is not None and app.openapi_schema.get("x-errors-documented"):
             return app.openapi_schema  # type: ignore[no-any-return]
         schema = default_openapi()
-        staff = {(m.lower(), path) for path, route in _iter_routes(app.routes) if _needs_capability(route)
-                 for m in (getattr(route, "methods", None) or ())}
+        staff = {
+            (m.lower(), path)
+            for path, route in _iter_routes(app.routes)
+            if _needs_capability(route)
+            for m in (getattr(route, "methods", None) or ())
+        }
         components = schema.setdefault("components", {}).setdefault("schemas", {})
         body_schema = errors.ErrorBody.model_json_schema(ref_template="#/components/schemas/{model}")
         components.update(body_schema.pop("$defs", {}))

@@ -86,8 +86,13 @@ def make_templates() -> Jinja2Templates:
     return templates
 
 
-def render(request: Request, name: str, context: dict[str, Any] | None = None, status_code: int = 200,
-           headers: dict[str, str] | None = None) -> Response:
+def render(
+    request: Request,
+    name: str,
+    context: dict[str, Any] | None = None,
+    status_code: int = 200,
+    headers: dict[str, str] | None = None,
+) -> Response:
     user = getattr(request.state, "user", None)
     ctx: dict[str, Any] = {
         "user": user,
@@ -96,5 +101,6 @@ def render(request: Request, name: str, context: dict[str, Any] | None = None, s
         "path": request.url.path,
     }
     ctx.update(context or {})
-    return request.app.state.templates.TemplateResponse(request, name, ctx, status_code=status_code,
-                                                        headers=headers)
+    return request.app.state.templates.TemplateResponse(
+        request, name, ctx, status_code=status_code, headers=headers
+    )

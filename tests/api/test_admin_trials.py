@@ -32,7 +32,9 @@ def test_admin_ticks_trials_and_the_limited_coordinator_loses_the_other_trial(st
     assert not re.search(r'id="trial-ASH-PILOT"[^>]*checked', page.text)
     token = csrf_of(admin, f"/admin/staff/{cid}")
     r = admin.post(
-        f"/admin/staff/{cid}/trials", data={"csrf_token": token, "trial": ["ASH-PILOT"]}, follow_redirects=False
+        f"/admin/staff/{cid}/trials",
+        data={"csrf_token": token, "trial": ["ASH-PILOT"]},
+        follow_redirects=False,
     )
     assert r.status_code == 303 and r.headers["location"].endswith("done=trials")
     page = admin.get(f"/admin/staff/{cid}")
@@ -72,14 +74,43 @@ def test_cli_limits_and_frees_an_account(tmp_path, capsys, monkeypatch) -> None:
     monkeypatch.delenv("TRIALHOUSE_DATABASE_URL", raising=False)
     monkeypatch.setenv("TRIALHOUSE_SECRET_KEY", "admin-trials-test-secret-" + "q" * 32)
     for code_ in ("BIRCH-1", "CEDAR-2"):
-        assert run(capsys, monkeypatch, "trial", "add", "--code", code_, "--name", code_,
-                   "--sound-classes", "smoke_alarm")[0] == 0
-    assert run(capsys, monkeypatch, "user", "add", "--email", "pia@example.test", "--role", "coordinator",
-               stdin="amber kettle lantern 42\n")[0] == 0
-    code, out, _ = run(capsys, monkeypatch, "user", "trials", "--email", "pia@example.test", "--trials", "cedar-2")
+        assert (
+            run(
+                capsys,
+                monkeypatch,
+                "trial",
+                "add",
+                "--code",
+                code_,
+                "--name",
+                code_,
+                "--sound-classes",
+                "smoke_alarm",
+            )[0]
+            == 0
+        )
+    assert (
+        run(
+            capsys,
+            monkeypatch,
+            "user",
+            "add",
+            "--email",
+            "pia@example.test",
+            "--role",
+            "coordinator",
+            stdin="amber kettle lantern 42\n",
+        )[0]
+        == 0
+    )
+    code, out, _ = run(
+        capsys, monkeypatch, "user", "trials", "--email", "pia@example.test", "--trials", "cedar-2"
+    )
     assert code == 0 and out.strip() == "user pia@example.test works on CEDAR-2"
     code, out, _ = run(capsys, monkeypatch, "user", "trials", "--email", "pia@example.test", "--trials", "")
     assert code == 0 and out.strip() == "user pia@example.test sees every trial"
-    code, _, err = run(capsys, monkeypatch, "user", "trials", "--email", "pia@example.test", "--trials", "NOPE")
+    code, _, err = run(
+        capsys, monkeypatch, "user", "trials", "--email", "pia@example.test", "--trials", "NOPE"
+    )
     assert code != 0 and "NOPE" in err
     assert [a for _, a in trail(d, "pia@example.test")].count("user.trials") == 2

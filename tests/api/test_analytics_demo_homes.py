@@ -101,7 +101,15 @@ def test_the_note_on_homes_matches_the_intervals_it_explains(seeded: seed.SeedRe
             notes += 1
             wide = f.home_rate.high > 1.25 * f.disturbance_rate.high
             assert ("are close" in f.homes_note) == (not wide and "not alike" not in f.homes_note), (
-                f.sound_class, f.scope, f.homes_note, f.home_rate.high, f.disturbance_rate.high)
+                f.sound_class,
+                f.scope,
+                f.homes_note,
+                f.home_rate.high,
+                f.disturbance_rate.high,
+            )
             if "reaches higher" in f.homes_note:
-                assert wide and f"{f.home_rate.events} false alarms over {f.home_rate.homes} homes" in f.homes_note
+                assert (
+                    wide
+                    and f"{f.home_rate.events} false alarms over {f.home_rate.homes} homes" in f.homes_note
+                )
     assert notes >= 2

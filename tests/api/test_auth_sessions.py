@@ -52,8 +52,11 @@ def _signed_in(app, user: User, password: str = factories.PASSWORD) -> TestClien
 
 
 def _row_of(session: Session, cookie: str) -> StaffSession:
-    row = session.scalar(select(StaffSession).where(StaffSession.token_hash == hashlib.sha256(cookie.encode()).hexdigest())
-                         .execution_options(populate_existing=True))
+    row = session.scalar(
+        select(StaffSession)
+        .where(StaffSession.token_hash == hashlib.sha256(cookie.encode()).hexdigest())
+        .execution_options(populate_existing=True)
+    )
     assert row is not None
     return row
 
@@ -76,11 +79,14 @@ def test_a_cookie_copied_before_sign_out_is_refused_after(app, staff_client, ses
         r = copy.get("/account", follow_redirects=False)
         assert r.status_code == 303 and r.headers["location"].startswith("/login")
         # The answer also deletes the dead cookie.
-        assert any(h.startswith(f"{COOKIE_NAME}=") and "Max-Age=0" in h for h in r.headers.get_list("set-cookie"))
+        assert any(
+            h.startswith(f"{COOKIE_NAME}=") and "Max-Age=0" in h for h in r.headers.get_list("set-cookie")
+        )
     row = _row_of(session, cookie)
     assert row.revoked_at is not None and row.end_reason == "signed_out"
-    events = session.scalars(select(AuditEvent).where(AuditEvent.action == "auth.sign_out",
-                                                      AuditEvent.object_id == str(c.user.id))).all()
+    events = session.scalars(
+        select(AuditEvent).where(AuditEvent.action == "auth.sign_out", AuditEvent.object_id == str(c.user.id))
+    ).all()
     assert len(events) == 1 and events[0].actor_id == c.user.id
 
 
@@ -93,8 +99,12 @@ def test_each_sign_in_gets_its_own_session_and_the_front_page_knows_it(app, sess
         assert r.status_code == 303 and r.headers["location"] == "/review"
         with TestClient(app, raise_server_exceptions=False) as anon:
             assert anon.get("/", follow_redirects=False).headers["location"] == "/login"
-        live = auth_service.live_sessions(session, user.id, now=dt.datetime.now(dt.UTC),
-                                          limits=__import__("server.deps", fromlist=["x"]).session_limits(app.state.settings))
+        live = auth_service.live_sessions(
+            session,
+            user.id,
+            now=dt.datetime.now(dt.UTC),
+            limits=__import__("server.deps", fromlist=["x"]).session_limits(app.state.settings),
+        )
         assert len(live) == 2
     finally:
         a.__exit__(None, None, None)
@@ -107,16 +117,26 @@ def test_changing_ones_password_ends_the_other_sessions(app, session: Session) -
     try:
         old_a = a.cookies.get(COOKIE_NAME)
         new_password = "plum orchard at dusk 7"
-        r = a.post("/account/password", data={"current_password": factories.PASSWORD, "new_password": new_password,
-                                              "repeat_password": new_password, "csrf_token": csrf_of(a)},
-                   follow_redirects=False)
+        r = a.post(
+            "/account/password",
+            data={
+                "current_password": factories.PASSWORD,
+                "new_password": new_password,
+                "repeat_password": new_password,
+                "csrf_token": csrf_of(a),
+            },
+            follow_redirects=False,
+        )
         assert r.status_code == 303 and r.headers["location"] == "/account?done=password"
         assert a.cookies.get(COOKIE_NAME) != old_a  # a fresh session for the browser that changed it
         assert a.get("/api/v1/account/tokens", headers=JSON).status_code == 200
         assert b.get("/api/v1/account/tokens", headers=JSON).status_code == 401
         assert _row_of(session, old_a).end_reason == "password_changed"
-        [ev] = session.scalars(select(AuditEvent).where(AuditEvent.action == "user.password_set",
-                                                        AuditEvent.object_id == str(user.id))).all()
+        [ev] = session.scalars(
+            select(AuditEvent).where(
+                AuditEvent.action == "user.password_set", AuditEvent.object_id == str(user.id)
+            )
+        ).all()
         assert ev.detail["sessions_ended"] == 2 and new_password not in str(ev.detail)
         with TestClient(app, raise_server_exceptions=False) as c:
             sign_in(c, user.email, new_password)
@@ -129,13 +149,22 @@ def test_a_wrong_current_password_or_a_weak_new_one_changes_nothing(app, session
     user, _ = factories.make_user(session, role="lead")
     a = _signed_in(app, user)
     try:
-        cases = [("not my password at all", "a fine new password 9", "a fine new password 9", "current_password"),
-                 (factories.PASSWORD, "Password1234", "Password1234", "commonly used"),
-                 (factories.PASSWORD, "short one", "short one", "at least 12"),
-                 (factories.PASSWORD, "a fine new password 9", "a fine new password 8", "differ")]
+        cases = [
+            ("not my password at all", "a fine new password 9", "a fine new password 9", "current_password"),
+            (factories.PASSWORD, "Password1234", "Password1234", "commonly used"),
+            (factories.PASSWORD, "short one", "short one", "at least 12"),
+            (factories.PASSWORD, "a fine new password 9", "a fine new password 8", "differ"),
+        ]
         for current, new, repeat, expect in cases:
-            r = a.post("/account/password", data={"current_password": current, "new_password": new,
-                                                  "repeat_password": repeat, "csrf_token": csrf_of(a)})
+            r = a.post(
+                "/account/password",
+                data={
+                    "current_password": current,
+                    "new_password": new,
+                    "repeat_password": repeat,
+                    "csrf_token": csrf_of(a),
+                },
+            )
             assert r.status_code == 422, (expect, r.text)
             assert expect in r.text or expect == "current_password"
             assert r.headers["cache-control"] == "no-store"
@@ -186,16 +215,25 @@ def test_set_password_checks_the_rule_and_ends_sessions(app, session: Session) -
         with TestClient(app, raise_server_exceptions=False) as c:
             page = c.get("/login")
             csrf = re.search(r'name="csrf_token" value="([^"]+)"', page.text).group(1)  # type: ignore[union-attr]
-            r = c.post("/login", data={"email": user.email, "password": "granite lantern ferry", "csrf_token": csrf},
-                       follow_redirects=False)
+            r = c.post(
+                "/login",
+                data={"email": user.email, "password": "granite lantern ferry", "csrf_token": csrf},
+                follow_redirects=False,
+            )
             assert r.status_code == 303 and r.headers["location"] == "/account"
             r = c.get("/review")
             assert r.status_code == 403 and "choose your own on your account page" in r.text
             assert c.get("/account").status_code == 200
-            r = c.post("/account/password", data={"current_password": "granite lantern ferry",
-                                                  "new_password": "my own choice of words",
-                                                  "repeat_password": "my own choice of words",
-                                                  "csrf_token": csrf_of(c)}, follow_redirects=False)
+            r = c.post(
+                "/account/password",
+                data={
+                    "current_password": "granite lantern ferry",
+                    "new_password": "my own choice of words",
+                    "repeat_password": "my own choice of words",
+                    "csrf_token": csrf_of(c),
+                },
+                follow_redirects=False,
+            )
             assert r.status_code == 303
             assert c.get("/review").status_code == 200
     finally:
@@ -247,8 +285,11 @@ def test_csrf_token_lives_in_the_session_row(app, session: Session) -> None:  # 
     user, _ = factories.make_user(session, role="lead")
     with TestClient(app, raise_server_exceptions=False) as c:
         before = re.search(r'name="csrf_token" value="([^"]+)"', c.get("/login").text).group(1)  # type: ignore[union-attr]
-        r = c.post("/login", data={"email": user.email, "password": factories.PASSWORD, "csrf_token": before},
-                   follow_redirects=False)
+        r = c.post(
+            "/login",
+            data={"email": user.email, "password": factories.PASSWORD, "csrf_token": before},
+            follow_redirects=False,
+        )
         assert r.status_code == 303
         row = _row_of(session, c.cookies.get(COOKIE_NAME))
         assert csrf_of(c) == row.csrf_token != before
@@ -275,6 +316,12 @@ def test_long_dead_session_rows_are_purged_at_the_next_sign_in(app, session: Ses
     clock.advance(days=2)
     c = _signed_in(app, user)
     c.__exit__(None, None, None)
-    assert session.scalar(select(StaffSession).where(
-        StaffSession.token_hash == hashlib.sha256(old_cookie.encode()).hexdigest())) is None
+    assert (
+        session.scalar(
+            select(StaffSession).where(
+                StaffSession.token_hash == hashlib.sha256(old_cookie.encode()).hexdigest()
+            )
+        )
+        is None
+    )
     assert len(session.scalars(select(StaffSession).where(StaffSession.user_id == user.id)).all()) == 2

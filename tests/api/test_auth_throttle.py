@@ -48,10 +48,14 @@ def hashes(monkeypatch: pytest.MonkeyPatch) -> list[str]:
 def _try(c: TestClient, email: str, password: str):  # type: ignore[no-untyped-def]
     page = c.get("/login")
     csrf = re.search(r'name="csrf_token" value="([^"]+)"', page.text).group(1)  # type: ignore[union-attr]
-    return c.post("/login", data={"email": email, "password": password, "csrf_token": csrf}, follow_redirects=False)
+    return c.post(
+        "/login", data={"email": email, "password": password, "csrf_token": csrf}, follow_redirects=False
+    )
 
 
-def test_account_is_blocked_after_five_failures_before_any_hashing(app, session: Session, hashes: list[str]) -> None:  # type: ignore[no-untyped-def]
+def test_account_is_blocked_after_five_failures_before_any_hashing(
+    app, session: Session, hashes: list[str]
+) -> None:  # type: ignore[no-untyped-def]
     clock = Clock()
     app.state.auth_clock = clock
     user, _ = factories.make_user(session, role="reviewer")
@@ -65,7 +69,9 @@ def test_account_is_blocked_after_five_failures_before_any_hashing(app, session:
         assert "Too many failed sign-ins" in r.text and "30 seconds" in r.text
         assert len(hashes) == 5  # refused before Argon2
         clock.advance(seconds=29)
-        assert _try(c, user.email.upper(), factories.PASSWORD).headers["retry-after"] == "1"  # e-mail in any case
+        assert (
+            _try(c, user.email.upper(), factories.PASSWORD).headers["retry-after"] == "1"
+        )  # e-mail in any case
         clock.advance(seconds=1)
         # The block has run out; one more failure doubles it.
         assert _try(c, user.email, WRONG).status_code == 401
@@ -90,8 +96,11 @@ def test_unknown_accounts_count_too_and_cost_the_same_hash(app, session: Session
         assert len(hashes) == 5
 
 
-def test_address_is_blocked_across_accounts_and_a_success_does_not_clear_it(app, session: Session,  # type: ignore[no-untyped-def]
-                                                                            hashes: list[str]) -> None:
+def test_address_is_blocked_across_accounts_and_a_success_does_not_clear_it(
+    app,
+    session: Session,  # type: ignore[no-untyped-def]
+    hashes: list[str],
+) -> None:
     clock = Clock()
     app.state.auth_clock = clock
     app.state.settings.sign_in_address_limit = 8
@@ -105,15 +114,17 @@ def test_address_is_blocked_across_accounts_and_a_success_does_not_clear_it(app,
         n = len(hashes)
         r = _try(c, mine.email, factories.PASSWORD)
         assert r.status_code == 429 and r.headers["retry-after"] == "30" and len(hashes) == n
-    rows = {r.kind: r for r in session.scalars(select(SignInStrikes)
-                                               .execution_options(populate_existing=True))}
+    rows = {
+        r.kind: r for r in session.scalars(select(SignInStrikes).execution_options(populate_existing=True))
+    }
     assert rows["address"].failures == 8 and rows["address"].blocked_until == T0 + dt.timedelta(seconds=30)
     # Counts age out after the window.
     clock.advance(seconds=app.state.settings.sign_in_window_s + 1)
     with TestClient(app, raise_server_exceptions=False) as c:
         assert _try(c, users[1].email, WRONG).status_code == 401
-    row = session.scalar(select(SignInStrikes).where(SignInStrikes.kind == "address")
-                         .execution_options(populate_existing=True))
+    row = session.scalar(
+        select(SignInStrikes).where(SignInStrikes.kind == "address").execution_options(populate_existing=True)
+    )
     assert row is not None and row.failures == 1 and row.blocked_until is None
 
 
@@ -124,10 +135,13 @@ def test_sign_ins_are_in_the_audit_trail(app, session: Session) -> None:  # type
         assert _try(c, user.email, WRONG).status_code == 401
         assert _try(c, "ghost@example.test", WRONG).status_code == 401
         assert _try(c, user.email, factories.PASSWORD).status_code == 303
-    failed = session.scalars(select(AuditEvent).where(AuditEvent.action == "auth.sign_in_failed")
-                             .order_by(AuditEvent.id)).all()
+    failed = session.scalars(
+        select(AuditEvent).where(AuditEvent.action == "auth.sign_in_failed").order_by(AuditEvent.id)
+    ).all()
     assert [(e.object_id, e.detail["reason"], e.detail["email"]) for e in failed] == [
-        (str(user.id), "wrong_password", user.email), (None, "unknown_or_inactive", "ghost@example.test")]
+        (str(user.id), "wrong_password", user.email),
+        (None, "unknown_or_inactive", "ghost@example.test"),
+    ]
     assert all(e.actor_id is None and e.actor_label == "client:testclient" for e in failed)
     assert all(WRONG not in str(e.detail) for e in failed)
     [ok] = session.scalars(select(AuditEvent).where(AuditEvent.action == "auth.sign_in")).all()

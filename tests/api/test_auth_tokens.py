@@ -12,7 +12,6 @@ from sqlalchemy.orm import Session
 
 from server.auth import service as auth_service
 from server.auth.models import ApiToken, AuditEvent
-from tests import factories
 from tests.conftest import csrf_of
 
 T0 = dt.datetime(2026, 11, 2, 9, 0, tzinfo=dt.UTC)
@@ -33,7 +32,9 @@ def _bearer(token: str) -> dict[str, str]:
     return {"Authorization": f"Bearer {token}"}
 
 
-def test_account_page_creates_a_token_with_its_expiry_and_shows_it_once(app, staff_client, session: Session) -> None:  # type: ignore[no-untyped-def]
+def test_account_page_creates_a_token_with_its_expiry_and_shows_it_once(
+    app, staff_client, session: Session
+) -> None:  # type: ignore[no-untyped-def]
     clock = Clock()
     app.state.auth_clock = clock
     c = staff_client("coordinator")
@@ -49,12 +50,15 @@ def test_account_page_creates_a_token_with_its_expiry_and_shows_it_once(app, sta
     # The default lifetime is the setting (90 days); the offered choices never pass the maximum.
     r = c.post("/account/tokens", data={"label": "default", "csrf_token": csrf_of(c)})
     assert r.status_code == 201
-    assert session.scalar(select(ApiToken).where(ApiToken.label == "default")).expires_at == T0 + dt.timedelta(days=90)  # type: ignore[union-attr]
+    assert session.scalar(
+        select(ApiToken).where(ApiToken.label == "default")
+    ).expires_at == T0 + dt.timedelta(days=90)  # type: ignore[union-attr]
     r = c.post("/account/tokens", data={"label": "too long", "days": "400", "csrf_token": csrf_of(c)})
     assert r.status_code == 422 and "from 1 to 365 days" in r.text
     assert session.scalar(select(ApiToken).where(ApiToken.label == "too long")) is None
-    [ev] = session.scalars(select(AuditEvent).where(AuditEvent.action == "api_token.create",
-                                                    AuditEvent.object_id == str(row.id))).all()
+    [ev] = session.scalars(
+        select(AuditEvent).where(AuditEvent.action == "api_token.create", AuditEvent.object_id == str(row.id))
+    ).all()
     assert ev.actor_id == c.user.id and ev.detail["expires_at"].startswith("2026-12-02T09:00")
 
 
@@ -92,7 +96,9 @@ def test_last_use_expiry_and_revocation_over_the_api(app, staff_client, session:
         r = script.get("/api/v1/account/tokens", headers=_bearer(token))
         assert r.status_code == 401 and r.json()["error"]["code"] == "token_expired"
         assert "invalid_token" in r.headers["www-authenticate"]
-        assert {t["id"]: t for t in c.get("/api/v1/account/tokens").json()["tokens"]}[tid]["state"] == "expired"
+        assert {t["id"]: t for t in c.get("/api/v1/account/tokens").json()["tokens"]}[tid][
+            "state"
+        ] == "expired"
         # Revocation of a second, live token.
         r = c.post("/api/v1/account/tokens", json={"label": "second"}, headers=h)
         token2, tid2 = r.json()["secret"], r.json()["token"]["id"]
@@ -102,8 +108,9 @@ def test_last_use_expiry_and_revocation_over_the_api(app, staff_client, session:
         r = script.get("/api/v1/account/tokens", headers=_bearer(token2))
         assert r.status_code == 401 and r.json()["error"]["code"] == "invalid_token"
         assert c.delete(f"/api/v1/account/tokens/{tid2}", headers=h).status_code == 200  # again: no change
-    events = session.scalars(select(AuditEvent).where(AuditEvent.action == "api_token.revoke",
-                                                      AuditEvent.object_id == str(tid2))).all()
+    events = session.scalars(
+        select(AuditEvent).where(AuditEvent.action == "api_token.revoke", AuditEvent.object_id == str(tid2))
+    ).all()
     assert len(events) == 1 and events[0].actor_id == c.user.id
 
 
@@ -116,7 +123,9 @@ def test_only_the_owner_or_an_admin_revokes(app, staff_client, session: Session)
     r = other.delete(f"/api/v1/account/tokens/{row.id}", headers={"x-csrf-token": csrf_of(other)})
     assert r.status_code == 404 and r.json()["error"]["code"] == "unknown_token"
     assert other.get("/api/v1/account/tokens").json()["tokens"] == []  # nobody else's tokens listed
-    r = other.post(f"/account/tokens/{row.id}/revoke", data={"csrf_token": csrf_of(other)}, follow_redirects=False)
+    r = other.post(
+        f"/account/tokens/{row.id}/revoke", data={"csrf_token": csrf_of(other)}, follow_redirects=False
+    )
     assert r.status_code == 404
     assert session.get(ApiToken, row.id).revoked is False  # type: ignore[union-attr]
     assert [t.id for t in auth_service.list_api_tokens(session, owner.user.id)] == [row.id]
@@ -144,8 +153,12 @@ def test_account_page_revokes_a_token(app, staff_client, session: Session) -> No
 def test_token_api_validates_its_body(staff_client) -> None:  # type: ignore[no-untyped-def]
     c = staff_client("lead")
     h = {"x-csrf-token": csrf_of(c)}
-    for body, code in [({"label": "x", "days": 0}, "invalid_request"), ({"label": ""}, "invalid_request"),
-                       ({"label": "x", "days": "30"}, "invalid_request"), ({"label": "x", "days": 366}, "validation_failed")]:
+    for body, code in [
+        ({"label": "x", "days": 0}, "invalid_request"),
+        ({"label": ""}, "invalid_request"),
+        ({"label": "x", "days": "30"}, "invalid_request"),
+        ({"label": "x", "days": 366}, "validation_failed"),
+    ]:
         r = c.post("/api/v1/account/tokens", json=body, headers=h)
         assert r.status_code == 422 and r.json()["error"]["code"] == code, (body, r.text)
     assert c.get("/api/v1/account/tokens").json()["tokens"] == []

@@ -38,8 +38,12 @@ def data_dir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
     return d
 
 
-def run(capsys: pytest.CaptureFixture[str], *argv: str, stdin: str | None = None,
-        monkeypatch: pytest.MonkeyPatch | None = None) -> tuple[int, str, str]:
+def run(
+    capsys: pytest.CaptureFixture[str],
+    *argv: str,
+    stdin: str | None = None,
+    monkeypatch: pytest.MonkeyPatch | None = None,
+) -> tuple[int, str, str]:
     if stdin is not None:
         assert monkeypatch is not None
         monkeypatch.setattr(sys, "stdin", io.StringIO(stdin))
@@ -61,8 +65,10 @@ def settings_for(data_dir: Path) -> Settings:
 
 # --- devices ----------------------------------------------------------------------------------
 
+
 def test_device_add_works_on_a_fresh_data_directory_and_prints_the_token_once(
-        data_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     assert not data_dir.exists()
     code, out, err = run(capsys, "device", "add", "--serial", "KX-0001", "--json")
     assert code == 0, err
@@ -76,15 +82,19 @@ def test_device_add_works_on_a_fresh_data_directory_and_prints_the_token_once(
         assert token not in json.dumps({c.name: str(getattr(dev, c.name)) for c in Device.__table__.columns})
         trial_classes = s.execute(text("SELECT sound_classes FROM trial")).scalar_one()
     assert set(json.loads(trial_classes) if isinstance(trial_classes, str) else trial_classes) == {
-        "smoke_alarm", "baby_cry", "glass_break"}
+        "smoke_alarm",
+        "baby_cry",
+        "glass_break",
+    }
     code, out, _ = run(capsys, "device", "list")
     assert code == 0 and "KX-0001" in out and token not in out
     code, out, _ = run(capsys, "device", "list", "--json")
     assert token not in out and [d["serial"] for d in json.loads(out)] == ["KX-0001"]
 
 
-def test_device_add_without_json_prints_a_readable_token_line(data_dir: Path,
-                                                              capsys: pytest.CaptureFixture[str]) -> None:
+def test_device_add_without_json_prints_a_readable_token_line(
+    data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     code, out, _ = run(capsys, "device", "add", "--serial", "KX-0002", "--hardware-model", "HX-2")
     assert code == 0
     assert "device KX-0002 registered in trial PILOT-1" in out
@@ -92,8 +102,9 @@ def test_device_add_without_json_prints_a_readable_token_line(data_dir: Path,
     assert len(line) == 1 and line[0].split()[-1].startswith("thd_")
 
 
-def test_device_add_refuses_a_taken_serial_and_an_unknown_trial(data_dir: Path,
-                                                                capsys: pytest.CaptureFixture[str]) -> None:
+def test_device_add_refuses_a_taken_serial_and_an_unknown_trial(
+    data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     assert run(capsys, "device", "add", "--serial", "KX-0003")[0] == 0
     code, out, err = run(capsys, "device", "add", "--serial", "KX-0003")
     assert code != 0 and "already registered" in err and "thd_" not in out
@@ -102,8 +113,17 @@ def test_device_add_refuses_a_taken_serial_and_an_unknown_trial(data_dir: Path,
 
 
 def test_device_add_into_a_named_trial(data_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    code, out, err = run(capsys, "trial", "add", "--code", "WINTER-2", "--sound-classes", "smoke_alarm,co_alarm",
-                         "--starts-on", "2026-01-05")
+    code, out, err = run(
+        capsys,
+        "trial",
+        "add",
+        "--code",
+        "WINTER-2",
+        "--sound-classes",
+        "smoke_alarm,co_alarm",
+        "--starts-on",
+        "2026-01-05",
+    )
     assert code == 0, err
     code, out, _ = run(capsys, "device", "add", "--serial", "KX-0005", "--trial", "winter-2", "--json")
     assert code == 0 and json.loads(out)["trial"] == "WINTER-2"
@@ -122,29 +142,43 @@ def test_device_revoke(data_dir: Path, capsys: pytest.CaptureFixture[str]) -> No
     assert code != 0 and "No device has serial KX-9999" in err
     # The revoked token no longer works on the device API.
     with TestClient(create_app(settings_for(data_dir))) as c:
-        r = c.post("/api/v1/heartbeats", headers={"Authorization": f"Bearer {token}"},
-                   json={"sent_at": dt.datetime.now(dt.UTC).isoformat(), "listening": True, "firmware": "1"})
+        r = c.post(
+            "/api/v1/heartbeats",
+            headers={"Authorization": f"Bearer {token}"},
+            json={"sent_at": dt.datetime.now(dt.UTC).isoformat(), "listening": True, "firmware": "1"},
+        )
         assert r.status_code == 403 and r.json()["error"]["code"] == "device_revoked"
 
 
 # --- alerts and storage -----------------------------------------------------------------------
+
 
 def _post_alerts(data_dir: Path, token: str, n: int) -> list[bytes]:
     clips = []
     with TestClient(create_app(settings_for(data_dir))) as c:
         for i in range(n):
             clip = factories.sine_wav(seed=200 + i)
-            meta = {"event_id": f"cli-{i}", "sound_class": "glass_break", "score": 0.7,
-                    "detected_at": dt.datetime.now(dt.UTC).isoformat(), "clip_offset_s": 0.1, "firmware": "1"}
-            r = c.post("/api/v1/alerts", headers={"Authorization": f"Bearer {token}"},
-                       files={"meta": (None, json.dumps(meta)), "clip": ("c.wav", clip, "audio/wav")})
+            meta = {
+                "event_id": f"cli-{i}",
+                "sound_class": "glass_break",
+                "score": 0.7,
+                "detected_at": dt.datetime.now(dt.UTC).isoformat(),
+                "clip_offset_s": 0.1,
+                "firmware": "1",
+            }
+            r = c.post(
+                "/api/v1/alerts",
+                headers={"Authorization": f"Bearer {token}"},
+                files={"meta": (None, json.dumps(meta)), "clip": ("c.wav", clip, "audio/wav")},
+            )
             assert r.status_code == 201, r.text
             clips.append(clip)
     return clips
 
 
-def test_alert_list_json_gives_every_alert_with_its_clip_digest(data_dir: Path,
-                                                                capsys: pytest.CaptureFixture[str]) -> None:
+def test_alert_list_json_gives_every_alert_with_its_clip_digest(
+    data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     _, out, _ = run(capsys, "device", "add", "--serial", "KX-0007", "--json")
     clips = _post_alerts(data_dir, json.loads(out)["token"], 3)
     code, out, _ = run(capsys, "alert", "list", "--json")
@@ -152,7 +186,8 @@ def test_alert_list_json_gives_every_alert_with_its_clip_digest(data_dir: Path,
     rows = json.loads(out)
     assert sorted(r["event_id"] for r in rows) == ["cli-0", "cli-1", "cli-2"]
     assert {r["event_id"]: r["clip_sha256"] for r in rows} == {
-        f"cli-{i}": hashlib.sha256(c).hexdigest() for i, c in enumerate(clips)}
+        f"cli-{i}": hashlib.sha256(c).hexdigest() for i, c in enumerate(clips)
+    }
     assert all(r["device"] == "KX-0007" and r["home"] is None for r in rows)
     code, out, _ = run(capsys, "alert", "list")
     assert code == 0 and len(out.strip().splitlines()) == 3
@@ -170,51 +205,108 @@ def test_storage_check_reports_ok(data_dir: Path, capsys: pytest.CaptureFixture[
 
 # --- users ------------------------------------------------------------------------------------
 
-def test_user_add_reads_the_password_from_stdin(data_dir: Path, capsys: pytest.CaptureFixture[str],
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
-    code, out, err = run(capsys, "user", "add", "--email", "Rita@Example.TEST", "--role", "reviewer",
-                         stdin="a long enough secret\n", monkeypatch=monkeypatch)
+
+def test_user_add_reads_the_password_from_stdin(
+    data_dir: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    code, out, err = run(
+        capsys,
+        "user",
+        "add",
+        "--email",
+        "Rita@Example.TEST",
+        "--role",
+        "reviewer",
+        stdin="a long enough secret\n",
+        monkeypatch=monkeypatch,
+    )
     assert code == 0, err
     assert "user rita@example.test added with role reviewer" in out
     assert "a long enough secret" not in out + err
     with committed_session(settings_for(data_dir)) as s:
         assert auth_service.authenticate(s, "rita@example.test", "a long enough secret") is not None
         assert auth_service.authenticate(s, "rita@example.test", "a long enough secret\n") is None
-    code, _, err = run(capsys, "user", "add", "--email", "rita@example.test", "--role", "lead",
-                       stdin="another long secret\n", monkeypatch=monkeypatch)
+    code, _, err = run(
+        capsys,
+        "user",
+        "add",
+        "--email",
+        "rita@example.test",
+        "--role",
+        "lead",
+        stdin="another long secret\n",
+        monkeypatch=monkeypatch,
+    )
     assert code != 0 and "already exists" in err
 
 
-def test_user_add_refuses_a_short_password_and_a_bad_email(data_dir: Path, capsys: pytest.CaptureFixture[str],
-                                                           monkeypatch: pytest.MonkeyPatch) -> None:
-    code, _, err = run(capsys, "user", "add", "--email", "sam@example.test", "--role", "lead",
-                       stdin="short\n", monkeypatch=monkeypatch)
+def test_user_add_refuses_a_short_password_and_a_bad_email(
+    data_dir: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    code, _, err = run(
+        capsys,
+        "user",
+        "add",
+        "--email",
+        "sam@example.test",
+        "--role",
+        "lead",
+        stdin="short\n",
+        monkeypatch=monkeypatch,
+    )
     assert code != 0 and "at least 12 characters" in err
-    code, _, err = run(capsys, "user", "add", "--email", "not-an-address", "--role", "lead",
-                       stdin="long enough password\n", monkeypatch=monkeypatch)
+    code, _, err = run(
+        capsys,
+        "user",
+        "add",
+        "--email",
+        "not-an-address",
+        "--role",
+        "lead",
+        stdin="long enough password\n",
+        monkeypatch=monkeypatch,
+    )
     assert code != 0 and "is not an e-mail address" in err
 
 
-@pytest.mark.parametrize(("argv", "message"), [
-    (["user", "add", "--email", "a@b.test", "--role", "superuser"], "invalid choice: 'superuser'"),
-    (["user", "add", "--role", "lead"], "the following arguments are required: --email"),
-    (["device", "add"], "the following arguments are required: --serial"),
-    (["device", "explode"], "invalid choice: 'explode'"),
-    (["frobnicate"], "invalid choice: 'frobnicate'"),
-    ([], "the following arguments are required: COMMAND"),
-    (["serve", "--port", "eighty"], "invalid int value: 'eighty'"),
-    (["trial", "add", "--code", "X1", "--sound-classes", "a_b", "--target", "lots"], "invalid float value"),
-])
-def test_bad_arguments_exit_non_zero_with_a_clear_message(argv: list[str], message: str, data_dir: Path,
-                                                          capsys: pytest.CaptureFixture[str]) -> None:
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["user", "add", "--email", "a@b.test", "--role", "superuser"], "invalid choice: 'superuser'"),
+        (["user", "add", "--role", "lead"], "the following arguments are required: --email"),
+        (["device", "add"], "the following arguments are required: --serial"),
+        (["device", "explode"], "invalid choice: 'explode'"),
+        (["frobnicate"], "invalid choice: 'frobnicate'"),
+        ([], "the following arguments are required: COMMAND"),
+        (["serve", "--port", "eighty"], "invalid int value: 'eighty'"),
+        (
+            ["trial", "add", "--code", "X1", "--sound-classes", "a_b", "--target", "lots"],
+            "invalid float value",
+        ),
+    ],
+)
+def test_bad_arguments_exit_non_zero_with_a_clear_message(
+    argv: list[str], message: str, data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     code, err = run_bad(capsys, *argv)
     assert code == 2
     assert message in err and "usage: trialhouse" in err
 
 
-def test_bad_values_exit_non_zero_with_a_clear_message(data_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    code, _, err = run(capsys, "trial", "add", "--code", "SPRING-3", "--sound-classes", "smoke_alarm",
-                       "--starts-on", "3 March")
+def test_bad_values_exit_non_zero_with_a_clear_message(
+    data_dir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    code, _, err = run(
+        capsys,
+        "trial",
+        "add",
+        "--code",
+        "SPRING-3",
+        "--sound-classes",
+        "smoke_alarm",
+        "--starts-on",
+        "3 March",
+    )
     assert code == 2 and "Dates are YYYY-MM-DD" in err
     code, _, err = run(capsys, "trial", "add", "--code", "x", "--sound-classes", "Smoke Alarm")
     assert code == 2 and err.startswith("trialhouse: ")
@@ -222,8 +314,10 @@ def test_bad_values_exit_non_zero_with_a_clear_message(data_dir: Path, capsys: p
 
 # --- schema -----------------------------------------------------------------------------------
 
-def test_db_upgrade_is_idempotent(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                                  capsys: pytest.CaptureFixture[str]) -> None:
+
+def test_db_upgrade_is_idempotent(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     url = f"sqlite:///{tmp_path / 'up.sqlite'}"
     monkeypatch.setenv("TRIALHOUSE_DATA_DIR", str(tmp_path / "var"))
     monkeypatch.setenv("TRIALHOUSE_DATABASE_URL", url)
@@ -240,8 +334,9 @@ def test_db_upgrade_is_idempotent(tmp_path: Path, monkeypatch: pytest.MonkeyPatc
         engine.dispose()
 
 
-def test_cli_refuses_an_unmigrated_database_it_does_not_own(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                                                            capsys: pytest.CaptureFixture[str]) -> None:
+def test_cli_refuses_an_unmigrated_database_it_does_not_own(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     monkeypatch.setenv("TRIALHOUSE_DATA_DIR", str(tmp_path / "var"))
     monkeypatch.setenv("TRIALHOUSE_DATABASE_URL", f"sqlite:///{tmp_path / 'empty.sqlite'}")
     code, _, err = run(capsys, "device", "list")
@@ -249,8 +344,9 @@ def test_cli_refuses_an_unmigrated_database_it_does_not_own(tmp_path: Path, monk
 
 
 def test_server_refuses_to_start_on_an_unmigrated_database(tmp_path: Path) -> None:
-    s = Settings(data_dir=tmp_path / "var", database_url=f"sqlite:///{tmp_path / 'empty.sqlite'}",
-                 secret_key="s" * 40)
+    s = Settings(
+        data_dir=tmp_path / "var", database_url=f"sqlite:///{tmp_path / 'empty.sqlite'}", secret_key="s" * 40
+    )
     app = create_app(s)
     with pytest.raises(migrate.SchemaOutOfDate) as exc:
         with TestClient(app):
@@ -274,6 +370,7 @@ def test_server_refuses_to_start_on_an_older_schema(tmp_path: Path) -> None:
 
 
 # --- the simulator ----------------------------------------------------------------------------
+
 
 class FlakyTransport(httpx2.BaseTransport):
     """Times out once on the first alert upload: before it reaches the server, or after it was stored."""
@@ -312,10 +409,19 @@ def test_simulator_posts_heartbeats_and_alerts(sim_app, data_dir: Path) -> None:
         sim = simulate.DeviceSimulator("http://testserver", token, client=c, firmware="sim-2.0")
         hb = sim.heartbeat()
         assert hb.status == 200 and 54 <= hb.body["next_heartbeat_s"] <= 66
-        for kind, cls in (("smoke_alarm_t3", "smoke_alarm"), ("baby_cry", "baby_cry"), ("glass_break", "glass_break")):
+        for kind, cls in (
+            ("smoke_alarm_t3", "smoke_alarm"),
+            ("baby_cry", "baby_cry"),
+            ("glass_break", "glass_break"),
+        ):
             clip, offset = simulate.synth_clip(kind, rng)
-            r = sim.send_alert(clip=clip, sound_class=cls, score=0.8, detected_at=dt.datetime.now(dt.UTC),
-                               clip_offset_s=offset)
+            r = sim.send_alert(
+                clip=clip,
+                sound_class=cls,
+                score=0.8,
+                detected_at=dt.datetime.now(dt.UTC),
+                clip_offset_s=offset,
+            )
             assert r.status == 201 and r.attempts == 1, r.body
     with committed_session(settings_for(data_dir)) as s:
         alerts = list(s.scalars(select(Alert)))
@@ -324,8 +430,12 @@ def test_simulator_posts_heartbeats_and_alerts(sim_app, data_dir: Path) -> None:
 
 
 @pytest.mark.parametrize("after_delivery", [False, True])
-def test_simulator_retries_a_timeout_with_the_same_event_id(after_delivery: bool, sim_app, data_dir: Path,  # type: ignore[no-untyped-def]
-                                                            monkeypatch: pytest.MonkeyPatch) -> None:
+def test_simulator_retries_a_timeout_with_the_same_event_id(
+    after_delivery: bool,
+    sim_app,
+    data_dir: Path,  # type: ignore[no-untyped-def]
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     app, token = sim_app
     slept = _sleeps(monkeypatch)
     with TestClient(app) as c:
@@ -333,8 +443,14 @@ def test_simulator_retries_a_timeout_with_the_same_event_id(after_delivery: bool
         c._transport = flaky
         sim = simulate.DeviceSimulator("http://testserver", token, client=c)
         clip = factories.sine_wav(seconds=2.0, seed=300)
-        r = sim.send_alert(clip=clip, sound_class="smoke_alarm", score=0.9,
-                           detected_at=dt.datetime.now(dt.UTC), clip_offset_s=1.0, event_id="sim-ev-1")
+        r = sim.send_alert(
+            clip=clip,
+            sound_class="smoke_alarm",
+            score=0.9,
+            detected_at=dt.datetime.now(dt.UTC),
+            clip_offset_s=1.0,
+            event_id="sim-ev-1",
+        )
     assert r.attempts == 2 and flaky.delivered == 2 and len(slept) == 1
     # Stored on the first try: the resend is recognised as a duplicate; lost before arrival: stored now.
     assert (r.status, r.body["duplicate"]) == ((200, True) if after_delivery else (201, False))
@@ -350,20 +466,38 @@ def test_simulator_gives_up_after_its_retries(sim_app, monkeypatch: pytest.Monke
         raise httpx2.ConnectTimeout("no route", request=request)
 
     slept = _sleeps(monkeypatch)
-    sim = simulate.DeviceSimulator("http://sim.invalid", token, retries=2,
-                                   client=httpx2.Client(base_url="http://sim.invalid",
-                                                       transport=httpx2.MockTransport(always_timeout)))
+    sim = simulate.DeviceSimulator(
+        "http://sim.invalid",
+        token,
+        retries=2,
+        client=httpx2.Client(base_url="http://sim.invalid", transport=httpx2.MockTransport(always_timeout)),
+    )
     with pytest.raises(RuntimeError, match="no answer after 3 attempts"):
         sim.heartbeat()
     assert len(slept) == 3
 
 
-def test_simulate_command_against_a_live_server(live_server, capsys: pytest.CaptureFixture[str],  # type: ignore[no-untyped-def]
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
+def test_simulate_command_against_a_live_server(
+    live_server,
+    capsys: pytest.CaptureFixture[str],  # type: ignore[no-untyped-def]
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
     with committed_session(live_server.settings) as s:
         trial = factories.make_trial(s)
         _, token = factories.make_device(s, trial)
-    code, out, err = run(capsys, "simulate", "--base-url", live_server.url, "--token", token,
-                         "--heartbeats", "2", "--alerts", "1", "--sound-class", "baby_cry")
+    code, out, err = run(
+        capsys,
+        "simulate",
+        "--base-url",
+        live_server.url,
+        "--token",
+        token,
+        "--heartbeats",
+        "2",
+        "--alerts",
+        "1",
+        "--sound-class",
+        "baby_cry",
+    )
     assert code == 0, out + err
     assert out.count("heartbeat ") == 2 and "alert 1 (baby_cry): 201" in out

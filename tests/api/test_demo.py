@@ -68,6 +68,7 @@ def home_id(db: Session, code: str) -> int:
 
 # --- the data directory ------------------------------------------------------------------------
 
+
 def test_a_directory_that_is_not_a_demo_is_refused_and_left_alone(tmp_path: Path) -> None:
     (tmp_path / "trialhouse.db").write_text("someone's real pilot")
     with pytest.raises(seed.DemoError, match="not a demo"):
@@ -84,38 +85,51 @@ def test_an_earlier_demo_is_replaced(seeded: seed.SeedResult) -> None:
     assert (data_dir / seed.MARKER).stat().st_mode & 0o077 == 0  # it holds the passwords
 
 
-def test_the_cli_refuses_a_foreign_directory_with_a_message(tmp_path: Path, capsys: pytest.CaptureFixture[str]
-                                                            ) -> None:
+def test_the_cli_refuses_a_foreign_directory_with_a_message(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     (tmp_path / "notes.txt").write_text("keep me")
     assert main(["demo", "--data-dir", str(tmp_path), "--homes", "8", "--weeks", "2", "--no-serve"]) == 2
     assert "not a demo's data directory" in capsys.readouterr().err
     assert (tmp_path / "notes.txt").read_text() == "keep me"
 
 
-def test_the_cli_prints_a_sign_in_for_each_role_of_a_seeded_demo(seeded: seed.SeedResult,
-                                                                 capsys: pytest.CaptureFixture[str]) -> None:
+def test_the_cli_prints_a_sign_in_for_each_role_of_a_seeded_demo(
+    seeded: seed.SeedResult, capsys: pytest.CaptureFixture[str]
+) -> None:
     assert main(["demo", "--data-dir", str(seeded.settings.data_dir), "--keep", "--no-serve"]) == 0
     out = capsys.readouterr().out
     for s in seeded.sign_ins:
         assert f"{s.email}" in out and s.password in out
-    assert [s.label for s in seeded.sign_ins] == ["admin", "coordinator", "reviewer", "reviewer",
-                                                  "reviewer (adjudicator)", "lead"]
+    assert [s.label for s in seeded.sign_ins] == [
+        "admin",
+        "coordinator",
+        "reviewer",
+        "reviewer",
+        "reviewer (adjudicator)",
+        "lead",
+    ]
     assert all(s.email.endswith("@example.test") for s in seeded.sign_ins)
 
 
-@pytest.mark.parametrize("argv, message", [
-    (["--homes", "3"], "--homes must be between 8 and 400"),
-    (["--weeks", "0"], "--weeks must be between 2 and 52"),
-    (["--starts-on", "2026-02-30"], "--starts-on is YYYY-MM-DD"),
-])
-def test_the_cli_rejects_bad_sizes(argv: list[str], message: str, tmp_path: Path,
-                                   capsys: pytest.CaptureFixture[str]) -> None:
+@pytest.mark.parametrize(
+    "argv, message",
+    [
+        (["--homes", "3"], "--homes must be between 8 and 400"),
+        (["--weeks", "0"], "--weeks must be between 2 and 52"),
+        (["--starts-on", "2026-02-30"], "--starts-on is YYYY-MM-DD"),
+    ],
+)
+def test_the_cli_rejects_bad_sizes(
+    argv: list[str], message: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     assert main(["demo", "--data-dir", str(tmp_path / "d"), "--no-serve", *argv]) == 2
     assert message in capsys.readouterr().err
     assert not (tmp_path / "d").exists()
 
 
 # --- the plan ----------------------------------------------------------------------------------
+
 
 def test_the_same_seed_gives_the_same_pilot_and_another_seed_another() -> None:
     a = scenario.build_plan(seed=3, homes=12, weeks=4, starts_on=STARTS_ON)
@@ -132,8 +146,9 @@ def test_the_default_plan_has_the_scenario_the_issue_asks_for() -> None:
     assert {d.hardware_model for d in plan.devices} == set(scenario.HARDWARE_MODELS)
     assert {d.firmware for d in plan.detections} == {scenario.FIRMWARE_OLD, scenario.FIRMWARE_NEW}
     assert len({p.room for p in plan.placements}) >= 4
-    baby_fa = Counter(d.home_key for d in plan.detections
-                      if d.sound_class == "baby_cry" and d.truth_label == "false_alarm")
+    baby_fa = Counter(
+        d.home_key for d in plan.detections if d.sound_class == "baby_cry" and d.truth_label == "false_alarm"
+    )
     top, n = baby_fa.most_common(1)[0]
     assert top == "cockatoo" and n / sum(baby_fa.values()) > 0.25
     dog_homes = [h for h in installed if "dog" in h.traits]
@@ -169,6 +184,7 @@ def test_demo_clips_are_reproducible_and_sit_in_room_tone(kind: str) -> None:
 
 # --- the seeded pilot ----------------------------------------------------------------------------
 
+
 def test_one_trial_with_the_three_classes_and_no_default_pilot(db: Session) -> None:
     trials = list(db.scalars(select(Trial)))
     assert [t.code for t in trials] == [scenario.TRIAL_CODE]
@@ -180,12 +196,16 @@ def test_receipts_and_monitored_time_land_on_the_simulated_days(seeded: seed.See
     plan = seeded.plan
     first, last = db.execute(select(func.min(Alert.received_at), func.max(Alert.received_at))).one()
     assert plan.start <= first and last <= plan.end
-    seg_first, seg_last = db.execute(select(func.min(ListeningSegment.started_at),
-                                            func.max(ListeningSegment.ended_at))).one()
+    seg_first, seg_last = db.execute(
+        select(func.min(ListeningSegment.started_at), func.max(ListeningSegment.ended_at))
+    ).one()
     assert plan.start <= seg_first and seg_last <= plan.end
     # Every device listened for most of the days it was installed.
-    listened = dict(db.execute(select(ListeningSegment.device_id, func.count()).group_by(
-        ListeningSegment.device_id)).all())
+    listened = dict(
+        db.execute(
+            select(ListeningSegment.device_id, func.count()).group_by(ListeningSegment.device_id)
+        ).all()
+    )
     assert set(listened) == set(db.scalars(select(Device.id)))
     assert db.scalar(select(func.count(Alert.id))) == len(plan.detections)
 
@@ -193,9 +213,15 @@ def test_receipts_and_monitored_time_land_on_the_simulated_days(seeded: seed.See
 def test_offline_nights_split_listening(seeded: seed.SeedResult, db: Session) -> None:
     outage = next(o for o in seeded.plan.outages if o.reason == "offline overnight")
     device_id = db.scalar(select(Device.id).where(Device.serial == outage.serial))
-    covering = db.scalar(select(func.count()).select_from(ListeningSegment).where(
-        ListeningSegment.device_id == device_id, ListeningSegment.started_at < outage.ended_at,
-        ListeningSegment.ended_at > outage.started_at))
+    covering = db.scalar(
+        select(func.count())
+        .select_from(ListeningSegment)
+        .where(
+            ListeningSegment.device_id == device_id,
+            ListeningSegment.started_at < outage.ended_at,
+            ListeningSegment.ended_at > outage.started_at,
+        )
+    )
     assert covering == 0
 
 
@@ -226,8 +252,13 @@ def test_the_moved_device_alerts_land_on_each_home_in_turn(seeded: seed.SeedResu
     plan = seeded.plan
     assert plan.move_at is not None
     device_id = db.scalar(select(Device.id).where(Device.serial == plan.mover_serial))
-    installs = list(db.scalars(select(Installation).where(Installation.device_id == device_id)
-                               .order_by(Installation.installed_at)))
+    installs = list(
+        db.scalars(
+            select(Installation)
+            .where(Installation.device_id == device_id)
+            .order_by(Installation.installed_at)
+        )
+    )
     assert [i.home.code for i in installs] == [seeded.code("mover_from"), seeded.code("mover_to")]
     assert installs[0].removed_at == plan.move_at
     planned = {d.event_id: d for d in plan.detections if d.serial == plan.mover_serial}
@@ -242,8 +273,9 @@ def test_the_moved_device_alerts_land_on_each_home_in_turn(seeded: seed.SeedResu
     assert by_home["mover_from"] > 0 and by_home["mover_to"] > 0
 
 
-def test_the_skewed_clock_is_flagged_and_its_alerts_corrected(seeded: seed.SeedResult, app_client: TestClient,
-                                                             db: Session) -> None:
+def test_the_skewed_clock_is_flagged_and_its_alerts_corrected(
+    seeded: seed.SeedResult, app_client: TestClient, db: Session
+) -> None:
     coordinator = seeded.sign_in("coordinator")
     sign_in(app_client, coordinator.email, coordinator.password)
     rows = {r["serial"]: r for r in app_client.get("/api/v1/devices").json()}
@@ -276,7 +308,8 @@ def test_staged_tests_are_logged_and_some_were_missed(seeded: seed.SeedResult, d
 
 
 def test_three_reviewers_blind_second_reviews_one_adjudication_and_two_private_flags(
-        seeded: seed.SeedResult, db: Session) -> None:
+    seeded: seed.SeedResult, db: Session
+) -> None:
     reviewers = {u.id: u for u in db.scalars(select(User).where(User.role == "reviewer"))}
     assert len(reviewers) == 3 and sum(u.is_adjudicator for u in reviewers.values()) == 1
     by_round = Counter(db.scalars(select(Verdict.round)))
@@ -294,13 +327,17 @@ def test_three_reviewers_blind_second_reviews_one_adjudication_and_two_private_f
 
 def test_reviewed_verdicts_follow_the_story(seeded: seed.SeedResult, db: Session) -> None:
     cockatoo = home_id(db, seeded.code("cockatoo"))
-    rows = db.execute(select(Alert.final_label, Alert.final_cause).where(
-        Alert.home_id == cockatoo, Alert.sound_class == "baby_cry", Alert.final_label.is_not(None))).all()
+    rows = db.execute(
+        select(Alert.final_label, Alert.final_cause).where(
+            Alert.home_id == cockatoo, Alert.sound_class == "baby_cry", Alert.final_label.is_not(None)
+        )
+    ).all()
     screeches = [r for r in rows if r.final_cause == "cat_other_pet"]
     assert len(screeches) >= 3 and all(r.final_label == "false_alarm" for r in screeches)
 
 
 # --- the weekly summary over the seeded pilot -------------------------------------------------------
+
 
 @pytest.fixture
 def summary(seeded: seed.SeedResult, db: Session):  # type: ignore[no-untyped-def]
@@ -311,7 +348,8 @@ def summary(seeded: seed.SeedResult, db: Session):  # type: ignore[no-untyped-de
 
 
 def test_the_weekly_summary_shows_the_cockatoo_home_as_top_baby_cry_contributor(
-        seeded: seed.SeedResult, summary) -> None:  # type: ignore[no-untyped-def]
+    seeded: seed.SeedResult, summary
+) -> None:  # type: ignore[no-untyped-def]
     assert summary.week.start_at == seeded.plan.end - dt.timedelta(days=7)  # the pilot's last week
     baby = next(c for c in summary.classes if c.sound_class == "baby_cry")
     top = baby.to_date.concentration
@@ -325,22 +363,25 @@ def test_the_weekly_summary_shows_the_cockatoo_home_as_top_baby_cry_contributor(
     assert "cat_other_pet" in set(causes.iloc[:, 0])
 
 
-def test_the_weekly_summary_flags_the_skewed_clock_and_no_silent_device(seeded: seed.SeedResult,
-                                                                         summary) -> None:  # type: ignore[no-untyped-def]
+def test_the_weekly_summary_flags_the_skewed_clock_and_no_silent_device(
+    seeded: seed.SeedResult, summary
+) -> None:  # type: ignore[no-untyped-def]
     ops = summary.operations
     assert [s for s, _ in ops.skewed_devices] == [seeded.plan.skewed_serial]
     assert ops.skewed_devices[0][1] == pytest.approx(720.0, abs=1.0)
     assert ops.silent_devices == ()
 
 
-def test_the_erased_home_still_counts_in_the_figures(seeded: seed.SeedResult, db: Session,
-                                                     summary) -> None:  # type: ignore[no-untyped-def]
+def test_the_erased_home_still_counts_in_the_figures(seeded: seed.SeedResult, db: Session, summary) -> None:  # type: ignore[no-untyped-def]
     code = seeded.code("erased")
     hid = home_id(db, code)
     for c in summary.classes:
         row = c.to_date.homes[c.to_date.homes["home_code"] == code]
         assert len(row) == 1
-        expected = db.scalar(select(func.count(Alert.id)).where(
-            Alert.home_id == hid, Alert.sound_class == c.sound_class, Alert.final_label == "false_alarm"))
+        expected = db.scalar(
+            select(func.count(Alert.id)).where(
+                Alert.home_id == hid, Alert.sound_class == c.sound_class, Alert.final_label == "false_alarm"
+            )
+        )
         assert int(row.iloc[0]["false_alarms"]) == expected
         assert float(row.iloc[0]["home_months"]) > 0

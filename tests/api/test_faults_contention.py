@@ -29,8 +29,12 @@ N_DEVICES = 4
 UPLOADS_PER_DEVICE = 15  # 60 uploads in all
 N_VIEWERS = 4
 VIEWS_PER_VIEWER = 10  # 40 views in all: contact page, contact API, export page, export API in turn
-VIEW_PATHS = ("/homes/{code}/contact", "/api/v1/homes/{code}/contact",
-              "/homes/export-personal.csv?trial={trial}", "/api/v1/homes/export-personal.csv?trial={trial}")
+VIEW_PATHS = (
+    "/homes/{code}/contact",
+    "/api/v1/homes/{code}/contact",
+    "/homes/export-personal.csv?trial={trial}",
+    "/api/v1/homes/export-personal.csv?trial={trial}",
+)
 
 
 def _sign_in(c: httpx2.Client, email: str, password: str) -> None:
@@ -46,16 +50,21 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
     with committed_session(fresh_settings) as s:
         trial = factories.make_trial(s)
         devices = [factories.make_device(s, trial) for _ in range(N_DEVICES)]
-        homes = [factories.make_installed_home(s, trial, dev, installed_at=now - dt.timedelta(days=5))
-                 for dev, _ in devices]
+        homes = [
+            factories.make_installed_home(s, trial, dev, installed_at=now - dt.timedelta(days=5))
+            for dev, _ in devices
+        ]
         for i, home in enumerate(homes):
             households_service.set_contact(s, home, names=f"Household {i}", phone=f"0100 000 {i:03d}")
         users = [factories.make_user(s, role="coordinator") for _ in range(N_VIEWERS)]
         codes, trial_code = [h.code for h in homes], trial.code
         tokens = [tok for _, tok in devices]
         creds = [(u.email, pw) for u, pw in users]
-        audit_before = s.scalar(select(func.count(AuditEvent.id)).where(
-            AuditEvent.action.in_(("personal.view", "personal.export"))))
+        audit_before = s.scalar(
+            select(func.count(AuditEvent.id)).where(
+                AuditEvent.action.in_(("personal.view", "personal.export"))
+            )
+        )
 
     n_threads = N_DEVICES + N_VIEWERS
     start = threading.Barrier(n_threads)
@@ -65,17 +74,31 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
 
     def upload(d: int) -> None:
         with httpx2.Client(base_url=srv.url, timeout=60) as c:
-            bodies = [alert_body({"event_id": uuid.uuid4().hex, "sound_class": "smoke_alarm", "score": 0.8,
-                                  "detected_at": (now - dt.timedelta(seconds=d * 100 + k)).isoformat(),
-                                  "clip_offset_s": 0.25, "firmware": "3.1.0"},
-                                 sine(seconds=0.5, seed=1000 + d * 100 + k))
-                      for k in range(UPLOADS_PER_DEVICE)]
+            bodies = [
+                alert_body(
+                    {
+                        "event_id": uuid.uuid4().hex,
+                        "sound_class": "smoke_alarm",
+                        "score": 0.8,
+                        "detected_at": (now - dt.timedelta(seconds=d * 100 + k)).isoformat(),
+                        "clip_offset_s": 0.25,
+                        "firmware": "3.1.0",
+                    },
+                    sine(seconds=0.5, seed=1000 + d * 100 + k),
+                )
+                for k in range(UPLOADS_PER_DEVICE)
+            ]
             start.wait()
             for body in bodies:
                 try:
-                    r = c.post("/api/v1/alerts", content=body,
-                               headers={"Content-Type": MULTIPART, **bearer(tokens[d])})
-                    out: int | str = r.status_code if r.status_code == 201 else f"{r.status_code} {r.text[:200]}"
+                    r = c.post(
+                        "/api/v1/alerts",
+                        content=body,
+                        headers={"Content-Type": MULTIPART, **bearer(tokens[d])},
+                    )
+                    out: int | str = (
+                        r.status_code if r.status_code == 201 else f"{r.status_code} {r.text[:200]}"
+                    )
                 except httpx2.HTTPError as exc:
                     out = repr(exc)
                 with lock:
@@ -86,8 +109,9 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
             _sign_in(c, *creds[v])
             start.wait()
             for k in range(VIEWS_PER_VIEWER):
-                path = VIEW_PATHS[(v + k) % len(VIEW_PATHS)].format(code=codes[(v + k) % len(codes)],
-                                                                     trial=trial_code)
+                path = VIEW_PATHS[(v + k) % len(VIEW_PATHS)].format(
+                    code=codes[(v + k) % len(codes)], trial=trial_code
+                )
                 try:
                     r = c.get(path)
                     ok = r.status_code == 200 and (b"Household" in r.content)
@@ -119,9 +143,13 @@ def test_views_and_exports_never_fail_while_devices_upload(fresh_settings: Setti
     n_contacts = len(views) - n_exports
     with committed_session(fresh_settings) as s:
         assert s.scalar(select(func.count(Alert.id))) == N_DEVICES * UPLOADS_PER_DEVICE
-        after = dict(s.execute(select(AuditEvent.action, func.count(AuditEvent.id))
-                               .where(AuditEvent.action.in_(("personal.view", "personal.export")))
-                               .group_by(AuditEvent.action)).all())
+        after = dict(
+            s.execute(
+                select(AuditEvent.action, func.count(AuditEvent.id))
+                .where(AuditEvent.action.in_(("personal.view", "personal.export")))
+                .group_by(AuditEvent.action)
+            ).all()
+        )
     # Every view wrote its own audit row (the fixture's set_contact writes none of these actions).
     assert audit_before == 0
     assert after.get("personal.view", 0) == n_contacts == 20

@@ -36,15 +36,19 @@ class World:
         self.conn = http.client.HTTPConnection("127.0.0.1", srv.port, timeout=30)
         self.staff_json = {"Authorization": f"Bearer {staff_token}", "Content-Type": "application/json"}
 
-    def request(self, method: str, path: str, body: bytes | None = None,
-                headers: dict[str, str] | None = None) -> tuple[int, dict[str, str], Any]:
+    def request(
+        self, method: str, path: str, body: bytes | None = None, headers: dict[str, str] | None = None
+    ) -> tuple[int, dict[str, str], Any]:
         """One request on the same keep-alive connection as every other request of the test."""
         self.conn.request(method, path, body=body, headers=headers or {})
         r = self.conn.getresponse()
         raw = r.read()
         hdrs = {k.lower(): v for k, v in r.getheaders()}
-        return r.status, hdrs, (json.loads(raw) if hdrs.get("content-type", "").startswith("application/json")
-                                else raw)
+        return (
+            r.status,
+            hdrs,
+            (json.loads(raw) if hdrs.get("content-type", "").startswith("application/json") else raw),
+        )
 
     def create_home(self, code: str) -> tuple[int, dict[str, str], Any]:
         return self.request("POST", "/api/v1/homes", json.dumps({"code": code}).encode(), self.staff_json)
@@ -55,8 +59,14 @@ class World:
         return self.request("POST", "/api/v1/heartbeats", json.dumps(body).encode(), headers)
 
     def alert(self) -> tuple[int, dict[str, str], Any]:
-        meta = {"event_id": os.urandom(8).hex(), "sound_class": "smoke_alarm", "score": 0.8,
-                "detected_at": dt.datetime.now(dt.UTC).isoformat(), "clip_offset_s": 0.2, "firmware": "1.2.0"}
+        meta = {
+            "event_id": os.urandom(8).hex(),
+            "sound_class": "smoke_alarm",
+            "score": 0.8,
+            "detected_at": dt.datetime.now(dt.UTC).isoformat(),
+            "clip_offset_s": 0.2,
+            "firmware": "1.2.0",
+        }
 
         def part(name: str, body: bytes) -> bytes:
             head = f'--{BOUNDARY}\r\nContent-Disposition: form-data; name="{name}"\r\n\r\n'
@@ -64,9 +74,15 @@ class World:
 
         body = part("meta", json.dumps(meta).encode()) + part("clip", factories.sine_wav(seed=7))
         body += f"--{BOUNDARY}--\r\n".encode()
-        return self.request("POST", "/api/v1/alerts", body,
-                            {"Authorization": f"Bearer {self.device_token}",
-                             "Content-Type": f"multipart/form-data; boundary={BOUNDARY}"})
+        return self.request(
+            "POST",
+            "/api/v1/alerts",
+            body,
+            {
+                "Authorization": f"Bearer {self.device_token}",
+                "Content-Type": f"multipart/form-data; boundary={BOUNDARY}",
+            },
+        )
 
     def health(self) -> tuple[int, dict[str, str], Any]:
         return self.request("GET", "/api/v1/health")
@@ -76,8 +92,9 @@ class World:
 def world(fresh_settings: Settings) -> Iterator[World]:
     open_db(fresh_settings)
     with committed_session(fresh_settings) as db:
-        trial = trials_service.ensure_default_trial(db, fresh_settings.default_trial_code,
-                                                    fresh_settings.default_sound_classes)
+        trial = trials_service.ensure_default_trial(
+            db, fresh_settings.default_trial_code, fresh_settings.default_sound_classes
+        )
         user, _ = factories.make_user(db, role="admin")
         _, staff_token = auth_service.create_api_token(db, user, "faults")
         _, device_token = factories.make_device(db, trial)
@@ -119,8 +136,9 @@ def test_read_only_database_is_503_and_the_connection_stays_usable(world: World)
     assert_storage_fault(world.create_home("H-0102"), "database_read_only")
     assert_storage_fault(world.heartbeat(), "database_read_only")
     # The same connection answers the next request (a 500 used to reset it).
-    status, _, body = world.request("GET", "/api/v1/homes",
-                                    headers={"Authorization": f"Bearer {world.staff_token}"})
+    status, _, body = world.request(
+        "GET", "/api/v1/homes", headers={"Authorization": f"Bearer {world.staff_token}"}
+    )
     assert status == 200 and [h["code"] for h in body] == ["H-0101"]
     status, headers, body = world.health()
     assert status == 503 and body["checks"]["database"] == "failed: database_read_only"
@@ -137,12 +155,19 @@ def test_full_database_disk_is_503_storage_full(world: World) -> None:
         big = {"code": "H-0201", "note": "n" * 2000}
     else:
         with engine.begin() as conn:
-            conn.execute(text(
-                "CREATE FUNCTION fault_disk_full() RETURNS trigger LANGUAGE plpgsql AS "
-                "$$ BEGIN RAISE EXCEPTION 'could not extend file: No space left on device' "
-                "USING ERRCODE = '53100'; END $$"))
-            conn.execute(text("CREATE TRIGGER fault_disk_full BEFORE INSERT ON home "
-                              "FOR EACH ROW EXECUTE FUNCTION fault_disk_full()"))
+            conn.execute(
+                text(
+                    "CREATE FUNCTION fault_disk_full() RETURNS trigger LANGUAGE plpgsql AS "
+                    "$$ BEGIN RAISE EXCEPTION 'could not extend file: No space left on device' "
+                    "USING ERRCODE = '53100'; END $$"
+                )
+            )
+            conn.execute(
+                text(
+                    "CREATE TRIGGER fault_disk_full BEFORE INSERT ON home "
+                    "FOR EACH ROW EXECUTE FUNCTION fault_disk_full()"
+                )
+            )
         big = {"code": "H-0201"}
     # Free room left in the last pages takes a few rows; the first write past it must fail cleanly.
     for n in range(201, 400):
@@ -151,8 +176,12 @@ def test_full_database_disk_is_503_storage_full(world: World) -> None:
         if result[0] != 201:
             break
     assert_storage_fault(result, "storage_full")
-    assert world.request("GET", f"/api/v1/homes/{big['code']}",
-                         headers={"Authorization": f"Bearer {world.staff_token}"})[0] == 404
+    assert (
+        world.request(
+            "GET", f"/api/v1/homes/{big['code']}", headers={"Authorization": f"Bearer {world.staff_token}"}
+        )[0]
+        == 404
+    )
 
 
 def test_disk_almost_full_fails_health(world: World, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -161,8 +190,20 @@ def test_disk_almost_full_fails_health(world: World, monkeypatch: pytest.MonkeyP
 
     def nearly_full(path: Any) -> Any:
         st = real(path)
-        return os.statvfs_result((st.f_bsize, st.f_frsize, st.f_blocks, 10, 10, st.f_files, st.f_ffree,
-                                  st.f_favail, st.f_flag, st.f_namemax))
+        return os.statvfs_result(
+            (
+                st.f_bsize,
+                st.f_frsize,
+                st.f_blocks,
+                10,
+                10,
+                st.f_files,
+                st.f_ffree,
+                st.f_favail,
+                st.f_flag,
+                st.f_namemax,
+            )
+        )
 
     monkeypatch.setattr(os, "statvfs", nearly_full)
     status, headers, body = world.health()

@@ -11,11 +11,21 @@ import pytest
 from server.web.csvsafe import safe_cell, safe_frame
 
 
-@pytest.mark.parametrize("value, expected", [
-    ('=HYPERLINK("http://x","y")', '\'=HYPERLINK("http://x","y")'), ("+44 20", "'+44 20"), ("-2+3", "'-2+3"),
-    ("@SUM(A1)", "'@SUM(A1)"), ("\tx", "'\tx"), ("\rx", "'\rx"), ("4.2.0", "4.2.0"), ("", ""),
-    (-1.5, -1.5), (None, None),
-])
+@pytest.mark.parametrize(
+    "value, expected",
+    [
+        ('=HYPERLINK("http://x","y")', '\'=HYPERLINK("http://x","y")'),
+        ("+44 20", "'+44 20"),
+        ("-2+3", "'-2+3"),
+        ("@SUM(A1)", "'@SUM(A1)"),
+        ("\tx", "'\tx"),
+        ("\rx", "'\rx"),
+        ("4.2.0", "4.2.0"),
+        ("", ""),
+        (-1.5, -1.5),
+        (None, None),
+    ],
+)
 def test_safe_cell_escapes_formula_starts_of_text_only(value, expected) -> None:  # type: ignore[no-untyped-def]
     # OWASP "CSV Injection" (from memory): = + - @ tab and CR start a formula.
     assert safe_cell(value) == expected

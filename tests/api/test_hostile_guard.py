@@ -43,17 +43,34 @@ class Asgi:
     def __init__(self, app: FastAPI) -> None:
         self.app = app
 
-    def call(self, method: str, path: str, headers: dict[str, str], chunks: list[bytes],
-             content_length: bool = True) -> tuple[int, dict[str, str], bytes, int]:
+    def call(
+        self,
+        method: str,
+        path: str,
+        headers: dict[str, str],
+        chunks: list[bytes],
+        content_length: bool = True,
+    ) -> tuple[int, dict[str, str], bytes, int]:
         pulled = 0
         out: dict[str, Any] = {"status": None, "headers": {}, "body": b""}
         raw_headers = [(k.lower().encode(), v.encode()) for k, v in headers.items()]
         if content_length:
             raw_headers.append((b"content-length", str(sum(map(len, chunks))).encode()))
-        scope = {"type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1", "method": method,
-                 "scheme": "http", "path": path, "raw_path": path.encode(), "query_string": b"",
-                 "root_path": "", "headers": raw_headers, "client": ("127.0.0.1", 5000),
-                 "server": ("testserver", 80), "state": {}}
+        scope = {
+            "type": "http",
+            "asgi": {"version": "3.0"},
+            "http_version": "1.1",
+            "method": method,
+            "scheme": "http",
+            "path": path,
+            "raw_path": path.encode(),
+            "query_string": b"",
+            "root_path": "",
+            "headers": raw_headers,
+            "client": ("127.0.0.1", 5000),
+            "server": ("testserver", 80),
+            "state": {},
+        }
 
         async def receive() -> dict[str, Any]:
             nonlocal pulled
@@ -75,10 +92,18 @@ class Asgi:
 
 # --- caller check before the body ------------------------------------------------------------------
 
-@pytest.mark.parametrize("method, path", [
-    ("POST", "/api/v1/homes"), ("PUT", "/api/v1/homes/H-1/contact"), ("POST", "/api/v1/homes/import"),
-    ("POST", "/api/v1/gold-checks"), ("POST", "/api/v1/devices"), ("PATCH", "/api/v1/installations/7"),
-])
+
+@pytest.mark.parametrize(
+    "method, path",
+    [
+        ("POST", "/api/v1/homes"),
+        ("PUT", "/api/v1/homes/H-1/contact"),
+        ("POST", "/api/v1/homes/import"),
+        ("POST", "/api/v1/gold-checks"),
+        ("POST", "/api/v1/devices"),
+        ("PATCH", "/api/v1/installations/7"),
+    ],
+)
 def test_staff_call_without_credential_is_401_before_any_body_is_read(app, method, path) -> None:  # type: ignore[no-untyped-def]
     chunks = [b"{" + b" " * 65536] * 50
     status, headers, body, pulled = Asgi(app).call(method, path, {"content-type": "application/json"}, chunks)
@@ -88,8 +113,11 @@ def test_staff_call_without_credential_is_401_before_any_body_is_read(app, metho
 
 def test_page_post_without_credential_redirects_to_sign_in_unread(app) -> None:  # type: ignore[no-untyped-def]
     status, headers, _, pulled = Asgi(app).call(
-        "POST", "/homes/new", {"content-type": "application/x-www-form-urlencoded", "accept": "text/html"},
-        [b"code=H-9&" * 1000])
+        "POST",
+        "/homes/new",
+        {"content-type": "application/x-www-form-urlencoded", "accept": "text/html"},
+        [b"code=H-9&" * 1000],
+    )
     assert status == 303 and headers["location"] == "/login?next=/homes/new" and pulled == 0
 
 
@@ -104,8 +132,12 @@ def _upload_until_answered(port: int, path: str, total: int) -> tuple[int, int]:
     """POST ``total`` bytes over a raw socket, stopping once the server answers; (status, bytes sent)."""
     chunk = b" " * MIB
     sock = socket.create_connection(("127.0.0.1", port), timeout=10)
-    sock.sendall((f"POST {path} HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
-                  f"Content-Length: {total}\r\n\r\n").encode())
+    sock.sendall(
+        (
+            f"POST {path} HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
+            f"Content-Length: {total}\r\n\r\n"
+        ).encode()
+    )
     sock.setblocking(False)
     pending, sent, answer = b"", 0, b""
     deadline = time.monotonic() + 60
@@ -157,6 +189,7 @@ def test_sixty_megabyte_anonymous_post_costs_no_memory(fresh_settings: Settings)
 
 # --- body caps -------------------------------------------------------------------------------------
 
+
 def test_declared_body_over_the_limit_is_413_unread(app, session) -> None:  # type: ignore[no-untyped-def]
     headers = {**token_headers(session), "content-type": "application/json"}
     status, _, body, pulled = Asgi(app).call("POST", "/api/v1/homes", headers, [b" " * (2 * MIB)])
@@ -174,27 +207,41 @@ def test_streamed_body_over_the_limit_is_cut_off_at_the_limit(app, session, sett
 def test_body_limit_is_a_setting(tmp_path: Path, work_engine) -> None:  # type: ignore[no-untyped-def]
     from fastapi.testclient import TestClient
 
-    s = Settings(data_dir=tmp_path / "d", database_url=work_engine.url.render_as_string(hide_password=False),
-                 secret_key="k" * 40, max_body_bytes=4096)
+    s = Settings(
+        data_dir=tmp_path / "d",
+        database_url=work_engine.url.render_as_string(hide_password=False),
+        secret_key="k" * 40,
+        max_body_bytes=4096,
+    )
     with TestClient(create_app(s), raise_server_exceptions=False) as c:
-        r = c.post("/api/v1/homes", content=b"{" + b" " * 5000 + b"}",
-                   headers={"Authorization": "Bearer x", "Content-Type": "application/json"})
+        r = c.post(
+            "/api/v1/homes",
+            content=b"{" + b" " * 5000 + b"}",
+            headers={"Authorization": "Bearer x", "Content-Type": "application/json"},
+        )
         assert r.status_code == 413 and r.json()["error"]["code"] == "body_too_large"
-        r = c.post("/api/v1/homes", content=b"{}", headers={"Authorization": "Bearer x",
-                                                               "Content-Type": "application/json"})
+        r = c.post(
+            "/api/v1/homes",
+            content=b"{}",
+            headers={"Authorization": "Bearer x", "Content-Type": "application/json"},
+        )
         assert r.status_code == 401 and r.json()["error"]["code"] in ("invalid_token", "not_signed_in")
 
 
 def test_register_import_keeps_its_own_larger_limit(client, session, trial) -> None:  # type: ignore[no-untyped-def]
     rows = "code,note\n" + "".join(f"H-{i:04d},{'x' * 12_000}\n" for i in range(100))  # about 1.2 MiB
     assert len(rows) > 1024 * 1024
-    r = client.post(f"/api/v1/homes/import?trial={trial.code}", content=rows.encode(),
-                    headers={**token_headers(session), "Content-Type": "text/csv"})
+    r = client.post(
+        f"/api/v1/homes/import?trial={trial.code}",
+        content=rows.encode(),
+        headers={**token_headers(session), "Content-Type": "text/csv"},
+    )
     assert r.status_code in (201, 422), r.text[:300]  # read and judged as an import, not cut off
     assert r.status_code == 201 or r.json()["error"]["code"] == "import_rejected"
 
 
 # --- headers ---------------------------------------------------------------------------------------
+
 
 def test_pages_and_staff_json_are_not_stored_and_pages_carry_a_policy(staff_client) -> None:  # type: ignore[no-untyped-def]
     c = staff_client("admin")
@@ -234,6 +281,7 @@ def test_policy_hashes_every_static_inline_script_of_the_templates() -> None:
 
 # --- files and the API description -----------------------------------------------------------------
 
+
 def test_sqlite_file_and_its_log_are_private(tmp_path: Path) -> None:
     s = Settings(data_dir=tmp_path / "fresh", secret_key="p" * 40)
     from server.cli_base import open_db
@@ -263,8 +311,12 @@ def test_openapi_lists_the_error_statuses_of_every_route(client) -> None:  # typ
 
     doc = client.get("/openapi.json").json()
     assert "ErrorBody" in doc["components"]["schemas"]
-    staff = {(m.lower(), p) for p, r in _iter_routes(client.app.routes) if _needs_capability(r)
-             for m in getattr(r, "methods", ())}
+    staff = {
+        (m.lower(), p)
+        for p, r in _iter_routes(client.app.routes)
+        if _needs_capability(r)
+        for m in getattr(r, "methods", ())
+    }
     checked = 0
     for path, ops in doc["paths"].items():
         for method, op in ops.items():
@@ -281,6 +333,7 @@ def test_openapi_lists_the_error_statuses_of_every_route(client) -> None:  # typ
             for status, entry in responses.items():
                 if status[0] in "45":
                     assert entry["content"]["application/json"]["schema"] == {
-                        "$ref": "#/components/schemas/ErrorBody"}, (method, path, status)
+                        "$ref": "#/components/schemas/ErrorBody"
+                    }, (method, path, status)
             checked += 1
     assert checked >= 40 and ("post", "/api/v1/homes") in staff

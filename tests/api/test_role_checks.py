@@ -29,8 +29,12 @@ def flagged(session: Session, store, settings, trial):  # type: ignore[no-untype
 
 def test_private_clip_is_served_to_admins_only(staff_client, client, flagged) -> None:  # type: ignore[no-untyped-def]
     _, plain, private = flagged
-    expected = {"admin": (200, None), "coordinator": (403, "private_content"),
-                "reviewer": (403, "private_content"), "lead": (403, "forbidden")}
+    expected = {
+        "admin": (200, None),
+        "coordinator": (403, "private_content"),
+        "reviewer": (403, "private_content"),
+        "lead": (403, "forbidden"),
+    }
     for role in ROLES:
         c = staff_client(role)
         r = c.get(f"/api/v1/alerts/{private.id}/clip")
@@ -56,14 +60,22 @@ def test_clip_players_show_for_roles_that_listen(staff_client, flagged) -> None:
     assert [reviewer.get(u).status_code for u in (f"/devices/{dev.serial}", "/alerts")] == [403, 403]
 
 
-@pytest.mark.parametrize(("role", "is_adjudicator", "settles"), [
-    ("admin", False, True), ("admin", True, True),
-    ("reviewer", False, False), ("reviewer", True, True),
-    ("coordinator", False, False), ("coordinator", True, False),
-    ("lead", False, False), ("lead", True, False),
-])
-def test_who_may_settle_disagreements(session: Session, role: str, is_adjudicator: bool,
-                                      settles: bool) -> None:
+@pytest.mark.parametrize(
+    ("role", "is_adjudicator", "settles"),
+    [
+        ("admin", False, True),
+        ("admin", True, True),
+        ("reviewer", False, False),
+        ("reviewer", True, True),
+        ("coordinator", False, False),
+        ("coordinator", True, False),
+        ("lead", False, False),
+        ("lead", True, False),
+    ],
+)
+def test_who_may_settle_disagreements(
+    session: Session, role: str, is_adjudicator: bool, settles: bool
+) -> None:
     user, _ = factories.make_user(session, role=role, is_adjudicator=is_adjudicator)
     assert review_service.can_adjudicate(user) is settles
 

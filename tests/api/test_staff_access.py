@@ -25,11 +25,17 @@ from server.auth.models import ApiToken
 from server.deps import get_session
 from server.roles import CAPABILITIES, ROLES
 from tests import factories
-from tests.conftest import csrf_of, sign_in
+from tests.conftest import csrf_of
 
 PUBLIC = {
-    ("GET", "/"), ("GET", "/login"), ("POST", "/login"), ("GET", "/api/v1/health"),
-    ("GET", "/docs"), ("GET", "/docs/oauth2-redirect"), ("GET", "/openapi.json"), ("GET", "/redoc"),
+    ("GET", "/"),
+    ("GET", "/login"),
+    ("POST", "/login"),
+    ("GET", "/api/v1/health"),
+    ("GET", "/docs"),
+    ("GET", "/docs/oauth2-redirect"),
+    ("GET", "/openapi.json"),
+    ("GET", "/redoc"),
 }
 DEVICE_ROUTES = {("POST", "/api/v1/heartbeats"), ("POST", "/api/v1/alerts")}  # bearer device token
 
@@ -73,8 +79,14 @@ def all_routes(app: FastAPI) -> list[tuple[str, str, APIRoute | Any, list[str]]]
 
 def test_route_enumeration_sees_the_spine_routes(app: FastAPI) -> None:
     seen = {(m, p) for m, p, _, _ in all_routes(app)}
-    for expected in [("GET", "/api/v1/devices"), ("POST", "/api/v1/alerts"), ("GET", "/devices/{serial}"),
-                     ("GET", "/clips/{alert_id}/audio"), ("POST", "/account/tokens"), ("GET", "/login")]:
+    for expected in [
+        ("GET", "/api/v1/devices"),
+        ("POST", "/api/v1/alerts"),
+        ("GET", "/devices/{serial}"),
+        ("GET", "/clips/{alert_id}/audio"),
+        ("POST", "/account/tokens"),
+        ("GET", "/login"),
+    ]:
         assert expected in seen
 
 
@@ -104,8 +116,14 @@ def world(session: Session, store, settings, trial) -> dict[str, str]:  # type: 
     now = dt.datetime.now(dt.UTC)
     inst = factories.make_installation(session, dev, home, installed_at=now - dt.timedelta(days=5))
     alert = factories.make_alert(session, store, settings, dev, detected_at=now - dt.timedelta(hours=1))
-    return {"serial": dev.serial, "alert_id": str(alert.id), "code": home.code,
-            "installation_id": str(inst.id), "home_id": str(home.id), "device_id": str(dev.id)}
+    return {
+        "serial": dev.serial,
+        "alert_id": str(alert.id),
+        "code": home.code,
+        "installation_id": str(inst.id),
+        "home_id": str(home.id),
+        "device_id": str(dev.id),
+    }
 
 
 def fill(path: str, values: dict[str, str]) -> str:
@@ -113,8 +131,11 @@ def fill(path: str, values: dict[str, str]) -> str:
 
 
 def staff_get_routes(app: FastAPI) -> list[tuple[str, str]]:
-    return [(path, caps[0]) for m, path, _, caps in all_routes(app)
-            if m == "GET" and len(caps) == 1 and (m, path) not in PUBLIC]
+    return [
+        (path, caps[0])
+        for m, path, _, caps in all_routes(app)
+        if m == "GET" and len(caps) == 1 and (m, path) not in PUBLIC
+    ]
 
 
 def test_role_matrix_on_every_get_route(app: FastAPI, staff_client, world: dict[str, str]) -> None:  # type: ignore[no-untyped-def]
@@ -137,11 +158,17 @@ def test_role_matrix_on_every_get_route(app: FastAPI, staff_client, world: dict[
 
 
 def test_role_matrix_on_spine_pages_gives_200_to_allowed_roles(staff_client, world: dict[str, str]) -> None:  # type: ignore[no-untyped-def]
-    cases = {f"/devices/{world['serial']}": "devices.view", "/devices": "devices.view", "/alerts": "alerts.view",
-             "/api/v1/devices": "devices.view", "/api/v1/alerts": "alerts.view",
-             f"/api/v1/alerts/{world['alert_id']}": "alerts.view",
-             f"/api/v1/alerts/{world['alert_id']}/clip": "clips.listen",
-             f"/clips/{world['alert_id']}/audio": "clips.listen", "/account": "staff.self"}
+    cases = {
+        f"/devices/{world['serial']}": "devices.view",
+        "/devices": "devices.view",
+        "/alerts": "alerts.view",
+        "/api/v1/devices": "devices.view",
+        "/api/v1/alerts": "alerts.view",
+        f"/api/v1/alerts/{world['alert_id']}": "alerts.view",
+        f"/api/v1/alerts/{world['alert_id']}/clip": "clips.listen",
+        f"/clips/{world['alert_id']}/audio": "clips.listen",
+        "/account": "staff.self",
+    }
     for role in ROLES:
         c = staff_client(role)
         for url, cap in cases.items():
@@ -149,8 +176,11 @@ def test_role_matrix_on_spine_pages_gives_200_to_allowed_roles(staff_client, wor
             assert r.status_code == (200 if role in CAPABILITIES[cap] else 403), (role, url, r.status_code)
 
 
-def test_unsafe_routes_refuse_roles_without_the_capability(app: FastAPI, staff_client,  # type: ignore[no-untyped-def]
-                                                           world: dict[str, str]) -> None:
+def test_unsafe_routes_refuse_roles_without_the_capability(
+    app: FastAPI,
+    staff_client,  # type: ignore[no-untyped-def]
+    world: dict[str, str],
+) -> None:
     """Every POST/PUT/PATCH/DELETE answers 403 to a role outside its capability (CSRF token sent)."""
     clients = {role: staff_client(role) for role in ROLES}
     tokens = {role: csrf_of(c) for role, c in clients.items()}
@@ -168,8 +198,9 @@ def test_unsafe_routes_refuse_roles_without_the_capability(app: FastAPI, staff_c
     assert not problems, "\n".join(problems)
 
 
-def test_signed_out_pages_redirect_to_login_and_api_gives_401(app: FastAPI, client: TestClient,
-                                                              world: dict[str, str]) -> None:
+def test_signed_out_pages_redirect_to_login_and_api_gives_401(
+    app: FastAPI, client: TestClient, world: dict[str, str]
+) -> None:
     for path, _cap in staff_get_routes(app):
         url = fill(path, world)
         r = client.get(url, follow_redirects=False)
@@ -193,12 +224,14 @@ def test_front_page_sends_each_role_home(staff_client, client: TestClient) -> No
 
 # --- sign-in, cookie, CSRF ------------------------------------------------------------------------
 
+
 def test_wrong_password_and_unknown_email_are_refused_alike(client: TestClient, session: Session) -> None:
     user, _ = factories.make_user(session, role="lead")
     token = csrf_of(client, "/login")
     for email, pw in ((user.email, "wrong password!"), ("nobody@example.test", "whatever pass")):
-        r = client.post("/login", data={"email": email, "password": pw, "csrf_token": token},
-                        follow_redirects=False)
+        r = client.post(
+            "/login", data={"email": email, "password": pw, "csrf_token": token}, follow_redirects=False
+        )
         assert r.status_code == 401
         assert "E-mail or password is not right." in r.text
     assert client.get("/api/v1/alerts").status_code == 401
@@ -213,8 +246,11 @@ def test_login_form_without_csrf_token_is_refused(client: TestClient, session: S
 
 
 def _cookie_header(r: Any) -> str:
-    cookies = [v for k, v in r.headers.multi_items() if k.lower() == "set-cookie"
-               and v.startswith("trialhouse_session=")]
+    cookies = [
+        v
+        for k, v in r.headers.multi_items()
+        if k.lower() == "set-cookie" and v.startswith("trialhouse_session=")
+    ]
     assert cookies, r.headers
     return cookies[-1].lower()
 
@@ -222,8 +258,9 @@ def _cookie_header(r: Any) -> str:
 def test_session_cookie_is_httponly_and_samesite_lax(client: TestClient, session: Session) -> None:
     user, pw = factories.make_user(session, role="reviewer")
     token = csrf_of(client, "/login")
-    r = client.post("/login", data={"email": user.email, "password": pw, "csrf_token": token},
-                    follow_redirects=False)
+    r = client.post(
+        "/login", data={"email": user.email, "password": pw, "csrf_token": token}, follow_redirects=False
+    )
     assert r.status_code == 303
     cookie = _cookie_header(r)
     assert "httponly" in cookie and "samesite=lax" in cookie
@@ -240,8 +277,9 @@ def test_session_cookie_is_secure_when_configured(settings, session: Session) ->
     user, pw = factories.make_user(session, role="reviewer")
     with TestClient(secure_app, base_url="https://testserver", raise_server_exceptions=False) as c:
         token = csrf_of(c, "/login")
-        r = c.post("/login", data={"email": user.email, "password": pw, "csrf_token": token},
-                   follow_redirects=False)
+        r = c.post(
+            "/login", data={"email": user.email, "password": pw, "csrf_token": token}, follow_redirects=False
+        )
         assert r.status_code == 303
         cookie = _cookie_header(r)
         assert "; secure" in cookie and "httponly" in cookie and "samesite=lax" in cookie
@@ -304,6 +342,7 @@ def test_inactive_user_loses_access(staff_client, session: Session) -> None:  # 
 
 # --- clips: Range for listeners, nothing for others ------------------------------------------------
 
+
 @pytest.fixture
 def clip_alert(session: Session, store, settings, trial):  # type: ignore[no-untyped-def]
     dev, _ = factories.make_device(session, trial)
@@ -356,7 +395,10 @@ def test_unknown_alert_clip_is_404(staff_client) -> None:  # type: ignore[no-unt
 
 # --- personal API tokens ---------------------------------------------------------------------------
 
-def test_personal_api_token_works_for_the_staff_api(app: FastAPI, session: Session, world: dict[str, str]) -> None:
+
+def test_personal_api_token_works_for_the_staff_api(
+    app: FastAPI, session: Session, world: dict[str, str]
+) -> None:
     coordinator, _ = factories.make_user(session, role="coordinator")
     lead, _ = factories.make_user(session, role="lead")
     _, ctok = auth_service.create_api_token(session, coordinator, "script")

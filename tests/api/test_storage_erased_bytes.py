@@ -31,16 +31,24 @@ def raw_bytes(db: Path) -> bytes:
 
 def test_erased_contact_details_are_not_in_the_database_file_or_its_log(tmp_path: Path) -> None:
     db = tmp_path / "erase.sqlite"
-    settings = Settings(data_dir=tmp_path / "data", database_url=f"sqlite:///{db}",
-                        secret_key="test-secret-key-" + "z" * 32)
+    settings = Settings(
+        data_dir=tmp_path / "data", database_url=f"sqlite:///{db}", secret_key="test-secret-key-" + "z" * 32
+    )
     engine = make_engine(settings.resolved_database_url())
     migrate.upgrade(engine)
     engine.dispose()
     with committed_session(settings) as s:
         trial = factories.make_trial(s)
         home = factories.make_registered_home(s, trial, state="consented")
-        service.set_contact(s, home, names="Marlow Quince", address=ADDRESS, phone=PHONE, email=EMAIL,
-                            access_notes="side gate")
+        service.set_contact(
+            s,
+            home,
+            names="Marlow Quince",
+            address=ADDRESS,
+            phone=PHONE,
+            email=EMAIL,
+            access_notes="side gate",
+        )
         user, password = factories.make_user(s, role="coordinator")
         code = home.code
     with TestClient(create_app(settings)) as c:

@@ -28,11 +28,13 @@ def test_new_trials_keep_clips_with_no_home_for_30_days(session, trial) -> None:
 
 
 def test_clips_with_no_home_are_purged_after_the_trials_limit(  # type: ignore[no-untyped-def]
-        session, settings, store, trial) -> None:
+    session, settings, store, trial
+) -> None:
     loose, _ = factories.make_device(session, trial)  # installed nowhere
     placed, _ = factories.make_device(session, trial)
-    consented = factories.make_installed_home(session, trial, placed, installed_at=ago(100),
-                                              retention_days=90)
+    consented = factories.make_installed_home(
+        session, trial, placed, installed_at=ago(100), retention_days=90
+    )
     unconsented_dev, _ = factories.make_device(session, trial)
     no_consent = factories.make_home(session, trial)  # a home with no consent on record
     factories.make_installation(session, unconsented_dev, no_consent, installed_at=ago(100))
@@ -47,7 +49,8 @@ def test_clips_with_no_home_are_purged_after_the_trials_limit(  # type: ignore[n
 
     dry = erasure.purge_clips(session, store, now=NOW)
     assert sorted((i.clip_id, i.reason) for i in dry.items) == sorted(
-        [(old_loose.clip_id, "no_home"), (old_unconsented.clip_id, "no_home")])
+        [(old_loose.clip_id, "no_home"), (old_unconsented.clip_id, "no_home")]
+    )
     assert dry.waiting_no_home == 1 and dry.by_reason == {"private": 0, "retention": 0, "no_home": 2}
     done = erasure.purge_clips(session, store, now=NOW, apply=True)
     assert done.deleted == 2
@@ -65,7 +68,8 @@ def test_clips_with_no_home_are_purged_after_the_trials_limit(  # type: ignore[n
 
 
 def test_a_clip_shared_with_a_home_waits_for_both_rules(  # type: ignore[no-untyped-def]
-        session, settings, store, trial) -> None:
+    session, settings, store, trial
+) -> None:
     loose, _ = factories.make_device(session, trial)
     placed, _ = factories.make_device(session, trial)
     factories.make_installed_home(session, trial, placed, installed_at=ago(100), retention_days=90)
@@ -79,8 +83,8 @@ def test_a_clip_shared_with_a_home_waits_for_both_rules(  # type: ignore[no-unty
 
 
 def test_storage_purge_command_removes_clips_with_no_home(
-        fresh_settings: Settings, monkeypatch: pytest.MonkeyPatch,
-        capsys: pytest.CaptureFixture[str]) -> None:
+    fresh_settings: Settings, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     from server import cli
 
     store = ClipStore(fresh_settings.clip_dir)

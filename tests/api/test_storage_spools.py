@@ -31,8 +31,9 @@ def crashed_spool(store: ClipStore, data: bytes, *, mtime: float | None = HOUR_A
     return f"tmp/{up.path.name}"
 
 
-def cli(argv: list[str], settings: Settings, monkeypatch: pytest.MonkeyPatch,
-        capsys: pytest.CaptureFixture[str]) -> tuple[int, str]:
+def cli(
+    argv: list[str], settings: Settings, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> tuple[int, str]:
     from server import cli as cli_module
 
     monkeypatch.setenv("TRIALHOUSE_DATA_DIR", str(settings.data_dir))
@@ -55,8 +56,8 @@ def test_start_up_removes_abandoned_spools_and_leaves_young_ones(fresh_settings:
 
 
 def test_storage_check_reports_spools_and_orphans_and_repair_removes_them(
-        fresh_settings: Settings, monkeypatch: pytest.MonkeyPatch,
-        capsys: pytest.CaptureFixture[str]) -> None:
+    fresh_settings: Settings, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     with committed_session(fresh_settings) as s:
         trial = factories.make_trial(s)
         device, _ = factories.make_device(s, trial)

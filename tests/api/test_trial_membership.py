@@ -25,8 +25,8 @@ from server.devices.models import Alert, Device
 from server.errors import NotFound
 from server.households.models import Home
 from server.installations.models import Installation
-from server.staged.models import StagedEvent
 from server.roles import CAPABILITIES
+from server.staged.models import StagedEvent
 from server.trials import service as trials_service
 from server.trials.models import TrialMembership
 from tests import factories
@@ -61,12 +61,24 @@ def _pilot(session: Session, store: Any, settings: Any, tag: str) -> dict[str, A
     now = dt.datetime.now(dt.UTC)
     inst = factories.make_installation(session, dev, home, installed_at=now - dt.timedelta(days=5))
     alert = factories.make_alert(session, store, settings, dev, detected_at=now - dt.timedelta(hours=1))
-    staged = StagedEvent(trial_id=trial.id, home_id=home.id, sound_class="smoke_alarm",
-                         started_at=now - dt.timedelta(hours=3), ended_at=now - dt.timedelta(hours=2))
+    staged = StagedEvent(
+        trial_id=trial.id,
+        home_id=home.id,
+        sound_class="smoke_alarm",
+        started_at=now - dt.timedelta(hours=3),
+        ended_at=now - dt.timedelta(hours=2),
+    )
     session.add(staged)
     session.flush()
-    return {"trial": trial, "device": dev, "home": home, "inst": inst, "alert": alert, "staged": staged,
-            "markers": (trial.code, dev.serial, home.code)}
+    return {
+        "trial": trial,
+        "device": dev,
+        "home": home,
+        "inst": inst,
+        "alert": alert,
+        "staged": staged,
+        "markers": (trial.code, dev.serial, home.code),
+    }
 
 
 @pytest.fixture
@@ -81,9 +93,17 @@ def _limit(session: Session, client: TestClient, *trials: Any) -> TestClient:
 
 
 def _values(p: dict[str, Any]) -> dict[str, str]:
-    return {"serial": p["device"].serial, "alert_id": str(p["alert"].id), "code": p["home"].code,
-            "installation_id": str(p["inst"].id), "event_id": str(p["staged"].id), "target_id": "1",
-            "kind": "spectrogram", "name": "homes", "trial": p["trial"].code}
+    return {
+        "serial": p["device"].serial,
+        "alert_id": str(p["alert"].id),
+        "code": p["home"].code,
+        "installation_id": str(p["inst"].id),
+        "event_id": str(p["staged"].id),
+        "target_id": "1",
+        "kind": "spectrogram",
+        "name": "homes",
+        "trial": p["trial"].code,
+    }
 
 
 def _url(path: str, route: Any, p: dict[str, Any]) -> str:
@@ -97,8 +117,11 @@ def _url(path: str, route: Any, p: dict[str, Any]) -> str:
 
 
 def _staff_routes(app: Any, methods: set[str]) -> list[tuple[str, str, Any, str]]:
-    return [(m, path, route, caps[0]) for m, path, route, caps in all_routes(app)
-            if m in methods and len(caps) == 1 and (m, path) not in PUBLIC and caps[0] not in ADMIN_ONLY]
+    return [
+        (m, path, route, caps[0])
+        for m, path, route, caps in all_routes(app)
+        if m in methods and len(caps) == 1 and (m, path) not in PUBLIC and caps[0] not in ADMIN_ONLY
+    ]
 
 
 def _leaks(text: str, markers: tuple[str, ...]) -> list[str]:
@@ -106,6 +129,7 @@ def _leaks(text: str, markers: tuple[str, ...]) -> list[str]:
 
 
 # --- the rule -------------------------------------------------------------------------------------
+
 
 def test_visible_trials_admin_all_unlimited_all_members_exactly(session: Session, pilots) -> None:  # type: ignore[no-untyped-def]
     a, b = pilots["A"]["trial"], pilots["B"]["trial"]
@@ -138,21 +162,28 @@ def test_membership_changes_are_audited_and_unknown_codes_change_nothing(session
     with pytest.raises(NotFound):
         trials_service.set_memberships(session, coord, [a.code, "NO-SUCH"], actor=admin)
     trials_service.set_memberships(session, coord, [], actor=admin)
-    events = list(session.scalars(select(AuditEvent).where(AuditEvent.action == "user.trials")
-                                  .order_by(AuditEvent.id)))
+    events = list(
+        session.scalars(select(AuditEvent).where(AuditEvent.action == "user.trials").order_by(AuditEvent.id))
+    )
     assert [(e.detail["before"], e.detail["after"]) for e in events] == [
-        ([], sorted([a.code, b.code])), (sorted([a.code, b.code]), [])]
+        ([], sorted([a.code, b.code])),
+        (sorted([a.code, b.code]), []),
+    ]
     assert all(e.actor_id == admin.id and e.object_id == str(coord.id) for e in events)
-    assert session.scalar(select(func.count(TrialMembership.id))
-                          .where(TrialMembership.user_id == coord.id)) == 0
+    assert (
+        session.scalar(select(func.count(TrialMembership.id)).where(TrialMembership.user_id == coord.id)) == 0
+    )
 
 
 # --- every route, read side -----------------------------------------------------------------------
 
+
 def test_every_get_route_hides_the_other_trial(app, staff_client, session: Session, pilots) -> None:  # type: ignore[no-untyped-def]
     a, b = pilots["A"], pilots["B"]
-    clients = {role: _limit(session, staff_client(role, is_adjudicator=True), a["trial"])
-               for role in ("coordinator", "reviewer", "lead")}
+    clients = {
+        role: _limit(session, staff_client(role, is_adjudicator=True), a["trial"])
+        for role in ("coordinator", "reviewer", "lead")
+    }
     problems, checked, not_found = [], 0, 0
     for _, path, route, cap in _staff_routes(app, {"GET"}):
         url = _url(path, route, b)
@@ -171,12 +202,21 @@ def test_every_get_route_hides_the_other_trial(app, staff_client, session: Sessi
     assert checked >= 60 and not_found >= 25, (checked, not_found)
 
 
-KEY_PAGES = ["/api/v1/devices", "/devices", "/api/v1/alerts", "/alerts", "/homes", "/api/v1/homes",
-             "/homes/export.csv", "/api/v1/installations"]
+KEY_PAGES = [
+    "/api/v1/devices",
+    "/devices",
+    "/api/v1/alerts",
+    "/alerts",
+    "/homes",
+    "/api/v1/homes",
+    "/homes/export.csv",
+    "/api/v1/installations",
+]
 
 
 def test_key_pages_show_own_trial_to_limited_and_both_to_admin_and_unlimited(  # type: ignore[no-untyped-def]
-        staff_client, session: Session, pilots) -> None:
+    staff_client, session: Session, pilots
+) -> None:
     a, b = pilots["A"], pilots["B"]
     limited = _limit(session, staff_client("coordinator"), a["trial"])
     admin = _limit(session, staff_client("admin"), a["trial"])  # rows are ignored for admins
@@ -191,8 +231,11 @@ def test_key_pages_show_own_trial_to_limited_and_both_to_admin_and_unlimited(  #
         sep = "&" if "?" in url else "?"
         for trial_side in ("A", "B"):
             p = pilots[trial_side]
-            u = url + (f"{sep}trial={p['trial'].code}" if url in ("/homes", "/api/v1/homes", "/homes/export.csv",
-                                                                  "/api/v1/installations") else "")
+            u = url + (
+                f"{sep}trial={p['trial'].code}"
+                if url in ("/homes", "/api/v1/homes", "/homes/export.csv", "/api/v1/installations")
+                else ""
+            )
             for c in (admin, unlimited):
                 assert _leaks(get(c, u), p["markers"][1:]), (u, "admin/unlimited sees it")
         assert _leaks(get(limited, url), a["markers"][1:]), url
@@ -214,6 +257,7 @@ def test_key_pages_show_own_trial_to_limited_and_both_to_admin_and_unlimited(  #
 
 # --- every route, write side ----------------------------------------------------------------------
 
+
 def _snapshot(session: Session, p: dict[str, Any]) -> tuple[Any, ...]:
     session.expire_all()
     home = session.get(Home, p["home"].id)
@@ -221,17 +265,25 @@ def _snapshot(session: Session, p: dict[str, Any]) -> tuple[Any, ...]:
     alert = session.get(Alert, p["alert"].id)
     assert home is not None and dev is not None and alert is not None
     insts = session.scalars(select(Installation).where(Installation.home_id == home.id)).all()
-    return (home.state, dict(home.attributes), dev.revoked_at, alert.state, alert.private_flag,
-            [(i.id, i.room, i.installed_at, i.removed_at) for i in insts],
-            session.scalar(select(func.count(StagedEvent.id)).where(StagedEvent.trial_id == p["trial"].id)),
-            session.scalar(select(func.count(Home.id)).where(Home.trial_id == p["trial"].id)),
-            session.scalar(select(func.count(Device.id)).where(Device.trial_id == p["trial"].id)))
+    return (
+        home.state,
+        dict(home.attributes),
+        dev.revoked_at,
+        alert.state,
+        alert.private_flag,
+        [(i.id, i.room, i.installed_at, i.removed_at) for i in insts],
+        session.scalar(select(func.count(StagedEvent.id)).where(StagedEvent.trial_id == p["trial"].id)),
+        session.scalar(select(func.count(Home.id)).where(Home.trial_id == p["trial"].id)),
+        session.scalar(select(func.count(Device.id)).where(Device.trial_id == p["trial"].id)),
+    )
 
 
 def test_every_write_route_leaves_the_other_trial_alone(app, staff_client, session: Session, pilots) -> None:  # type: ignore[no-untyped-def]
     a, b = pilots["A"], pilots["B"]
-    clients = {role: _limit(session, staff_client(role, is_adjudicator=True), a["trial"])
-               for role in ("coordinator", "reviewer")}
+    clients = {
+        role: _limit(session, staff_client(role, is_adjudicator=True), a["trial"])
+        for role in ("coordinator", "reviewer")
+    }
     tokens = {role: csrf_of(c) for role, c in clients.items()}
     before = _snapshot(session, b)
     problems, sent = [], 0
@@ -242,13 +294,29 @@ def test_every_write_route_leaves_the_other_trial_alone(app, staff_client, sessi
                 continue
             headers = {"X-CSRF-Token": tokens[role]}
             if path.startswith("/api/"):
-                body = {"trial": b["trial"].code, "home": b["home"].code, "serial": b["device"].serial,
-                        "room": "hallway", "label": "false_alarm", "cause": "dog", "attributes": {}}
+                body = {
+                    "trial": b["trial"].code,
+                    "home": b["home"].code,
+                    "serial": b["device"].serial,
+                    "room": "hallway",
+                    "label": "false_alarm",
+                    "cause": "dog",
+                    "attributes": {},
+                }
                 r = c.request(method, url, json=body, headers=headers)
             else:
-                r = c.request(method, url, data={"csrf_token": tokens[role], "trial": b["trial"].code,
-                                                 "state": "withdrawn", "room": "hallway"},
-                              headers=headers, follow_redirects=False)
+                r = c.request(
+                    method,
+                    url,
+                    data={
+                        "csrf_token": tokens[role],
+                        "trial": b["trial"].code,
+                        "state": "withdrawn",
+                        "room": "hallway",
+                    },
+                    headers=headers,
+                    follow_redirects=False,
+                )
             sent += 1
             if r.status_code >= 500 or r.status_code == 403:
                 problems.append(f"{role} {method} {url}: {r.status_code} {r.text[:200]}")
@@ -259,7 +327,9 @@ def test_every_write_route_leaves_the_other_trial_alone(app, staff_client, sessi
     assert _snapshot(session, b) == before
 
 
-def test_writes_naming_the_other_trial_get_its_not_found_codes(staff_client, session: Session, pilots) -> None:  # type: ignore[no-untyped-def]
+def test_writes_naming_the_other_trial_get_its_not_found_codes(
+    staff_client, session: Session, pilots
+) -> None:  # type: ignore[no-untyped-def]
     a, b = pilots["A"], pilots["B"]
     coord = _limit(session, staff_client("coordinator"), a["trial"])
     rev = _limit(session, staff_client("reviewer"), a["trial"])
@@ -273,15 +343,21 @@ def test_writes_naming_the_other_trial_get_its_not_found_codes(staff_client, ses
     r = coord.post("/api/v1/homes", json={"trial": a["trial"].code}, headers=h)
     assert r.status_code == 201 and r.json()["code"] == "H-85523", r.text  # next free code overall
     # A clash with a hidden trial's unique serial or home code is refused without a 500.
-    r = coord.post("/api/v1/devices", json={"serial": b["device"].serial, "trial": a["trial"].code,
-                                            "hardware_model": "HX-1"}, headers=h)
+    r = coord.post(
+        "/api/v1/devices",
+        json={"serial": b["device"].serial, "trial": a["trial"].code, "hardware_model": "HX-1"},
+        headers=h,
+    )
     assert r.status_code == 409, r.text
     r = coord.post("/api/v1/homes", json={"trial": a["trial"].code, "code": b["home"].code}, headers=h)
     assert r.status_code == 409, r.text
     r = coord.post("/api/v1/homes", json={"trial": a["trial"].code}, headers=h)
     assert r.status_code == 201 and r.json()["code"] == "H-85524", r.text
-    r = rev.post(f"/api/v1/alerts/{b['alert'].id}/verdicts", json={"label": "false_alarm", "cause": "dog"},
-                 headers={"X-CSRF-Token": csrf_of(rev)})
+    r = rev.post(
+        f"/api/v1/alerts/{b['alert'].id}/verdicts",
+        json={"label": "false_alarm", "cause": "dog"},
+        headers={"X-CSRF-Token": csrf_of(rev)},
+    )
     assert r.status_code == 404
     session.expire_all()
     assert session.get(Alert, b["alert"].id).state == "pending"  # type: ignore[union-attr]

@@ -13,10 +13,21 @@ from tests.api.test_cli import data_dir, run, settings_for  # noqa: F401  (fixtu
 from tests.conftest import committed_session
 
 
-def test_trial_add_and_set_change_the_window_and_target(data_dir: Path,  # noqa: F811
-                                                        capsys: pytest.CaptureFixture[str]) -> None:
-    code, _, err = run(capsys, "trial", "add", "--code", "AUTUMN-7", "--sound-classes", "smoke_alarm",
-                       "--disturbance-window", "90")
+def test_trial_add_and_set_change_the_window_and_target(
+    data_dir: Path,  # noqa: F811
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    code, _, err = run(
+        capsys,
+        "trial",
+        "add",
+        "--code",
+        "AUTUMN-7",
+        "--sound-classes",
+        "smoke_alarm",
+        "--disturbance-window",
+        "90",
+    )
     assert code == 0, err
     code, out, err = run(capsys, "trial", "set", "autumn-7", "--target", "0.5", "--disturbance-window", "120")
     assert code == 0, err

@@ -69,14 +69,24 @@ def bare_app(url: str, root: Path) -> Any:
     engine = make_engine(url)
     writer = writer_engine(engine)
     meta_sa = sa.MetaData()
-    device = sa.Table("bare_device", meta_sa, sa.Column("id", sa.Integer, primary_key=True),
-                      sa.Column("token_hash", sa.String(64), unique=True),
-                      sa.Column("last_seen_at", sa.Float))
-    clip = sa.Table("bare_clip", meta_sa, sa.Column("id", sa.Integer, primary_key=True),
-                    sa.Column("device_id", sa.Integer), sa.Column("event_id", sa.String(128)),
-                    sa.Column("sha256", sa.String(64)), sa.Column("size_bytes", sa.Integer),
-                    sa.Column("received_at", sa.Float),
-                    sa.UniqueConstraint("device_id", "event_id"))
+    device = sa.Table(
+        "bare_device",
+        meta_sa,
+        sa.Column("id", sa.Integer, primary_key=True),
+        sa.Column("token_hash", sa.String(64), unique=True),
+        sa.Column("last_seen_at", sa.Float),
+    )
+    clip = sa.Table(
+        "bare_clip",
+        meta_sa,
+        sa.Column("id", sa.Integer, primary_key=True),
+        sa.Column("device_id", sa.Integer),
+        sa.Column("event_id", sa.String(128)),
+        sa.Column("sha256", sa.String(64)),
+        sa.Column("size_bytes", sa.Integer),
+        sa.Column("received_at", sa.Float),
+        sa.UniqueConstraint("device_id", "event_id"),
+    )
     tmp = root / "tmp"
     tmp.mkdir(parents=True, exist_ok=True)
 
@@ -89,8 +99,11 @@ def bare_app(url: str, root: Path) -> Any:
 
     def lookup(token: str) -> int | None:
         with engine.connect() as conn:
-            return conn.execute(sa.select(device.c.id).where(
-                device.c.token_hash == hashlib.sha256(token.encode()).hexdigest())).scalar()
+            return conn.execute(
+                sa.select(device.c.id).where(
+                    device.c.token_hash == hashlib.sha256(token.encode()).hexdigest()
+                )
+            ).scalar()
 
     def token_of(request: Request) -> str:
         scheme, _, value = request.headers.get("authorization", "").partition(" ")
@@ -124,22 +137,32 @@ def bare_app(url: str, root: Path) -> Any:
             chunk = d[s:e]
             if st["name"] == "clip":
                 if len(st["head"]) < 44:
-                    st["head"] += chunk[:44 - len(st["head"])]
+                    st["head"] += chunk[: 44 - len(st["head"])]
                 fh.write(chunk)
                 h.update(chunk)
             elif st["name"] == "meta":
                 st["meta"] += chunk
 
-        parser = MultipartParser(params[b"boundary"], {
-            "on_header_field": on_header_field, "on_header_value": on_header_value,
-            "on_header_end": on_header_end, "on_headers_finished": on_headers_finished,
-            "on_part_data": on_part_data})
+        parser = MultipartParser(
+            params[b"boundary"],
+            {
+                "on_header_field": on_header_field,
+                "on_header_value": on_header_value,
+                "on_header_end": on_header_end,
+                "on_headers_finished": on_headers_finished,
+                "on_part_data": on_part_data,
+            },
+        )
         async for chunk in request.stream():
             parser.write(chunk)
         parser.finalize()
         head = st["head"]
-        ok = (head[:4] == b"RIFF" and head[8:12] == b"WAVE" and head[12:16] == b"fmt "
-              and struct.unpack("<HHI", head[20:28]) == (1, 1, 16000))
+        ok = (
+            head[:4] == b"RIFF"
+            and head[8:12] == b"WAVE"
+            and head[12:16] == b"fmt "
+            and struct.unpack("<HHI", head[20:28]) == (1, 1, 16000)
+        )
         if not ok:
             fh.close()
             os.unlink(name)
@@ -153,8 +176,9 @@ def bare_app(url: str, root: Path) -> Any:
             fh.close()
             with writer.connect() as conn:
                 with conn.begin():
-                    found = conn.execute(sa.select(clip.c.id).where(
-                        clip.c.device_id == device_id, clip.c.event_id == event_id)).scalar()
+                    found = conn.execute(
+                        sa.select(clip.c.id).where(clip.c.device_id == device_id, clip.c.event_id == event_id)
+                    ).scalar()
                     if found is not None:
                         os.unlink(name)
                         return found, True
@@ -167,9 +191,15 @@ def bare_app(url: str, root: Path) -> Any:
                             fsync_dir(d.parent)
                     os.replace(name, final)
                     fsync_dir(final.parent)
-                    new_id = conn.execute(clip.insert().values(
-                        device_id=device_id, event_id=event_id, sha256=sha, size_bytes=final.stat().st_size,
-                        received_at=time.time())).inserted_primary_key[0]
+                    new_id = conn.execute(
+                        clip.insert().values(
+                            device_id=device_id,
+                            event_id=event_id,
+                            sha256=sha,
+                            size_bytes=final.stat().st_size,
+                            received_at=time.time(),
+                        )
+                    ).inserted_primary_key[0]
                     return int(new_id), False
 
         alert_id, dup = await run_in_threadpool(work)
@@ -186,13 +216,23 @@ def bare_app(url: str, root: Path) -> Any:
         def work() -> None:
             with writer.connect() as conn:
                 with conn.begin():
-                    conn.execute(device.update().where(device.c.id == device_id).values(last_seen_at=time.time()))
+                    conn.execute(
+                        device.update().where(device.c.id == device_id).values(last_seen_at=time.time())
+                    )
 
         await run_in_threadpool(work)
         return JSONResponse({"received_at": dt.datetime.now(dt.UTC).isoformat(), "next_heartbeat_s": 60})
 
-    return Starlette(routes=[Route("/api/v1/alerts", alerts, methods=["POST"]),
-                             Route("/api/v1/heartbeats", heartbeats, methods=["POST"])]), meta_sa, device
+    return (
+        Starlette(
+            routes=[
+                Route("/api/v1/alerts", alerts, methods=["POST"]),
+                Route("/api/v1/heartbeats", heartbeats, methods=["POST"]),
+            ]
+        ),
+        meta_sa,
+        device,
+    )
 
 
 def serve(kind: str, url: str, data_dir: Path, port: int) -> None:
@@ -214,7 +254,7 @@ def serve(kind: str, url: str, data_dir: Path, port: int) -> None:
 
 def prepare(th_url: str, bare_url: str, th_dir: Path, bare_dir: Path, n_devices: int) -> list[str]:
     from server import migrate
-    from server.db import make_engine, session_scope, make_session_factory
+    from server.db import make_engine, make_session_factory, session_scope
     from server.devices import service as devices_service
     from server.trials import service as trials_service
 
@@ -222,8 +262,13 @@ def prepare(th_url: str, bare_url: str, th_dir: Path, bare_dir: Path, n_devices:
     migrate.upgrade(engine)
     tokens = []
     with session_scope(make_session_factory(engine)) as s:
-        trial = trials_service.create_trial(s, code="BENCH", name="Benchmark", starts_on=dt.date(2026, 1, 1),
-                                            sound_classes=["smoke_alarm", "baby_cry", "glass_break"])
+        trial = trials_service.create_trial(
+            s,
+            code="BENCH",
+            name="Benchmark",
+            starts_on=dt.date(2026, 1, 1),
+            sound_classes=["smoke_alarm", "baby_cry", "glass_break"],
+        )
         for i in range(n_devices):
             _, tok = devices_service.register_device(s, serial=f"BN-{i:03d}", trial=trial)
             tokens.append(tok)
@@ -232,8 +277,13 @@ def prepare(th_url: str, bare_url: str, th_dir: Path, bare_dir: Path, n_devices:
     engine = make_engine(bare_url)
     meta_sa.create_all(engine)
     with engine.begin() as conn:
-        conn.execute(device.insert(), [{"id": i + 1, "token_hash": hashlib.sha256(t.encode()).hexdigest()}
-                                       for i, t in enumerate(tokens)])
+        conn.execute(
+            device.insert(),
+            [
+                {"id": i + 1, "token_hash": hashlib.sha256(t.encode()).hexdigest()}
+                for i, t in enumerate(tokens)
+            ],
+        )
     engine.dispose()
     return tokens
 
@@ -295,23 +345,36 @@ class ClipRequests:
     def __init__(self, clips: list[bytes], token: str, port: int, tag: str) -> None:
         self.clips = [memoryview(c) for c in clips]
         self.token, self.port, self.tag = token, port, tag
-        self.clip_head = (f'--{BOUNDARY}\r\nContent-Disposition: form-data; name="clip"; filename="c.wav"\r\n'
-                          f"Content-Type: audio/wav\r\n\r\n").encode()
+        self.clip_head = (
+            f'--{BOUNDARY}\r\nContent-Disposition: form-data; name="clip"; filename="c.wav"\r\n'
+            f"Content-Type: audio/wav\r\n\r\n"
+        ).encode()
         self.tail = f"\r\n--{BOUNDARY}--\r\n".encode()
         self.n = 0
 
     def next(self) -> list[bytes | memoryview]:
         self.n += 1
         clip = self.clips[self.n % len(self.clips)]
-        meta = json.dumps({"event_id": f"{self.tag}-{self.n}", "sound_class": "smoke_alarm", "score": 0.9,
-                           "detected_at": dt.datetime.now(dt.UTC).isoformat(), "clip_offset_s": 1.0,
-                           "firmware": "bench-1"})
-        meta_part = (f'--{BOUNDARY}\r\nContent-Disposition: form-data; name="meta"\r\n\r\n{meta}\r\n').encode()
+        meta = json.dumps(
+            {
+                "event_id": f"{self.tag}-{self.n}",
+                "sound_class": "smoke_alarm",
+                "score": 0.9,
+                "detected_at": dt.datetime.now(dt.UTC).isoformat(),
+                "clip_offset_s": 1.0,
+                "firmware": "bench-1",
+            }
+        )
+        meta_part = (
+            f'--{BOUNDARY}\r\nContent-Disposition: form-data; name="meta"\r\n\r\n{meta}\r\n'
+        ).encode()
         unique = struct.pack("<Q", hash((self.tag, self.n)) & 0xFFFFFFFFFFFFFFFF)  # the last 4 samples
         length = len(meta_part) + len(self.clip_head) + len(clip) + len(self.tail)
-        head = (f"POST /api/v1/alerts HTTP/1.1\r\nHost: 127.0.0.1:{self.port}\r\n"
-                f"Authorization: Bearer {self.token}\r\n"
-                f"Content-Type: multipart/form-data; boundary={BOUNDARY}\r\nContent-Length: {length}\r\n\r\n")
+        head = (
+            f"POST /api/v1/alerts HTTP/1.1\r\nHost: 127.0.0.1:{self.port}\r\n"
+            f"Authorization: Bearer {self.token}\r\n"
+            f"Content-Type: multipart/form-data; boundary={BOUNDARY}\r\nContent-Length: {length}\r\n\r\n"
+        )
         return [head.encode() + meta_part + self.clip_head, clip[:-8], unique + self.tail]
 
 
@@ -320,11 +383,14 @@ class BeatRequests:
         self.token, self.port = token, port
 
     def next(self) -> list[bytes | memoryview]:
-        body = json.dumps({"sent_at": dt.datetime.now(dt.UTC).isoformat(), "listening": True,
-                           "firmware": "bench-1"}).encode()
-        head = (f"POST /api/v1/heartbeats HTTP/1.1\r\nHost: 127.0.0.1:{self.port}\r\n"
-                f"Authorization: Bearer {self.token}\r\nContent-Type: application/json\r\n"
-                f"Content-Length: {len(body)}\r\n\r\n").encode()
+        body = json.dumps(
+            {"sent_at": dt.datetime.now(dt.UTC).isoformat(), "listening": True, "firmware": "bench-1"}
+        ).encode()
+        head = (
+            f"POST /api/v1/heartbeats HTTP/1.1\r\nHost: 127.0.0.1:{self.port}\r\n"
+            f"Authorization: Bearer {self.token}\r\nContent-Type: application/json\r\n"
+            f"Content-Length: {len(body)}\r\n\r\n"
+        ).encode()
         return [head + body]
 
 
@@ -337,8 +403,16 @@ class Result:
     requests: int
 
 
-def measure(port: int, kind: str, tokens: list[str], clips: list[bytes], clients: int, seconds: float,
-            warmup: float, tag: str) -> Result:
+def measure(
+    port: int,
+    kind: str,
+    tokens: list[str],
+    clips: list[bytes],
+    clients: int,
+    seconds: float,
+    warmup: float,
+    tag: str,
+) -> Result:
     expected = 201 if kind == "clip" else 200
     barrier = threading.Barrier(clients + 1)
     t_box: dict[str, float] = {}
@@ -347,8 +421,11 @@ def measure(port: int, kind: str, tokens: list[str], clips: list[bytes], clients
 
     def worker(i: int) -> None:
         conn = Conn(port)
-        gen: Any = (ClipRequests(clips, tokens[i], port, f"{tag}-{i}") if kind == "clip"
-                    else BeatRequests(tokens[i], port))
+        gen: Any = (
+            ClipRequests(clips, tokens[i], port, f"{tag}-{i}")
+            if kind == "clip"
+            else BeatRequests(tokens[i], port)
+        )
         barrier.wait()
         start, end = t_box["start"], t_box["end"]
         try:
@@ -383,8 +460,13 @@ def measure(port: int, kind: str, tokens: list[str], clips: list[bytes], clients
     n = len(all_lat)
     if n == 0:
         return Result(0.0, float("nan"), float("nan"), sum(errors), 0)
-    return Result(rps=n / seconds, p50_ms=1000 * all_lat[n // 2],
-                  p99_ms=1000 * all_lat[min(n - 1, int(0.99 * n))], errors=sum(errors), requests=n)
+    return Result(
+        rps=n / seconds,
+        p50_ms=1000 * all_lat[n // 2],
+        p99_ms=1000 * all_lat[min(n - 1, int(0.99 * n))],
+        errors=sum(errors),
+        requests=n,
+    )
 
 
 # =====================================================================================
@@ -416,8 +498,18 @@ def wait_idle(pids: list[int], limit_s: float = 300.0) -> float:
 
 def start_server(kind: str, url: str, data_dir: Path) -> tuple[subprocess.Popen[bytes], int]:
     port = free_port()
-    cmd = [sys.executable, str(Path(__file__).resolve()), "--serve", kind, "--url", url,
-           "--data-dir", str(data_dir), "--port", str(port)]
+    cmd = [
+        sys.executable,
+        str(Path(__file__).resolve()),
+        "--serve",
+        kind,
+        "--url",
+        url,
+        "--data-dir",
+        str(data_dir),
+        "--port",
+        str(port),
+    ]
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     proc = subprocess.Popen(cmd, cwd=ROOT, env=env)
     deadline = time.time() + 60
@@ -459,8 +551,9 @@ def med(values: list[float]) -> float:
     return statistics.median(values)
 
 
-def run_backend(name: str, th_url: str, bare_url: str, work: Path, args: argparse.Namespace,
-                clips: list[bytes]) -> dict[tuple[str, int], Cell]:
+def run_backend(
+    name: str, th_url: str, bare_url: str, work: Path, args: argparse.Namespace, clips: list[bytes]
+) -> dict[tuple[str, int], Cell]:
     th_dir, bare_dir = work / f"{name}-th", work / f"{name}-bare"
     max_clients = max(args.clients)
     tokens = prepare(th_url, bare_url, th_dir, bare_dir, max_clients)
@@ -477,12 +570,23 @@ def run_backend(name: str, th_url: str, bare_url: str, work: Path, args: argpars
                         order.reverse()
                     for side, port, d in order:
                         wait_idle([th.pid, bare.pid])
-                        res = measure(port, kind, tokens, clips, clients, args.seconds, args.warmup,
-                                      tag=f"{name}-{side}-{kind}-{clients}-{rnd}")
+                        res = measure(
+                            port,
+                            kind,
+                            tokens,
+                            clips,
+                            clients,
+                            args.seconds,
+                            args.warmup,
+                            tag=f"{name}-{side}-{kind}-{clients}-{rnd}",
+                        )
                         (cell.th if side == "th" else cell.bare).append(res)
-                        print(f"  {name:8s} {kind:9s} c={clients:<2d} round {rnd + 1} {side:4s} "
-                              f"{res.rps:8.1f} req/s  p50 {res.p50_ms:7.1f} ms  p99 {res.p99_ms:7.1f} ms"
-                              f"  errors {res.errors}", flush=True)
+                        print(
+                            f"  {name:8s} {kind:9s} c={clients:<2d} round {rnd + 1} {side:4s} "
+                            f"{res.rps:8.1f} req/s  p50 {res.p50_ms:7.1f} ms  p99 {res.p99_ms:7.1f} ms"
+                            f"  errors {res.errors}",
+                            flush=True,
+                        )
                         if kind == "clip":
                             wait_idle([th.pid, bare.pid])
                             clear_clip_files(d)
@@ -493,9 +597,11 @@ def run_backend(name: str, th_url: str, bare_url: str, work: Path, args: argpars
 
 
 def report(name: str, cells: dict[tuple[str, int], Cell]) -> list[str]:
-    lines = [f"{name}:",
-             f"  {'kind':9s} {'clients':>7s} | {'trialhouse req/s':>16s} {'p50 ms':>7s} {'p99 ms':>7s} | "
-             f"{'bare req/s':>10s} {'p50 ms':>7s} {'p99 ms':>7s} | {'ratio':>5s}  targets"]
+    lines = [
+        f"{name}:",
+        f"  {'kind':9s} {'clients':>7s} | {'trialhouse req/s':>16s} {'p50 ms':>7s} {'p99 ms':>7s} | "
+        f"{'bare req/s':>10s} {'p50 ms':>7s} {'p99 ms':>7s} | {'ratio':>5s}  targets",
+    ]
     for (kind, clients), c in cells.items():
         th_rps, bare_rps = med([r.rps for r in c.th]), med([r.rps for r in c.bare])
         th_p50, th_p99 = med([r.p50_ms for r in c.th]), med([r.p99_ms for r in c.th])
@@ -503,9 +609,11 @@ def report(name: str, cells: dict[tuple[str, int], Cell]) -> list[str]:
         ratio = th_rps / bare_rps if bare_rps else float("nan")
         ok = ratio >= 0.5 and (clients < 32 or th_p99 < 250)
         errs = sum(r.errors for r in c.th + c.bare)
-        lines.append(f"  {kind:9s} {clients:7d} | {th_rps:16.1f} {th_p50:7.1f} {th_p99:7.1f} | "
-                     f"{bare_rps:10.1f} {b_p50:7.1f} {b_p99:7.1f} | {ratio:5.2f}  "
-                     f"{'met' if ok else 'MISSED'}{f'  ({errs} errors)' if errs else ''}")
+        lines.append(
+            f"  {kind:9s} {clients:7d} | {th_rps:16.1f} {th_p50:7.1f} {th_p99:7.1f} | "
+            f"{bare_rps:10.1f} {b_p50:7.1f} {b_p99:7.1f} | {ratio:5.2f}  "
+            f"{'met' if ok else 'MISSED'}{f'  ({errs} errors)' if errs else ''}"
+        )
     return lines
 
 
@@ -523,7 +631,9 @@ class BenchCluster:
         if r.returncode:
             raise RuntimeError(f"initdb failed: {r.stderr.strip()}")
         opts = f"-p {c.port} -k {c.dir} -c listen_addresses=127.0.0.1 -c max_connections=200"
-        r = c._run(c.pg_ctl, "-D", str(c.data), "-o", opts, "-l", str(c.dir / "log"), "-w", "-t", "60", "start")
+        r = c._run(
+            c.pg_ctl, "-D", str(c.data), "-o", opts, "-l", str(c.dir / "log"), "-w", "-t", "60", "start"
+        )
         if r.returncode:
             raise RuntimeError(f"pg_ctl start failed: {r.stderr.strip()}")
         return f"postgresql+psycopg://trialhouse@127.0.0.1:{c.port}/postgres"
@@ -545,8 +655,9 @@ def make_clips(n: int) -> list[bytes]:
 
     rng = np.random.default_rng(2026)
     kinds = ["smoke_alarm_t3", "baby_cry", "glass_break", "dog_bark"]
-    return [sounds.make_clip(kinds[i % len(kinds)], rate_hz=16000, duration_s=10.0, rng=rng)[0]
-            for i in range(n)]
+    return [
+        sounds.make_clip(kinds[i % len(kinds)], rate_hz=16000, duration_s=10.0, rng=rng)[0] for i in range(n)
+    ]
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -569,15 +680,24 @@ def main(argv: list[str] | None = None) -> int:
     args.rounds = max(3, args.rounds)
     backends = [b.strip() for b in args.backends.split(",") if b.strip()]
     clips = make_clips(8)
-    print(f"clips: {len(clips)} distinct 10 s 16 kHz mono PCM16 WAVs of {len(clips[0])} bytes; "
-          f"{args.rounds} rounds x {args.seconds:g} s per side; "
-          f"{os.cpu_count()} CPUs", flush=True)
+    print(
+        f"clips: {len(clips)} distinct 10 s 16 kHz mono PCM16 WAVs of {len(clips[0])} bytes; "
+        f"{args.rounds} rounds x {args.seconds:g} s per side; "
+        f"{os.cpu_count()} CPUs",
+        flush=True,
+    )
     out: list[str] = []
     with tempfile.TemporaryDirectory(prefix="trialhouse-bench-") as tmp:
         work = Path(tmp)
         if "sqlite" in backends:
-            cells = run_backend("sqlite", f"sqlite:///{work / 'th.sqlite'}", f"sqlite:///{work / 'bare.sqlite'}",
-                                work, args, clips)
+            cells = run_backend(
+                "sqlite",
+                f"sqlite:///{work / 'th.sqlite'}",
+                f"sqlite:///{work / 'bare.sqlite'}",
+                work,
+                args,
+                clips,
+            )
             out += report("SQLite (WAL, synchronous=FULL)", cells)
         if "postgres" in backends:
             cluster = None

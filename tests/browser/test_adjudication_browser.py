@@ -25,10 +25,16 @@ def _seed(srv):  # type: ignore[no-untyped-def]
         home = factories.make_home(s, trial)
         factories.make_installation(s, device, home, installed_at=start - dt.timedelta(days=2))
         theirs, hers = (
-            factories.make_alert(s, store, settings, device, now=start + dt.timedelta(minutes=i),
-                                 detected_at=start + dt.timedelta(minutes=i),
-                                 clip=factories.sine_wav(seconds=2.0, freq=700.0 + 200 * i, seed=i),
-                                 clip_offset_s=0.5)
+            factories.make_alert(
+                s,
+                store,
+                settings,
+                device,
+                now=start + dt.timedelta(minutes=i),
+                detected_at=start + dt.timedelta(minutes=i),
+                clip=factories.sine_wav(seconds=2.0, freq=700.0 + 200 * i, seed=i),
+                clip_offset_s=0.5,
+            )
             for i in range(2)
         )
         first, _ = factories.make_user(s, role="reviewer")
@@ -37,8 +43,9 @@ def _seed(srv):  # type: ignore[no-untyped-def]
         # Two disagreements: one between two other reviewers, one in which the adjudicator took part.
         for alert, a, b in ((theirs, first, second), (hers, judge, second)):
             review_service.record_verdict(s, reviewer=a, alert_id=alert.id, label="confirmed")
-            review_service.record_verdict(s, reviewer=b, alert_id=alert.id, label="false_alarm",
-                                          cause="dog", resemblance="unrelated")
+            review_service.record_verdict(
+                s, reviewer=b, alert_id=alert.id, label="false_alarm", cause="dog", resemblance="unrelated"
+            )
         s.flush()
         assert {a.state for a in s.scalars(select(Alert))} == {"adjudication"}
         return {"theirs": theirs.id, "hers": hers.id, "email": judge.email, "password": password}

@@ -30,20 +30,29 @@ def pages_for(demo: seed.SeedResult, role: str) -> list[tuple[str, str]]:
     """(path, text the page must show) for the role's main pages."""
     week = (demo.plan.end - dt.timedelta(days=7)).isocalendar()
     by_role = {
-        "admin": [("/devices", demo.plan.skewed_serial), ("/alerts", demo.code("cockatoo")),
-                  (f"/devices/{demo.plan.mover_serial}", demo.plan.mover_serial)],
-        "coordinator": [("/homes", demo.code("cockatoo")),
-                        (f"/homes/{demo.code('mover_to')}", demo.plan.mover_serial), ("/quota", "aged 75")],
+        "admin": [
+            ("/devices", demo.plan.skewed_serial),
+            ("/alerts", demo.code("cockatoo")),
+            (f"/devices/{demo.plan.mover_serial}", demo.plan.mover_serial),
+        ],
+        "coordinator": [
+            ("/homes", demo.code("cockatoo")),
+            (f"/homes/{demo.code('mover_to')}", demo.plan.mover_serial),
+            ("/quota", "aged 75"),
+        ],
         "reviewer": [("/review", "Listening desk")],
-        "lead": [("/review/agreement", "Reviewer agreement"),
-                 (f"/summary?week={week.year}-W{week.week:02d}", demo.code("cockatoo"))],
+        "lead": [
+            ("/review/agreement", "Reviewer agreement"),
+            (f"/summary?week={week.year}-W{week.week:02d}", demo.code("cockatoo")),
+        ],
     }
     return by_role[role]
 
 
 @pytest.mark.parametrize("role", ["admin", "coordinator", "reviewer", "lead"])
-def test_main_pages_render_without_console_errors(role: str, demo: seed.SeedResult, server: LiveServer,
-                                                  page) -> None:  # type: ignore[no-untyped-def]
+def test_main_pages_render_without_console_errors(
+    role: str, demo: seed.SeedResult, server: LiveServer, page
+) -> None:  # type: ignore[no-untyped-def]
     who = demo.sign_in(role, adjudicator=False if role == "reviewer" else None)
     browser_sign_in(page, server.url, who.email, who.password)
     assert "/login" not in page.url, f"{who.email} could not sign in"
@@ -56,8 +65,9 @@ def test_main_pages_render_without_console_errors(role: str, demo: seed.SeedResu
         assert page.console_errors == [], (path, page.console_errors)
 
 
-def test_the_listening_desk_hands_the_reviewer_a_clip_that_plays(demo: seed.SeedResult, server: LiveServer,
-                                                                 page) -> None:  # type: ignore[no-untyped-def]
+def test_the_listening_desk_hands_the_reviewer_a_clip_that_plays(
+    demo: seed.SeedResult, server: LiveServer, page
+) -> None:  # type: ignore[no-untyped-def]
     who = demo.sign_in("reviewer", adjudicator=False)
     browser_sign_in(page, server.url, who.email, who.password)
     page.goto(f"{server.url}/review")
@@ -77,8 +87,9 @@ def test_the_listening_desk_hands_the_reviewer_a_clip_that_plays(demo: seed.Seed
     assert page.console_errors == []
 
 
-def test_the_adjudicator_sees_the_disagreements_waiting(demo: seed.SeedResult, server: LiveServer,
-                                                        page) -> None:  # type: ignore[no-untyped-def]
+def test_the_adjudicator_sees_the_disagreements_waiting(
+    demo: seed.SeedResult, server: LiveServer, page
+) -> None:  # type: ignore[no-untyped-def]
     who = demo.sign_in("reviewer", adjudicator=True)
     browser_sign_in(page, server.url, who.email, who.password)
     response = page.goto(f"{server.url}/review/adjudication")

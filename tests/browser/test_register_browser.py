@@ -105,12 +105,23 @@ def test_coordinator_erases_a_home_and_its_late_clip_is_refused(live_server, pag
     assert list(store.iter_keys()) == []
 
     # The device sends what it buffered while offline, heard while it was in the home.
-    meta = {"event_id": "buffered-7", "sound_class": "smoke_alarm", "score": 0.9,
-            "detected_at": (now - dt.timedelta(days=1)).isoformat(), "clip_offset_s": 0.1,
-            "firmware": "1.0.0"}
-    r = httpx2.post(f"{base}/api/v1/alerts", headers={"Authorization": f"Bearer {token}"},
-                   files={"clip": ("c.wav", factories.sine_wav(seed=4711), "audio/wav"),
-                          "meta": (None, json.dumps(meta))}, timeout=30)
+    meta = {
+        "event_id": "buffered-7",
+        "sound_class": "smoke_alarm",
+        "score": 0.9,
+        "detected_at": (now - dt.timedelta(days=1)).isoformat(),
+        "clip_offset_s": 0.1,
+        "firmware": "1.0.0",
+    }
+    r = httpx2.post(
+        f"{base}/api/v1/alerts",
+        headers={"Authorization": f"Bearer {token}"},
+        files={
+            "clip": ("c.wav", factories.sine_wav(seed=4711), "audio/wav"),
+            "meta": (None, json.dumps(meta)),
+        },
+        timeout=30,
+    )
     assert r.status_code == 410 and r.json()["error"]["code"] == "home_erased"
     assert list(store.iter_keys()) == [] and list(store.tmp.iterdir()) == []
     assert page.console_errors == []  # type: ignore[attr-defined]

@@ -419,7 +419,9 @@ def test_backlog_count_and_age() -> None:
 def test_backlog_ages_are_never_negative() -> None:
     # Received after "now" (clock stepped back): waited 0 s. Ages 0, 0, 3600 -> oldest 3600, median 0.
     now = T0
-    b = ag.backlog([T0 + dt.timedelta(hours=2), T0 + dt.timedelta(seconds=1), T0 - dt.timedelta(hours=1)], now)
+    b = ag.backlog(
+        [T0 + dt.timedelta(hours=2), T0 + dt.timedelta(seconds=1), T0 - dt.timedelta(hours=1)], now
+    )
     assert (b.count, b.oldest_age_s, b.median_age_s) == (3, 3600.0, 0.0)
 
 

@@ -265,8 +265,14 @@ def _reports(*rows):
 def _cut(windows, reports, current):
     out = exposure.split_by_firmware(windows, reports, pd.Series(current))
     return [
-        (int(r.window_id), int(r.device_id), int(r.home_id), r.started_at.isoformat(), r.ended_at.isoformat(),
-         r.firmware)
+        (
+            int(r.window_id),
+            int(r.device_id),
+            int(r.home_id),
+            r.started_at.isoformat(),
+            r.ended_at.isoformat(),
+            r.firmware,
+        )
         for r in out.itertuples()
     ]
 
