@@ -6,9 +6,13 @@ import datetime as dt
 from collections.abc import Iterator
 
 import pytest
+from sqlalchemy import select
 
+from server.auth.models import User
 from server.demo import seed
-from tests.conftest import LiveServer, browser_sign_in
+from server.devices.models import Alert, AlertState
+from server.review.models import Verdict
+from tests.conftest import LiveServer, browser_sign_in, committed_session
 
 pytestmark = pytest.mark.browser
 
@@ -95,6 +99,16 @@ def test_the_adjudicator_sees_the_disagreements_waiting(
     response = page.goto(f"{server.url}/review/adjudication")
     assert response is not None and response.status == 200
     page.wait_for_load_state("networkidle")
-    waiting = demo.counts["awaiting_adjudication"]
-    assert f"({waiting})" in page.inner_text("h1")
+    # Every disagreement waiting, less those she gave a verdict on herself (another must settle them).
+    with committed_session(demo.settings) as s:
+        own = set(
+            s.scalars(
+                select(Verdict.alert_id)
+                .join(User, User.id == Verdict.reviewer_id)
+                .where(User.email == who.email)
+            )
+        )
+        waiting_ids = set(s.scalars(select(Alert.id).where(Alert.state == AlertState.adjudication)))
+    assert len(waiting_ids) == demo.counts["awaiting_adjudication"]
+    assert f"({len(waiting_ids - own)})" in page.inner_text("h1")
     assert page.console_errors == []
