@@ -234,9 +234,10 @@ def test_every_csv_export_escapes_formula_starts(
     trial = pilot["trial"]
     clients = {role: staff_client(role, is_adjudicator=True) for role in ROLE_ORDER}
     values = world_values(pilot, session)
-    found = csv_routes(app, clients["admin"], values)
-    assert found - COVERED == set(), f"CSV routes this test does not download: {sorted(found - COVERED)}"
-    assert COVERED - found == set(), f"listed as CSV routes but not found: {sorted(COVERED - found)}"
+    if session.get_bind().dialect.name == "sqlite":  # which routes answer CSV does not depend on the backend
+        found = csv_routes(app, clients["admin"], values)
+        assert found - COVERED == set(), f"CSV routes this test does not download: {sorted(found - COVERED)}"
+        assert COVERED - found == set(), f"listed as CSV routes but not found: {sorted(COVERED - found)}"
 
     caps_of = {path: caps for method, path, _, caps in all_routes(app) if method == "GET"}
     downloads: dict[str, str] = {}
