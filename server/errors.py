@@ -317,6 +317,63 @@ def app_error_response(request: Request, exc: AppError) -> Response:
     return render_error(request, exc.status, exc.code, exc.message, exc.headers or None, **extra)
 
 
+# What a field of a query or form should hold, for fields whose check is a pattern.
+FIELD_HINTS = {
+    "week": "an ISO week such as 2026-W48",
+    "month": "a month such as 2026-11",
+    "date": "a date such as 2026-11-20",
+}
+
+
+def validation_sentence(error: Any, loc: str, *, for_page: bool) -> str:
+    """One plain sentence for the first thing wrong with a request (no pattern or validator text).
+
+    Pages always get a sentence of ours; the JSON API keeps the validator's own short message for
+    kinds of error not named here (they read plainly there, e.g. "Input should be a valid integer").
+    """
+    kind = str(error.get("type", ""))
+    ctx = error.get("ctx") or {}
+    value = error.get("input")
+    name = f"'{loc}'" if loc else "The request"
+    shown = (
+        f"'{value}'" if isinstance(value, str | int | float) and len(str(value)) <= 60 else "The value given"
+    )
+    if kind == "missing":
+        return f"{name} is required."
+    if kind == "string_pattern_mismatch":
+        hint = FIELD_HINTS.get(loc.rsplit(".", 1)[-1])
+        return f"{shown} is not a valid {loc or 'value'}" + (f": give {hint}." if hint else ".")
+    if kind in ("int_parsing", "int_type", "int_from_float"):
+        return f"{name} must be a whole number."
+    if kind in ("float_parsing", "float_type"):
+        return f"{name} must be a number."
+    if kind in ("bool_parsing", "bool_type"):
+        return f"{name} must be yes or no (true or false)."
+    if kind.startswith("date_") or kind == "date_type":
+        return f"{name} must be a date as YYYY-MM-DD."
+    if kind.startswith("datetime_") or kind == "datetime_type":
+        return f"{name} must be a date and time in ISO 8601 with its offset, such as 2026-11-20T14:03:05Z."
+    if kind == "string_too_long":
+        return f"{name} is too long: at most {ctx.get('max_length')} characters."
+    if kind == "string_too_short":
+        return f"{name} is too short: at least {ctx.get('min_length')} characters."
+    bounds = {
+        "greater_than_equal": ("at least", "ge"),
+        "greater_than": ("more than", "gt"),
+        "less_than_equal": ("at most", "le"),
+        "less_than": ("less than", "lt"),
+    }
+    if kind in bounds:
+        words, key = bounds[kind]
+        return f"{name} must be {words} {ctx.get(key)}."
+    if kind in ("enum", "literal_error"):
+        return f"{name} must be one of {ctx.get('expected', 'the listed values')}."
+    if for_page:
+        return f"{name} is not valid here."
+    msg = str(error.get("msg", "invalid request"))
+    return f"Field {name}: {msg}." if loc else f"{msg}."
+
+
 def install_handlers(app: FastAPI) -> None:
     from sqlalchemy.exc import DBAPIError, StatementError
 
@@ -350,8 +407,7 @@ def install_handlers(app: FastAPI) -> None:
         errs = exc.errors()
         first = errs[0] if errs else {}
         loc = ".".join(str(p) for p in first.get("loc", ()) if p not in ("body", "query", "path"))
-        msg = first.get("msg", "invalid request")
-        message = f"Field '{loc}': {msg}." if loc else f"{msg}."
+        message = validation_sentence(first, loc, for_page=_wants_html(request))
         return render_error(request, 422, "invalid_request", message, field=loc or None)
 
     @app.exception_handler(StarletteHTTPException)
