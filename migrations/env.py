@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from alembic import context
 
+from server import migrate
 from server.db import make_engine
 from server.models import metadata
 from server.settings import Settings
@@ -20,19 +21,9 @@ def run_migrations_online() -> None:
     url = config.attributes.get("url") or Settings().resolved_database_url()
     engine = make_engine(url)
     try:
-        with engine.connect() as conn:
-            sqlite = conn.dialect.name == "sqlite"
-            raw = conn.connection.driver_connection if sqlite else None
-            if raw is not None:
-                raw.execute("PRAGMA foreign_keys=OFF")  # see server.migrate.run
-            try:
-                _run(conn)
-                if sqlite and conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall():
-                    raise RuntimeError("the migration left broken references")
-                conn.commit()
-            finally:
-                if raw is not None:
-                    raw.execute("PRAGMA foreign_keys=ON")
+        with engine.connect() as conn, migrate.foreign_keys_off(conn), conn.begin():
+            _run(conn)
+            migrate.check_references(conn)  # inside the transaction: a broken reference rolls back
     finally:
         engine.dispose()
 

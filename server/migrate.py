@@ -2,14 +2,15 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import contextlib
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 from alembic import command
 from alembic.config import Config
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
-from sqlalchemy.engine import Engine
+from sqlalchemy.engine import Connection, Engine
 
 MIGRATIONS_DIR = Path(__file__).resolve().parent.parent / "migrations"
 
@@ -31,33 +32,41 @@ def upgrade(engine: Engine) -> None:
 
 
 def run(engine: Engine, step: Callable[[Config, str], None], target: str) -> None:
-    """Run one Alembic command (upgrade or downgrade to `target`) in one transaction.
+    """Run one Alembic command (upgrade or downgrade to `target`) in one transaction."""
+    cfg = alembic_config()
+    with engine.connect() as conn, foreign_keys_off(conn), conn.begin():
+        cfg.attributes["connection"] = conn
+        step(cfg, target)
+        check_references(conn)
+
+
+@contextlib.contextmanager
+def foreign_keys_off(conn: Connection) -> Iterator[None]:
+    """SQLite only: foreign keys unenforced while the migration runs (no effect elsewhere).
 
     SQLite alters a table by rebuilding it (batch mode: copy, drop the old, rename). With foreign
     keys enforced, dropping a table that other rows reference fails, so a database with data could
     not be migrated. SQLite's documented procedure: foreign keys off for the migration (the pragma
-    only takes effect outside a transaction), then `PRAGMA foreign_key_check` inside it before the
-    commit, so a migration that broke a reference rolls back whole.
+    only takes effect outside a transaction), then `check_references` inside it before the commit,
+    so a migration that broke a reference rolls back whole.
     """
-    cfg = alembic_config()
-    with engine.connect() as conn:
-        sqlite = conn.dialect.name == "sqlite"
-        raw = conn.connection.driver_connection if sqlite else None
+    raw = conn.connection.driver_connection if conn.dialect.name == "sqlite" else None
+    if raw is not None:
+        raw.execute("PRAGMA foreign_keys=OFF")
+    try:
+        yield
+    finally:
         if raw is not None:
-            raw.execute("PRAGMA foreign_keys=OFF")
-        try:
-            with conn.begin():
-                cfg.attributes["connection"] = conn
-                step(cfg, target)
-                if sqlite:
-                    broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
-                    if broken:
-                        raise RuntimeError(
-                            f"the migration left {len(broken)} broken reference(s): {broken[:5]}"
-                        )
-        finally:
-            if raw is not None:
-                raw.execute("PRAGMA foreign_keys=ON")
+            raw.execute("PRAGMA foreign_keys=ON")
+
+
+def check_references(conn: Connection) -> None:
+    """Refuse (and so roll back) a migration that left a row pointing at nothing (SQLite)."""
+    if conn.dialect.name != "sqlite":
+        return
+    broken = conn.exec_driver_sql("PRAGMA foreign_key_check").fetchall()
+    if broken:
+        raise RuntimeError(f"the migration left {len(broken)} broken reference(s): {broken[:5]}")
 
 
 def head_revision() -> str | None:
